@@ -1,0 +1,27 @@
+//! linewarden: statistical process control beside the machine.
+//!
+//! # Layout
+//!
+//! * [`stats`] — the pure statistics core: chart constants ([`stats::constants`]), variables
+//!   charts ([`stats::variables`]), attribute charts ([`stats::attributes`]), EWMA
+//!   ([`stats::ewma`]) and CUSUM ([`stats::cusum`]), baseline studies ([`stats::study`]),
+//!   capability ([`stats::capability`]) and normality ([`stats::normality`]). No I/O, no clock,
+//!   no tokio.
+//! * [`input`] — turns CSV text (wide, long or one reading per row) into subgroups, with errors
+//!   that name the file, line and column.
+//! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
+//!   parsed, validated and written atomically.
+//! * [`report`] — the readable text of a study and of a capability analysis.
+//! * [`fsutil`] — durable file writes (temp file, fsync, rename, fsync of the directory).
+//! * [`diag`] — problems in a TOML file, located by TOML path and line:column.
+//! * [`format`] — number formatting shared by reports and files.
+//!
+//! The binary (`src/main.rs`) is a thin command-line shell over these modules.
+
+pub mod diag;
+pub mod format;
+pub mod fsutil;
+pub mod input;
+pub mod limits_file;
+pub mod report;
+pub mod stats;

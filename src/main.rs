@@ -1,0 +1,343 @@
+//! The linewarden command line: a thin shell over the library.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use anyhow::{Context, Result, bail};
+use clap::{Args, Parser, Subcommand, ValueEnum};
+use serde_json::json;
+
+use linewarden::input::{self, InputOptions, Layout};
+use linewarden::limits_file::{StoredLimits, valid_id};
+use linewarden::report;
+use linewarden::stats::capability::{self, Capability, Spec};
+use linewarden::stats::study::{self, Study, StudyOptions};
+use linewarden::stats::variables::VariablesChart;
+
+#[derive(Parser)]
+#[command(
+    name = "linewarden",
+    version,
+    about = "Statistical process control beside the machine: control limits, capability and run rules"
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Compute control limits from a baseline of subgroups, optionally with capability, and
+    /// store them for a characteristic.
+    Limits(LimitsArgs),
+    /// Report process capability (Cp, Cpk, Pp, Ppk, Cpm) of a data file against its specs.
+    Capability(CapabilityArgs),
+}
+
+#[derive(Clone, Copy, ValueEnum)]
+enum ChartArg {
+    XbarR,
+    XbarS,
+    Individuals,
+}
+
+impl From<ChartArg> for VariablesChart {
+    fn from(c: ChartArg) -> Self {
+        match c {
+            ChartArg::XbarR => VariablesChart::XbarR,
+            ChartArg::XbarS => VariablesChart::XbarS,
+            ChartArg::Individuals => VariablesChart::Individuals,
+        }
+    }
+}
+
+#[derive(Args)]
+struct InputArgs {
+    /// CSV file with the readings.
+    #[arg(long, value_name = "FILE")]
+    input: PathBuf,
+    /// wide: a row per subgroup; long: subgroup and value columns; single: a reading per row.
+    #[arg(long, value_enum, default_value = "wide")]
+    layout: Layout,
+    /// Column(s) holding readings, by header name (wide: several, comma-separated; long and
+    /// single: one). Long layout default: "value".
+    #[arg(long, value_name = "NAME", value_delimiter = ',')]
+    value_column: Vec<String>,
+    /// Column holding the subgroup key (long layout).
+    #[arg(long, value_name = "NAME", default_value = "subgroup")]
+    subgroup_column: String,
+    /// Consecutive readings per subgroup (single layout).
+    #[arg(long, value_name = "N")]
+    subgroup_size: Option<usize>,
+    /// Field separator.
+    #[arg(long, default_value = ",")]
+    delimiter: char,
+    /// Chart to estimate sigma with. Default: individuals for single readings, X̄-R for
+    /// subgroups up to 10, X̄-S above.
+    #[arg(long, value_enum)]
+    chart: Option<ChartArg>,
+}
+
+#[derive(Args)]
+struct SpecArgs {
+    /// Lower specification limit.
+    #[arg(long, allow_hyphen_values = true)]
+    lsl: Option<f64>,
+    /// Upper specification limit.
+    #[arg(long, allow_hyphen_values = true)]
+    usl: Option<f64>,
+    /// Nominal (target) value, for Cpm.
+    #[arg(long, allow_hyphen_values = true)]
+    target: Option<f64>,
+    /// Cpk a capable process must reach.
+    #[arg(long, default_value_t = capability::DEFAULT_THRESHOLD)]
+    capable_at: f64,
+}
+
+#[derive(Args)]
+struct ExcludeArgs {
+    /// Subgroups (numbered from 1 in file order) to leave out, for known assignable causes.
+    #[arg(long, value_name = "LIST", value_delimiter = ',')]
+    exclude: Vec<usize>,
+    /// Exclude subgroups beyond the trial limits and recompute until none remain.
+    #[arg(long)]
+    auto_exclude: bool,
+    /// Cap on rounds of automatic exclusion.
+    #[arg(long, default_value_t = 10)]
+    max_iterations: usize,
+}
+
+#[derive(Args)]
+struct LimitsArgs {
+    #[command(flatten)]
+    input: InputArgs,
+    #[command(flatten)]
+    exclude: ExcludeArgs,
+    #[command(flatten)]
+    spec: SpecArgs,
+    /// Store the limits in this file (written atomically).
+    #[arg(long, value_name = "FILE", requires = "characteristic")]
+    write: Option<PathBuf>,
+    /// Identifier of the characteristic the limits belong to.
+    #[arg(long, value_name = "ID")]
+    characteristic: Option<String>,
+    /// Unit of the readings, recorded in the limits file.
+    #[arg(long)]
+    unit: Option<String>,
+    /// Print JSON instead of the report.
+    #[arg(long)]
+    json: bool,
+}
+
+#[derive(Args)]
+struct CapabilityArgs {
+    #[command(flatten)]
+    input: InputArgs,
+    #[command(flatten)]
+    exclude: ExcludeArgs,
+    #[command(flatten)]
+    spec: SpecArgs,
+    /// Print JSON instead of the report.
+    #[arg(long)]
+    json: bool,
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Limits(a) => limits(a),
+        Command::Capability(a) => capability_cmd(a),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("error: {e:#}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// Reads the input file and runs the study both commands share.
+fn load_and_study(
+    input: &InputArgs,
+    exclude: &ExcludeArgs,
+) -> Result<(Study, Vec<Vec<f64>>, Vec<String>)> {
+    let name = input.input.display().to_string();
+    let text = std::fs::read_to_string(&input.input)
+        .with_context(|| format!("cannot read input file {name}"))?;
+    if !input.delimiter.is_ascii() {
+        bail!(
+            "--delimiter {:?} must be a single ASCII character",
+            input.delimiter
+        );
+    }
+    let mut opts = InputOptions::new(input.layout);
+    opts.value_columns = input.value_column.clone();
+    opts.subgroup_column = Some(input.subgroup_column.clone());
+    opts.subgroup_size = input.subgroup_size;
+    opts.delimiter = input.delimiter as u8;
+    let parsed = input::parse(&text, &name, &opts)?;
+    let chart = input.chart.map(VariablesChart::from).unwrap_or_else(|| {
+        match parsed.subgroups.iter().map(Vec::len).max().unwrap_or(1) {
+            1 => VariablesChart::Individuals,
+            2..=10 => VariablesChart::XbarR,
+            _ => VariablesChart::XbarS,
+        }
+    });
+    let mut options = StudyOptions::new(chart);
+    options.exclude = exclude.exclude.clone();
+    options.auto_exclude = exclude.auto_exclude;
+    options.max_iterations = exclude.max_iterations;
+    let s = study::run(&parsed.subgroups, &options)
+        .with_context(|| format!("{name}: the study failed"))?;
+    Ok((s, parsed.subgroups, parsed.warnings))
+}
+
+fn spec_of(a: &SpecArgs) -> Result<Option<Spec>> {
+    if a.lsl.is_none() && a.usl.is_none() {
+        if a.target.is_some() {
+            bail!("--target needs --lsl and/or --usl");
+        }
+        return Ok(None);
+    }
+    let spec = Spec {
+        lsl: a.lsl,
+        usl: a.usl,
+        target: a.target,
+    };
+    spec.validate().map_err(|e| match e {
+        linewarden::stats::StatsError::SpecOrder { lsl, usl } => {
+            anyhow::anyhow!("--lsl {lsl} must be below --usl {usl}")
+        }
+        other => anyhow::anyhow!("specification options: {other}"),
+    })?;
+    if !(a.capable_at > 0.0 && a.capable_at.is_finite()) {
+        bail!("--capable-at {} must be a positive number", a.capable_at);
+    }
+    Ok(Some(spec))
+}
+
+fn capability_of(
+    s: &Study,
+    subgroups: &[Vec<f64>],
+    spec: &Spec,
+    threshold: f64,
+) -> Result<Capability> {
+    let readings = s.included_readings(subgroups);
+    Ok(capability::capability(
+        &readings,
+        s.estimate.sigma_within,
+        spec,
+        threshold,
+    )?)
+}
+
+fn limits(a: LimitsArgs) -> Result<()> {
+    if let Some(id) = &a.characteristic
+        && !valid_id(id)
+    {
+        bail!(
+            "--characteristic {id:?} is not a valid identifier; use letters, digits, '-', '_' and '.'"
+        );
+    }
+    let spec = spec_of(&a.spec)?;
+    let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
+    let cap = match &spec {
+        Some(spec) => Some(capability_of(&s, &subgroups, spec, a.spec.capable_at)?),
+        None => None,
+    };
+    let source = a.input.input.display().to_string();
+    if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
+        let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
+        let stored = StoredLimits::from_study(&s, id, a.unit.clone(), spec, &source, &now);
+        stored.write(path)?;
+        eprintln!("wrote limits for {id} to {}", path.display());
+    }
+    warnings.extend(s.warnings.iter().cloned());
+    if a.json {
+        for w in &warnings {
+            eprintln!("warning: {w}");
+        }
+        let mut v = study_json(&s);
+        v["capability"] = cap
+            .as_ref()
+            .map(capability_json)
+            .unwrap_or(serde_json::Value::Null);
+        v["warnings"] = json!(warnings);
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    } else {
+        for w in &warnings[..warnings.len() - s.warnings.len()] {
+            eprintln!("warning: {w}");
+        }
+        print!(
+            "{}",
+            report::study(&source, &s, spec.as_ref().zip(cap.as_ref()))
+        );
+    }
+    Ok(())
+}
+
+fn capability_cmd(a: CapabilityArgs) -> Result<()> {
+    let Some(spec) = spec_of(&a.spec)? else {
+        bail!("capability needs --lsl and/or --usl");
+    };
+    let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
+    let cap = capability_of(&s, &subgroups, &spec, a.spec.capable_at)?;
+    warnings.extend(s.warnings.iter().cloned());
+    if a.json {
+        for w in &warnings {
+            eprintln!("warning: {w}");
+        }
+        let mut v = capability_json(&cap);
+        v["sigma_within_method"] = json!(s.estimate.sigma_method);
+        v["chart"] = json!(s.chart.name());
+        v["warnings"] = json!(warnings);
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    } else {
+        let source = a.input.input.display().to_string();
+        print!(
+            "{}",
+            report::capability_report(&source, &spec, &cap, &warnings)
+        );
+    }
+    Ok(())
+}
+
+fn study_json(s: &Study) -> serde_json::Value {
+    json!({
+        "chart": s.chart.name(),
+        "subgroup_size": s.subgroup_size,
+        "subgroup_size_range": [s.subgroup_size_range.0, s.subgroup_size_range.1],
+        "subgroups_total": s.subgroups_total,
+        "subgroups_used": s.subgroups_used,
+        "excluded": s.excluded.iter().map(|e| json!({
+            "subgroup": e.subgroup, "reason": e.reason, "iteration": e.iteration,
+        })).collect::<Vec<_>>(),
+        "sigma_within": s.estimate.sigma_within,
+        "sigma_within_method": s.estimate.sigma_method,
+        "sigma_overall": s.estimate.sigma_overall,
+        "location": s.location,
+        "dispersion": {
+            "kind": s.dispersion_kind.name(),
+            "center": s.dispersion.center,
+            "ucl": s.dispersion.ucl,
+            "lcl": s.dispersion.lcl,
+        },
+        "trials": s.trials,
+        "points": s.points.iter().map(|p| json!({
+            "subgroup": p.subgroup, "n": p.stats.n, "mean": p.stats.mean,
+            "dispersion": p.stats.dispersion, "included": p.included,
+        })).collect::<Vec<_>>(),
+    })
+}
+
+fn capability_json(c: &Capability) -> serde_json::Value {
+    let mut v = serde_json::to_value(c).unwrap_or(serde_json::Value::Null);
+    // Keep the documented keys present even where an index does not apply.
+    for key in ["cp", "cpm", "cp_ci95", "ppm_below", "ppm_above"] {
+        if v.get(key).is_none() {
+            v[key] = serde_json::Value::Null;
+        }
+    }
+    v
+}

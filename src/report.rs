@@ -1,0 +1,242 @@
+//! Readable text reports of studies and capability analyses.
+
+use std::fmt::Write as _;
+
+use crate::format::{num, sig};
+use crate::stats::Limits;
+use crate::stats::capability::{Capability, Spec, Verdict};
+use crate::stats::study::Study;
+use crate::stats::variables::{DispersionKind, VariablesChart};
+
+/// The chart's name as people write it.
+pub fn chart_title(chart: VariablesChart) -> &'static str {
+    match chart {
+        VariablesChart::XbarR => "X̄-R",
+        VariablesChart::XbarS => "X̄-S",
+        VariablesChart::Individuals => "individuals and moving range",
+    }
+}
+
+fn limits_line(out: &mut String, label: &str, l: &Limits) {
+    let _ = writeln!(
+        out,
+        "  {label:<20} centre {:<12} UCL {:<12} LCL {}",
+        num(l.center),
+        num(l.ucl),
+        num(l.lcl)
+    );
+}
+
+/// The report of a baseline study, with capability when specs were given.
+pub fn study(source: &str, s: &Study, cap: Option<(&Spec, &Capability)>) -> String {
+    let mut out = String::new();
+    let size = match s.subgroup_size_range {
+        (a, b) if a == b => format!("subgroups of {a}"),
+        (a, b) => format!(
+            "subgroups of {a} to {b} (limits shown for {})",
+            s.subgroup_size
+        ),
+    };
+    let _ = writeln!(
+        out,
+        "Baseline study: {} chart, {size}",
+        chart_title(s.chart)
+    );
+    let _ = writeln!(out, "  {:<20} {source}", "source");
+    let _ = writeln!(
+        out,
+        "  {:<20} {} read, {} used, {} excluded",
+        "subgroups",
+        s.subgroups_total,
+        s.subgroups_used,
+        s.excluded.len()
+    );
+    let _ = writeln!(
+        out,
+        "  {:<20} {} ({})",
+        "sigma within",
+        num(s.estimate.sigma_within),
+        s.estimate.sigma_method
+    );
+    let _ = writeln!(
+        out,
+        "  {:<20} {} (sample standard deviation of all {} used readings)",
+        "sigma overall",
+        num(s.estimate.sigma_overall),
+        s.estimate.readings
+    );
+    let _ = writeln!(out, "\nControl limits");
+    let loc_label = if s.chart == VariablesChart::Individuals {
+        "individuals chart"
+    } else {
+        "mean chart"
+    };
+    limits_line(&mut out, loc_label, &s.location);
+    let disp_label = match s.dispersion_kind {
+        DispersionKind::Range => "range chart",
+        DispersionKind::StdDev => "std-dev chart",
+        DispersionKind::MovingRange => "moving-range chart",
+    };
+    limits_line(&mut out, disp_label, &s.dispersion);
+
+    if !s.excluded.is_empty() {
+        let _ = writeln!(out, "\nExcluded subgroups");
+        for e in &s.excluded {
+            let round = if e.iteration == 0 {
+                "on request".to_string()
+            } else {
+                format!("round {}", e.iteration)
+            };
+            let _ = writeln!(out, "  #{:<4} {round:<11} {}", e.subgroup, e.reason);
+        }
+    }
+    if s.trials.len() > 1 {
+        let _ = writeln!(out, "\nRounds of trial limits");
+        for t in &s.trials {
+            let _ = writeln!(
+                out,
+                "  round {:<3} {:>3} subgroups  sigma {:<10} {loc_label} {} .. {}",
+                t.iteration,
+                t.subgroups_used,
+                num(t.sigma_within),
+                num(t.location.lcl),
+                num(t.location.ucl)
+            );
+        }
+    }
+    if let Some((spec, c)) = cap {
+        out.push('\n');
+        out.push_str(&capability(spec, c));
+    }
+    warnings(
+        &mut out,
+        s.warnings
+            .iter()
+            .chain(cap.iter().flat_map(|(_, c)| &c.warnings)),
+    );
+    out
+}
+
+fn warnings<'a>(out: &mut String, list: impl Iterator<Item = &'a String>) {
+    let list: Vec<_> = list.collect();
+    if !list.is_empty() {
+        let _ = writeln!(out, "\nWarnings");
+        for w in list {
+            let _ = writeln!(out, "  - {w}");
+        }
+    }
+}
+
+fn ci(c: Option<[f64; 2]>) -> String {
+    c.map(|[lo, hi]| format!("(95% CI {} to {})", sig(lo, 3), sig(hi, 3)))
+        .unwrap_or_default()
+}
+
+/// The capability section of a report.
+pub fn capability(spec: &Spec, c: &Capability) -> String {
+    let mut out = String::new();
+    let mut specs = Vec::new();
+    if let Some(l) = spec.lsl {
+        specs.push(format!("LSL {}", num(l)));
+    }
+    if let Some(u) = spec.usl {
+        specs.push(format!("USL {}", num(u)));
+    }
+    if let Some(t) = spec.target {
+        specs.push(format!("target {}", num(t)));
+    }
+    let _ = writeln!(
+        out,
+        "Capability against {} ({} readings, mean {})",
+        specs.join(", "),
+        c.n,
+        num(c.mean)
+    );
+    let row =
+        |out: &mut String, name: &str, v: Option<f64>, interval: Option<[f64; 2]>, note: &str| {
+            if let Some(v) = v {
+                let _ = writeln!(
+                    out,
+                    "  {name:<5} {:<7} {:<24} {note}",
+                    sig(v, 3),
+                    ci(interval)
+                );
+            }
+        };
+    row(&mut out, "Cp", c.cp, c.cp_ci95, "within-subgroup sigma");
+    row(
+        &mut out,
+        "Cpk",
+        Some(c.cpk),
+        Some(c.cpk_ci95),
+        "within-subgroup sigma",
+    );
+    row(&mut out, "Cpu", c.cpu, None, "");
+    row(&mut out, "Cpl", c.cpl, None, "");
+    row(&mut out, "Pp", c.pp, c.pp_ci95, "overall sigma");
+    row(
+        &mut out,
+        "Ppk",
+        Some(c.ppk),
+        Some(c.ppk_ci95),
+        "overall sigma",
+    );
+    row(
+        &mut out,
+        "Cpm",
+        c.cpm,
+        None,
+        "overall sigma and distance from target",
+    );
+    let ppm = |v: Option<f64>| v.map(|p| sig(p, 3)).unwrap_or_else(|| "-".to_string());
+    let _ = writeln!(
+        out,
+        "  expected nonconforming (normal model): {} ppm below LSL, {} ppm above USL from overall sigma; {} and {} ppm from within sigma",
+        ppm(c.ppm_below),
+        ppm(c.ppm_above),
+        ppm(c.ppm_below_within),
+        ppm(c.ppm_above_within)
+    );
+    match &c.normality {
+        Some(ad) => {
+            let verdict = if ad.doubtful() {
+                "the normal model is doubtful"
+            } else {
+                "no evidence against the normal model"
+            };
+            let _ = writeln!(
+                out,
+                "  normality: Anderson–Darling A² = {} (adjusted {}), p = {}: {verdict}",
+                sig(ad.a2, 4),
+                sig(ad.a2_adjusted, 4),
+                sig(ad.p_value, 3)
+            );
+        }
+        None => {
+            let _ = writeln!(out, "  normality: not checked (too few readings)");
+        }
+    }
+    let t = sig(c.threshold, 3);
+    let lower = sig(c.cpk_ci95[0], 3);
+    let cpk = sig(c.cpk, 3);
+    let _ = match c.verdict {
+        Verdict::Capable => writeln!(
+            out,
+            "  verdict: capable: Cpk {cpk} reaches {t}, and so does its 95% lower bound {lower}"
+        ),
+        Verdict::CapableUnproven => writeln!(
+            out,
+            "  verdict: capable but not yet proven: Cpk {cpk} reaches {t}, but its 95% lower bound {lower} does not; collect more data"
+        ),
+        Verdict::NotCapable => writeln!(out, "  verdict: not capable: Cpk {cpk} is below {t}"),
+    };
+    out
+}
+
+/// A standalone capability report (the `capability` command), with its warnings.
+pub fn capability_report(source: &str, spec: &Spec, c: &Capability, extra: &[String]) -> String {
+    let mut out = format!("Source: {source}\n");
+    out.push_str(&capability(spec, c));
+    warnings(&mut out, extra.iter().chain(&c.warnings));
+    out
+}

@@ -1,0 +1,275 @@
+//! Baseline (Phase I) studies: trial limits, exclusion of subgroups with assignable causes, and
+//! recomputation until the remaining subgroups are in control.
+
+use serde::Serialize;
+
+use super::variables::{
+    self, DispersionKind, Estimate, PointStats, VariablesChart, dispersion_limits, location_limits,
+};
+use super::{Limits, StatsError};
+use crate::format::num;
+
+/// Fewer subgroups than this left in a baseline draws a warning (common practice: 20–25).
+pub const RECOMMENDED_SUBGROUPS: usize = 20;
+
+/// How a study is to be run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StudyOptions {
+    pub chart: VariablesChart,
+    /// Subgroups (numbered from 1 in input order) to leave out before anything is computed,
+    /// because their assignable cause is already known.
+    pub exclude: Vec<usize>,
+    /// Exclude out-of-control subgroups and recompute, repeatedly, until none remain.
+    pub auto_exclude: bool,
+    /// Cap on automatic rounds of exclusion.
+    pub max_iterations: usize,
+}
+
+impl StudyOptions {
+    /// A study on `chart` with no exclusions, and the default cap of 10 rounds.
+    pub fn new(chart: VariablesChart) -> Self {
+        StudyOptions {
+            chart,
+            exclude: Vec::new(),
+            auto_exclude: false,
+            max_iterations: 10,
+        }
+    }
+}
+
+/// One subgroup left out of the final limits, and why.
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Exclusion {
+    /// Subgroup number, from 1 in input order.
+    pub subgroup: usize,
+    /// Plain-words reason, with the value and the limit it crossed.
+    pub reason: String,
+    /// 0 when excluded on request; otherwise the round of trial limits it fell outside.
+    pub iteration: usize,
+}
+
+/// The limits of one round of the study.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Trial {
+    /// Round number, from 1.
+    pub iteration: usize,
+    pub subgroups_used: usize,
+    pub sigma_within: f64,
+    /// Location limits at the nominal subgroup size.
+    pub location: Limits,
+    /// Dispersion limits at the nominal subgroup size.
+    pub dispersion: Limits,
+}
+
+/// One subgroup as the final study sees it.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct StudyPoint {
+    pub subgroup: usize,
+    #[serde(flatten)]
+    pub stats: PointStats,
+    pub included: bool,
+    /// Final location limits for this subgroup's size.
+    pub location: Limits,
+    /// Final dispersion limits for this subgroup's size.
+    pub dispersion_limits: Limits,
+}
+
+/// The outcome of a baseline study.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Study {
+    pub chart: VariablesChart,
+    /// The most common subgroup size; the limits in `location` and `dispersion` are for it.
+    pub subgroup_size: usize,
+    /// Smallest and largest subgroup sizes seen (equal when the size is constant).
+    pub subgroup_size_range: (usize, usize),
+    pub subgroups_total: usize,
+    pub subgroups_used: usize,
+    pub excluded: Vec<Exclusion>,
+    pub estimate: Estimate,
+    pub location: Limits,
+    pub dispersion_kind: DispersionKind,
+    pub dispersion: Limits,
+    pub trials: Vec<Trial>,
+    pub points: Vec<StudyPoint>,
+    pub warnings: Vec<String>,
+}
+
+impl Study {
+    /// Numbers (from 1) of the subgroups the final limits were computed from.
+    pub fn used_subgroups(&self) -> Vec<usize> {
+        self.points
+            .iter()
+            .filter(|p| p.included)
+            .map(|p| p.subgroup)
+            .collect()
+    }
+
+    /// Every included reading, for capability.
+    pub fn included_readings(&self, subgroups: &[Vec<f64>]) -> Vec<f64> {
+        self.points
+            .iter()
+            .filter(|p| p.included)
+            .flat_map(|p| subgroups[p.subgroup - 1].iter().copied())
+            .collect()
+    }
+}
+
+/// Runs a baseline study over `subgroups` (each a list of readings, in input order).
+pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, StatsError> {
+    let chart = options.chart;
+    let stats = variables::point_stats(chart, subgroups)?;
+    let total = subgroups.len();
+    let mut included = vec![true; total];
+    let mut excluded = Vec::new();
+    for &s in &options.exclude {
+        if s == 0 || s > total {
+            return Err(StatsError::UnknownSubgroup { subgroup: s, total });
+        }
+        if included[s - 1] {
+            included[s - 1] = false;
+            excluded.push(Exclusion {
+                subgroup: s,
+                reason: "excluded on request (known assignable cause)".to_string(),
+                iteration: 0,
+            });
+        }
+    }
+    let nominal = nominal_size(&stats);
+    let kind = chart.dispersion_kind();
+    let mut trials = Vec::new();
+    let mut warnings = Vec::new();
+
+    let est = loop {
+        let est = variables::estimate(chart, subgroups, &included)?;
+        let iteration = trials.len() + 1;
+        trials.push(Trial {
+            iteration,
+            subgroups_used: est.subgroups,
+            sigma_within: est.sigma_within,
+            location: location_limits(est.grand_mean, est.sigma_within, nominal),
+            dispersion: dispersion_limits(kind, est.sigma_within, nominal)?,
+        });
+        if !options.auto_exclude {
+            break est;
+        }
+        let mut out = Vec::new();
+        for i in (0..total).filter(|&i| included[i]) {
+            if let Some(reason) = out_of_control(&stats[i], &est, kind)? {
+                out.push((i, reason));
+            }
+        }
+        if out.is_empty() {
+            break est;
+        }
+        if iteration > options.max_iterations {
+            let list: Vec<String> = out.iter().map(|(i, _)| (i + 1).to_string()).collect();
+            warnings.push(format!(
+                "stopped after {} rounds of exclusion with subgroups still beyond the limits: {}; the process was probably not stable during the baseline",
+                options.max_iterations,
+                list.join(", ")
+            ));
+            break est;
+        }
+        for (i, reason) in out {
+            included[i] = false;
+            excluded.push(Exclusion {
+                subgroup: i + 1,
+                reason: format!("{reason} (trial limits of round {iteration})"),
+                iteration,
+            });
+        }
+    };
+
+    if est.subgroups < RECOMMENDED_SUBGROUPS {
+        warnings.push(format!(
+            "only {} subgroups are left for the limits; common practice is a baseline of 20 to 25",
+            est.subgroups
+        ));
+    }
+    if chart == VariablesChart::XbarR && nominal > 10 {
+        warnings.push(format!(
+            "subgroups of {nominal} on an X̄-R chart: the range wastes information above about 10 readings; consider the X̄-S chart"
+        ));
+    }
+    let mut points = Vec::with_capacity(total);
+    for (i, s) in stats.iter().enumerate() {
+        points.push(StudyPoint {
+            subgroup: i + 1,
+            stats: *s,
+            included: included[i],
+            location: location_limits(est.grand_mean, est.sigma_within, s.n),
+            dispersion_limits: dispersion_limits(kind, est.sigma_within, s.n)?,
+        });
+    }
+    let min = stats.iter().map(|s| s.n).min().unwrap_or(0);
+    let max = stats.iter().map(|s| s.n).max().unwrap_or(0);
+    Ok(Study {
+        chart,
+        subgroup_size: nominal,
+        subgroup_size_range: (min, max),
+        subgroups_total: total,
+        subgroups_used: est.subgroups,
+        excluded,
+        estimate: est,
+        location: location_limits(est.grand_mean, est.sigma_within, nominal),
+        dispersion_kind: kind,
+        dispersion: dispersion_limits(kind, est.sigma_within, nominal)?,
+        trials,
+        points,
+        warnings,
+    })
+}
+
+/// Why a subgroup is out of control under `est`, or `None` when it is inside both charts.
+fn out_of_control(
+    p: &PointStats,
+    est: &Estimate,
+    kind: DispersionKind,
+) -> Result<Option<String>, StatsError> {
+    let loc = location_limits(est.grand_mean, est.sigma_within, p.n);
+    let what = if kind == DispersionKind::MovingRange {
+        "reading"
+    } else {
+        "mean"
+    };
+    if let Some(r) = beyond(what, p.mean, &loc) {
+        return Ok(Some(r));
+    }
+    if let Some(d) = p.dispersion {
+        let lim = dispersion_limits(kind, est.sigma_within, p.n)?;
+        return Ok(beyond(kind.name(), d, &lim));
+    }
+    Ok(None)
+}
+
+fn beyond(what: &str, value: f64, lim: &Limits) -> Option<String> {
+    if value > lim.ucl {
+        Some(format!(
+            "{what} {} above the upper control limit {}",
+            num(value),
+            num(lim.ucl)
+        ))
+    } else if value < lim.lcl {
+        Some(format!(
+            "{what} {} below the lower control limit {}",
+            num(value),
+            num(lim.lcl)
+        ))
+    } else {
+        None
+    }
+}
+
+/// The most common subgroup size; the larger one on a tie.
+fn nominal_size(stats: &[PointStats]) -> usize {
+    let mut counts = std::collections::BTreeMap::new();
+    for s in stats {
+        *counts.entry(s.n).or_insert(0usize) += 1;
+    }
+    counts
+        .iter()
+        .max_by_key(|(n, c)| (**c, **n))
+        .map(|(n, _)| *n)
+        .unwrap_or(1)
+}

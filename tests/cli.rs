@@ -1,0 +1,349 @@
+//! The command line, run as a user runs it: the built binary on real files.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+use linewarden::limits_file::StoredLimits;
+
+fn run(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_linewarden"))
+        .args(args)
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .output()
+        .expect("the binary runs")
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+fn stdout(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+fn write(dir: &Path, name: &str, text: &str) -> String {
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p.display().to_string()
+}
+
+const DEMO: &str = "demo-feeds/vb210-bore-baseline.csv";
+
+#[test]
+fn demo_baseline_report_and_json_keys() {
+    let o = run(&[
+        "limits",
+        "--input",
+        DEMO,
+        "--lsl",
+        "11.985",
+        "--usl",
+        "12.015",
+        "--auto-exclude",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = stdout(&o);
+    assert!(
+        text.contains("Baseline study: X̄-R chart, subgroups of 5"),
+        "{text}"
+    );
+    assert!(
+        text.contains("#9"),
+        "subgroup 9 (the insert change) is excluded: {text}"
+    );
+
+    let o = run(&[
+        "limits",
+        "--input",
+        DEMO,
+        "--lsl",
+        "11.985",
+        "--usl",
+        "12.015",
+        "--target",
+        "12",
+        "--auto-exclude",
+        "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    for key in [
+        "chart",
+        "subgroup_size",
+        "subgroups_total",
+        "subgroups_used",
+        "excluded",
+        "sigma_within",
+        "sigma_overall",
+        "location",
+        "dispersion",
+        "capability",
+    ] {
+        assert!(v.get(key).is_some(), "missing key {key}");
+    }
+    assert_eq!(v["chart"], "xbar-r");
+    assert_eq!(v["subgroup_size"], 5);
+    assert_eq!(v["subgroups_total"], 25);
+    assert_eq!(v["excluded"][0]["subgroup"], 9);
+    assert!(
+        v["excluded"][0]["reason"]
+            .as_str()
+            .unwrap()
+            .contains("above the upper control limit")
+    );
+    for key in ["center", "ucl", "lcl"] {
+        assert!(v["location"][key].is_f64());
+    }
+    assert_eq!(v["dispersion"]["kind"], "range");
+    let cap = &v["capability"];
+    for key in ["cp", "cpk", "pp", "ppk", "cpm", "ppm_below", "ppm_above"] {
+        assert!(cap[key].is_f64(), "capability.{key} = {}", cap[key]);
+    }
+    assert_eq!(cap["cp_ci95"].as_array().unwrap().len(), 2);
+    assert_eq!(cap["cpk_ci95"].as_array().unwrap().len(), 2);
+    let without_specs = run(&["limits", "--input", DEMO, "--json"]);
+    let v: serde_json::Value = serde_json::from_slice(&without_specs.stdout).unwrap();
+    assert!(v["capability"].is_null());
+}
+
+#[test]
+fn write_stores_limits_that_load_back() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("bore.toml");
+    let o = run(&[
+        "limits",
+        "--input",
+        DEMO,
+        "--auto-exclude",
+        "--lsl",
+        "11.985",
+        "--usl",
+        "12.015",
+        "--write",
+        out.to_str().unwrap(),
+        "--characteristic",
+        "vb210-bore",
+        "--unit",
+        "mm",
+        "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let stored = StoredLimits::load(&out).unwrap();
+    assert_eq!(stored.characteristic, "vb210-bore");
+    assert_eq!(stored.subgroup_size, 5);
+    assert_eq!(stored.provenance.subgroups_used, 24);
+    assert_eq!(stored.provenance.used, "1-8, 10-25");
+    assert_eq!(stored.provenance.excluded[0].subgroup, 9);
+    let ucl = v["location"]["ucl"].as_f64().unwrap();
+    assert!((stored.location.ucl - ucl).abs() < 1e-9 * ucl);
+    assert_eq!(stored.spec.unwrap().usl, Some(12.015));
+}
+
+#[test]
+fn long_and_single_layouts_give_the_same_study_as_wide() {
+    let dir = tempfile::tempdir().unwrap();
+    let wide = write(
+        dir.path(),
+        "w.csv",
+        "a,b,c\n1.0,1.2,0.9\n1.1,1.3,1.0\n0.9,1.0,1.2\n",
+    );
+    let long = write(
+        dir.path(),
+        "l.csv",
+        "part,lot,diameter\np1,L1,1.0\np2,L1,1.2\np3,L1,0.9\np4,L2,1.1\np5,L2,1.3\np6,L2,1.0\np7,L3,0.9\np8,L3,1.0\np9,L3,1.2\n",
+    );
+    let single = write(
+        dir.path(),
+        "s.csv",
+        "1.0\n1.2\n0.9\n1.1\n1.3\n1.0\n0.9\n1.0\n1.2\n",
+    );
+    let get = |args: &[&str]| {
+        let o = run(args);
+        assert!(o.status.success(), "{}", stderr(&o));
+        let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        v["location"]["ucl"].as_f64().unwrap()
+    };
+    let a = get(&["limits", "--input", &wide, "--json"]);
+    let b = get(&[
+        "limits",
+        "--input",
+        &long,
+        "--layout",
+        "long",
+        "--subgroup-column",
+        "lot",
+        "--value-column",
+        "diameter",
+        "--json",
+    ]);
+    let c = get(&[
+        "limits",
+        "--input",
+        &single,
+        "--layout",
+        "single",
+        "--subgroup-size",
+        "3",
+        "--json",
+    ]);
+    assert!(
+        (a - b).abs() < 1e-12 && (a - c).abs() < 1e-12,
+        "{a} {b} {c}"
+    );
+}
+
+#[test]
+fn few_subgroups_is_a_warning_not_an_error() {
+    let dir = tempfile::tempdir().unwrap();
+    let f = write(dir.path(), "few.csv", "1.0,1.2\n1.1,1.4\n0.9,1.0\n");
+    let o = run(&["limits", "--input", &f]);
+    assert!(o.status.success());
+    assert!(
+        stdout(&o).contains("only 3 subgroups are left"),
+        "{}",
+        stdout(&o)
+    );
+}
+
+/// Each bad input names where it came from and what was found, and exits non-zero.
+#[test]
+fn bad_input_is_named_precisely() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let cases: Vec<(Vec<String>, String)> = vec![
+        (
+            vec![
+                "--input".into(),
+                write(d, "text.csv", "r1,r2\n1.0,1.1\n1.2,abc\n"),
+            ],
+            "text.csv:3:2: \"abc\" is not a number (column \"r2\")".into(),
+        ),
+        (
+            vec!["--input".into(), write(d, "nan.csv", "1.0,1.1\nNaN,1.0\n")],
+            "nan.csv:2:1: \"NaN\" is not a finite reading".into(),
+        ),
+        (
+            vec!["--input".into(), write(d, "inf.csv", "1.0,1.1\n1.0,inf\n")],
+            "inf.csv:2:2: \"inf\" is not a finite reading".into(),
+        ),
+        (
+            vec!["--input".into(), write(d, "empty.csv", "1.0,1.1\n1.0,\n")],
+            "empty.csv:2:2: an empty cell is not a number".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                write(d, "ragged.csv", "1.0,1.1,1.2\n1.0,1.1\n"),
+            ],
+            "ragged.csv:2: the row has 2 fields but the first row has 3".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                write(
+                    d,
+                    "one.csv",
+                    "subgroup,value\n1,1.0\n1,1.2\n2,1.1\n3,0.9\n3,1.0\n",
+                ),
+                "--layout".into(),
+                "long".into(),
+                "--chart".into(),
+                "xbar-r".into(),
+            ],
+            "subgroup 2 has 1 reading(s); the xbar-r chart needs at least 2 per subgroup".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                write(d, "flat.csv", "1.0,1.0\n1.5,1.5\n1.2,1.2\n"),
+            ],
+            "the gauge resolution is too coarse".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                DEMO.into(),
+                "--lsl".into(),
+                "12.1".into(),
+                "--usl".into(),
+                "11.9".into(),
+            ],
+            "--lsl 12.1 must be below --usl 11.9".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                write(d, "cols.csv", "a,b\n1,2\n"),
+                "--value-column".into(),
+                "c".into(),
+            ],
+            "cols.csv: no column named \"c\" (the header has: a, b)".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                DEMO.into(),
+                "--exclude".into(),
+                "26".into(),
+            ],
+            "subgroup 26 is not in the data (subgroups are numbered 1..=25)".into(),
+        ),
+        (
+            vec![
+                "--input".into(),
+                d.join("missing.csv").display().to_string(),
+            ],
+            "cannot read input file".into(),
+        ),
+    ];
+    for (args, expected) in cases {
+        let mut all = vec!["limits".to_string()];
+        all.extend(args);
+        let refs: Vec<&str> = all.iter().map(String::as_str).collect();
+        let o = run(&refs);
+        assert!(!o.status.success(), "{refs:?} should fail");
+        let err = stderr(&o);
+        assert!(
+            err.contains(&expected),
+            "{refs:?}\nexpected: {expected}\ngot: {err}"
+        );
+        assert!(err.starts_with("error: "), "{err}");
+    }
+}
+
+#[test]
+fn capability_command_reports_indices_and_verdict() {
+    let o = run(&[
+        "capability",
+        "--input",
+        DEMO,
+        "--lsl",
+        "11.985",
+        "--usl",
+        "12.015",
+        "--exclude",
+        "9",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = stdout(&o);
+    for needle in [
+        "Cp ",
+        "Cpk ",
+        "Pp ",
+        "Ppk ",
+        "95% CI",
+        "Anderson–Darling",
+        "verdict:",
+    ] {
+        assert!(text.contains(needle), "missing {needle}: {text}");
+    }
+    let o = run(&["capability", "--input", DEMO, "--usl", "12.015", "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert!(v["cp"].is_null(), "one-sided spec has no Cp");
+    assert!(v["cpk"].is_f64() && v["ppm_above"].is_f64() && v["ppm_below"].is_null());
+    let o = run(&["capability", "--input", DEMO]);
+    assert!(!o.status.success());
+    assert!(stderr(&o).contains("capability needs --lsl and/or --usl"));
+}
