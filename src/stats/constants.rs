@@ -64,6 +64,15 @@ pub struct Factors {
 static CACHE: [OnceLock<Factors>; MAX_SIZE + 1] = [const { OnceLock::new() }; MAX_SIZE + 1];
 
 /// The factors for subgroup size `n` (2..=100), computed on first use and cached.
+///
+/// ```
+/// let f = linewarden::stats::factors(5).unwrap();
+/// // Montgomery, Introduction to SQC, Appendix VI: d2 = 2.326, A2 = 0.577, D4 = 2.114 for n = 5.
+/// assert!((f.d2 - 2.326).abs() < 5e-4);
+/// assert!((f.A2 - 0.577).abs() < 5e-4);
+/// assert!((f.D4 - 2.114).abs() < 5e-4);
+/// assert!(linewarden::stats::factors(1).is_err());
+/// ```
 pub fn factors(n: usize) -> Result<&'static Factors, StatsError> {
     if !(MIN_SIZE..=MAX_SIZE).contains(&n) {
         return Err(StatsError::SubgroupSizeOutOfRange { n });
