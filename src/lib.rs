@@ -7,6 +7,8 @@
 //!   ([`stats::ewma`]) and CUSUM ([`stats::cusum`]), baseline studies ([`stats::study`]),
 //!   capability ([`stats::capability`]) and normality ([`stats::normality`]). No I/O, no clock,
 //!   no tokio.
+//! * [`rules`] — run rules evaluated incrementally per subgroup and per reading, their TOML
+//!   config and presets, and average run lengths ([`rules::arl`]). Pure, like [`stats`].
 //! * [`input`] — turns CSV text (wide, long or one reading per row) into subgroups, with errors
 //!   that name the file, line and column.
 //! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
@@ -24,4 +26,5 @@ pub mod fsutil;
 pub mod input;
 pub mod limits_file;
 pub mod report;
+pub mod rules;
 pub mod stats;

@@ -32,6 +32,39 @@ enum Command {
     Limits(LimitsArgs),
     /// Report process capability (Cp, Cpk, Pp, Ppk, Cpm) of a data file against its specs.
     Capability(CapabilityArgs),
+    /// How often a rule set raises a false alarm, and how fast it catches a mean shift
+    /// (average run lengths).
+    Arl(ArlArgs),
+}
+
+#[derive(Args)]
+struct ArlArgs {
+    /// A published rule set to start from.
+    #[arg(long, value_enum)]
+    preset: Option<linewarden::rules::Preset>,
+    /// A TOML file with a [rules] table (preset, off, [[rules.rule]]), as in a characteristic.
+    #[arg(long, value_name = "FILE")]
+    rules: Option<PathBuf>,
+    /// Mean shifts to evaluate, in sigmas of the plotted point.
+    #[arg(
+        long,
+        value_delimiter = ',',
+        allow_hyphen_values = true,
+        default_value = "0,0.5,1,1.5,2,3"
+    )]
+    shift: Vec<f64>,
+    /// Time between subgroups (e.g. 1h, 30min, 90s), to state the ARL as a time.
+    #[arg(long, value_name = "DURATION")]
+    interval: Option<String>,
+    /// Simulated runs per shift, when simulation is needed.
+    #[arg(long, default_value_t = 20_000)]
+    runs: u64,
+    /// Seed for the simulation.
+    #[arg(long, default_value_t = 1984)]
+    seed: u64,
+    /// Print JSON instead of the table.
+    #[arg(long)]
+    json: bool,
 }
 
 #[derive(Clone, Copy, ValueEnum)]
@@ -147,6 +180,7 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Limits(a) => limits(a),
         Command::Capability(a) => capability_cmd(a),
+        Command::Arl(a) => arl_cmd(a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -340,4 +374,139 @@ fn capability_json(c: &Capability) -> serde_json::Value {
         }
     }
     v
+}
+
+/// A TOML file holding just a `[rules]` table.
+#[derive(serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RulesFile {
+    rules: linewarden::rules::RulesConfig,
+}
+
+fn arl_cmd(a: ArlArgs) -> Result<()> {
+    use linewarden::rules::arl::{self, ArlOptions, time_between};
+    use linewarden::rules::{RuleSet, RulesConfig};
+    let mut cfg = RulesConfig::default();
+    let mut source = String::new();
+    let mut text = String::new();
+    if let Some(path) = &a.rules {
+        source = path.display().to_string();
+        text = std::fs::read_to_string(path)
+            .with_context(|| format!("cannot read rules file {source}"))?;
+        let loc = linewarden::diag::Locator::new(&text);
+        let file: RulesFile = toml::from_str(&text).map_err(|e| {
+            anyhow::anyhow!(
+                "{}",
+                linewarden::diag::Problems {
+                    file: source.clone(),
+                    problems: vec![loc.from_toml_error(&e)],
+                }
+            )
+        })?;
+        cfg = file.rules;
+    }
+    match (a.preset, cfg.preset) {
+        (Some(p), None) => cfg.preset = Some(p),
+        (Some(p), Some(q)) if p != q => {
+            bail!("--preset {p:?} conflicts with preset {q:?} in {source}")
+        }
+        (None, None) if a.rules.is_none() => bail!("give --preset NAME and/or --rules FILE"),
+        _ => {}
+    }
+    let loc = linewarden::diag::Locator::new(&text);
+    let set = RuleSet::from_config(&cfg, "rules", &loc).map_err(|problems| {
+        anyhow::anyhow!(
+            "{}",
+            linewarden::diag::Problems {
+                file: if source.is_empty() {
+                    "--preset".into()
+                } else {
+                    source.clone()
+                },
+                problems,
+            }
+        )
+    })?;
+    let interval_s = match &a.interval {
+        Some(t) => {
+            let d = humantime::parse_duration(t).with_context(|| {
+                format!("--interval {t:?} is not a duration such as 1h, 30min or 90s")
+            })?;
+            if d.is_zero() {
+                bail!("--interval {t:?} must be longer than zero");
+            }
+            Some(d.as_secs_f64())
+        }
+        None => None,
+    };
+    let opts = ArlOptions {
+        runs: a.runs,
+        seed: a.seed,
+        ..ArlOptions::default()
+    };
+    let results = arl::arl(&set, &a.shift, &opts)?;
+    if a.json {
+        let rows: Vec<serde_json::Value> = results
+            .iter()
+            .map(|r| {
+                let mut v = serde_json::to_value(r).unwrap_or_default();
+                if let Some(i) = interval_s {
+                    v["time_to_signal_s"] = json!(r.arl * i);
+                }
+                v
+            })
+            .collect();
+        let v = json!({ "rules": set.rules, "interval_s": interval_s, "results": rows });
+        println!("{}", serde_json::to_string_pretty(&v)?);
+        return Ok(());
+    }
+    println!("Rule set: {}", set.ids().join(", "));
+    let ignored: Vec<String> = set
+        .rules
+        .iter()
+        .filter(|r| r.kind.on_readings())
+        .map(|r| r.id.clone())
+        .collect();
+    if !ignored.is_empty() {
+        println!("  (reading rules not counted: {})", ignored.join(", "));
+    }
+    if let Some(t) = &a.interval {
+        println!("A subgroup every {t}");
+    }
+    println!();
+    println!("  {:<8} {:>10}  {:<18} in words", "shift", "ARL", "method");
+    for r in &results {
+        let ci = r
+            .ci95
+            .map(|[lo, hi]| {
+                format!(
+                    " (95% CI {} to {})",
+                    linewarden::format::sig(lo, 4),
+                    linewarden::format::sig(hi, 4)
+                )
+            })
+            .unwrap_or_default();
+        let words = match interval_s {
+            Some(i) if r.shift == 0.0 => {
+                format!("one false alarm every {}", time_between(r.arl, i))
+            }
+            Some(i) => format!("signalled after {} on average", time_between(r.arl, i)),
+            None if r.shift == 0.0 => format!(
+                "one false alarm every {} subgroups",
+                linewarden::format::sig(r.arl, 4)
+            ),
+            None => format!(
+                "signalled after {} subgroups on average",
+                linewarden::format::sig(r.arl, 4)
+            ),
+        };
+        println!(
+            "  {:<8} {:>10}  {:<18} {words}{ci}",
+            linewarden::format::num(r.shift),
+            linewarden::format::sig(r.arl, 5),
+            r.method.name()
+        );
+    }
+    println!("\nShifts are in sigmas of the plotted point (sigma/sqrt(n) for subgroup means).");
+    Ok(())
 }

@@ -347,3 +347,69 @@ fn capability_command_reports_indices_and_verdict() {
     assert!(!o.status.success());
     assert!(stderr(&o).contains("capability needs --lsl and/or --usl"));
 }
+
+#[test]
+fn arl_command_reports_markov_results_and_time_in_words() {
+    let o = run(&[
+        "arl",
+        "--preset",
+        "western-electric",
+        "--shift",
+        "0,1",
+        "--interval",
+        "1h",
+        "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["rules"].as_array().unwrap().len(), 4);
+    assert_eq!(v["rules"][3]["id"], "one-side-run");
+    assert_eq!(v["rules"][3]["length"], 8);
+    let r0 = &v["results"][0];
+    assert_eq!(r0["shift"], 0.0);
+    assert_eq!(r0["method"], "markov");
+    // Champ and Woodall (1987): 91.75.
+    assert!((r0["arl"].as_f64().unwrap() - 91.75).abs() < 0.01);
+    assert!((r0["time_to_signal_s"].as_f64().unwrap() - 91.75 * 3600.0).abs() < 50.0);
+    let o = run(&[
+        "arl",
+        "--preset",
+        "western-electric",
+        "--shift",
+        "0",
+        "--interval",
+        "1h",
+    ]);
+    let text = stdout(&o);
+    assert!(text.contains("one false alarm every 3.82 days"), "{text}");
+}
+
+#[test]
+fn arl_with_a_rules_file_and_bad_rules() {
+    let dir = tempfile::tempdir().unwrap();
+    let good = write(
+        dir.path(),
+        "ewma.toml",
+        "[rules]\n[[rules.rule]]\nkind = \"ewma\"\nlambda = 0.2\nwidth = 2.962\n",
+    );
+    let o = run(&["arl", "--rules", &good, "--shift", "0", "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["results"][0]["method"], "integral-equation");
+    // Lucas and Saccucci (1990): about 500.
+    assert!((v["results"][0]["arl"].as_f64().unwrap() - 500.0).abs() < 5.0);
+    let bad = write(
+        dir.path(),
+        "bad.toml",
+        "[rules]\n[[rules.rule]]\nkind = \"cusum\"\nk = 0.5\n",
+    );
+    let o = run(&["arl", "--rules", &bad]);
+    assert!(!o.status.success());
+    assert!(
+        stderr(&o).contains("bad.toml:2:1: rules.rule[0]: kind = \"cusum\" needs h"),
+        "{}",
+        stderr(&o)
+    );
+    let o = run(&["arl"]);
+    assert!(stderr(&o).contains("give --preset NAME and/or --rules FILE"));
+}

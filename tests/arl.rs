@@ -1,0 +1,97 @@
+//! Average run lengths against published values (tolerance about 1%, as the sources print three
+//! or four significant digits).
+
+use linewarden::rules::arl::{self, ArlOptions, Method, cusum_arl, ewma_arl};
+use linewarden::rules::config::{ChartSide, Rule, RuleKind, RuleSet};
+use linewarden::rules::{Preset, Severity};
+
+fn single(kind: RuleKind) -> RuleSet {
+    RuleSet {
+        rules: vec![Rule {
+            id: kind.name().to_string(),
+            severity: Severity::Warn,
+            kind,
+        }],
+    }
+}
+
+fn within(actual: f64, published: f64, rel: f64, what: &str) {
+    assert!(
+        ((actual - published) / published).abs() <= rel,
+        "{what}: computed {actual}, published {published}"
+    );
+}
+
+#[test]
+fn one_point_beyond_three_sigma() {
+    // 1 / (2·(1 − Φ(3))) = 370.4 (Montgomery, Introduction to SQC, ch. 5, the in-control ARL of
+    // a Shewhart chart with 3-sigma limits).
+    let set = single(RuleKind::BeyondLimits {
+        chart: ChartSide::Both,
+    });
+    let r = arl::arl(&set, &[0.0, 1.0], &ArlOptions::default()).unwrap();
+    assert_eq!(r[0].method, Method::Markov);
+    within(r[0].arl, 370.4, 0.001, "ARL0");
+    // Montgomery, ch. 6: a one-sigma shift on an individuals chart is caught after 43.9 points.
+    within(r[1].arl, 43.89, 0.002, "ARL(1)");
+}
+
+#[test]
+fn western_electric_rules_together() {
+    // Champ and Woodall, Technometrics 29(4), 1987, Table 1: the four Western Electric rules
+    // together have an in-control ARL of 91.75.
+    let set = RuleSet::preset(Preset::WesternElectric);
+    let r = arl::arl(&set, &[0.0], &ArlOptions::default()).unwrap();
+    assert_eq!(r[0].method, Method::Markov);
+    within(r[0].arl, 91.75, 0.01, "WE ARL0");
+    eprintln!("WE chain: {:?} states, ARL0 {}", r[0].states, r[0].arl);
+}
+
+#[test]
+fn tabular_cusum_montgomery_table() {
+    // Montgomery, Introduction to SQC, ch. 9, ARL of the tabular CUSUM with k = 1/2:
+    // h = 4: 168 in control, 8.38 at a one-sigma shift; h = 5: 465 and 10.4.
+    within(cusum_arl(0.5, 4.0, 0.0, 0.0, 96), 168.0, 0.01, "h=4 ARL0");
+    within(cusum_arl(0.5, 4.0, 0.0, 1.0, 96), 8.38, 0.01, "h=4 ARL(1)");
+    within(cusum_arl(0.5, 5.0, 0.0, 0.0, 96), 465.0, 0.01, "h=5 ARL0");
+    within(cusum_arl(0.5, 5.0, 0.0, 1.0, 96), 10.4, 0.01, "h=5 ARL(1)");
+    let set = single(RuleKind::Cusum {
+        k: 0.5,
+        h: 5.0,
+        head_start: 0.0,
+    });
+    let r = arl::arl(&set, &[0.0], &ArlOptions::default()).unwrap();
+    assert_eq!(r[0].method, Method::IntegralEquation);
+    within(r[0].arl, 465.0, 0.01, "via arl()");
+}
+
+#[test]
+fn ewma_lucas_saccucci() {
+    // Lucas and Saccucci, Technometrics 32(1), 1990: λ = 0.10 with L = 2.814 and λ = 0.20 with
+    // L = 2.962 both give an in-control ARL of about 500.
+    within(ewma_arl(0.10, 2.814, 0.0, 160), 500.0, 0.01, "λ=0.1");
+    within(ewma_arl(0.20, 2.962, 0.0, 160), 500.0, 0.01, "λ=0.2");
+}
+
+#[test]
+fn monte_carlo_agrees_with_the_exact_chain() {
+    // The same single rule, forced through simulation by adding a trend rule that can never
+    // fire within a run of this length (a run of 64 steadily rising points), agrees with the
+    // exact 370.4 within its own confidence interval (plus the shift the extra rule can cause).
+    let mut set = single(RuleKind::BeyondLimits {
+        chart: ChartSide::Both,
+    });
+    set.rules.push(Rule {
+        id: "long-trend".into(),
+        severity: Severity::Notice,
+        kind: RuleKind::SteadyTrend { length: 64 },
+    });
+    let opts = ArlOptions {
+        runs: 40000,
+        ..ArlOptions::default()
+    };
+    let r = arl::arl(&set, &[0.0], &opts).unwrap();
+    assert_eq!(r[0].method, Method::MonteCarlo);
+    let [lo, hi] = r[0].ci95.unwrap();
+    assert!(lo < 370.4 && 370.4 < hi, "CI {lo}..{hi}, mean {}", r[0].arl);
+}
