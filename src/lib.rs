@@ -9,6 +9,9 @@
 //!   no tokio.
 //! * [`rules`] — run rules evaluated incrementally per subgroup and per reading, their TOML
 //!   config and presets, and average run lengths ([`rules::arl`]). Pure, like [`stats`].
+//! * [`archive`] — the append-only record of everything: framed, checksummed, sealed and
+//!   hash-chained segment files; the group-committing writer and its task; readers, `verify`,
+//!   export and state rebuild from checkpoints.
 //! * [`input`] — turns CSV text (wide, long or one reading per row) into subgroups, with errors
 //!   that name the file, line and column.
 //! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
@@ -20,6 +23,7 @@
 //!
 //! The binary (`src/main.rs`) is a thin command-line shell over these modules.
 
+pub mod archive;
 pub mod diag;
 pub mod format;
 pub mod fsutil;

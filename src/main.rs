@@ -35,6 +35,49 @@ enum Command {
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
+    /// Inspect the archive: verify it, export it, count what it holds.
+    #[command(subcommand)]
+    Archive(ArchiveCommand),
+}
+
+#[derive(Subcommand)]
+enum ArchiveCommand {
+    /// Check every record's CRC, the sequence numbers, every seal and the hash chain; exits
+    /// non-zero on any problem.
+    Verify {
+        /// The archive directory.
+        dir: PathBuf,
+    },
+    /// Print records as CSV or JSON lines.
+    Export {
+        dir: PathBuf,
+        #[arg(long, value_enum, default_value = "jsonl")]
+        format: ExportFormat,
+        /// Only records about this characteristic.
+        #[arg(long, value_name = "ID")]
+        characteristic: Option<String>,
+        /// Only records appended at or after this time (RFC 3339, e.g. 2026-12-01T06:00:00Z).
+        #[arg(long, value_name = "TIME")]
+        since: Option<String>,
+        /// Only records appended before this time.
+        #[arg(long, value_name = "TIME")]
+        until: Option<String>,
+        /// Only records of these kinds (reading-accepted, subgroup-result, alert, ...).
+        #[arg(long, value_delimiter = ',')]
+        kind: Vec<String>,
+    },
+    /// Count segments, records by kind and by characteristic.
+    Stats {
+        dir: PathBuf,
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+#[derive(Clone, Copy, ValueEnum)]
+enum ExportFormat {
+    Csv,
+    Jsonl,
 }
 
 #[derive(Args)]
@@ -181,6 +224,7 @@ fn main() -> ExitCode {
         Command::Limits(a) => limits(a),
         Command::Capability(a) => capability_cmd(a),
         Command::Arl(a) => arl_cmd(a),
+        Command::Archive(a) => archive_cmd(a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -509,4 +553,214 @@ fn arl_cmd(a: ArlArgs) -> Result<()> {
     }
     println!("\nShifts are in sigmas of the plotted point (sigma/sqrt(n) for subgroup means).");
     Ok(())
+}
+
+fn parse_time(option: &str, t: &str) -> Result<i64> {
+    let st = humantime::parse_rfc3339_weak(t)
+        .with_context(|| format!("{option} {t:?} is not a time such as 2026-12-01T06:00:00Z"))?;
+    Ok(st
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_millis() as i64)
+        .unwrap_or(0))
+}
+
+fn format_ms(ms: i64) -> String {
+    let t = std::time::UNIX_EPOCH + std::time::Duration::from_millis(ms.max(0) as u64);
+    humantime::format_rfc3339_millis(t).to_string()
+}
+
+fn archive_cmd(a: ArchiveCommand) -> Result<()> {
+    use linewarden::archive::reader::{self, Filter, Reader};
+    match a {
+        ArchiveCommand::Verify { dir } => {
+            if !dir.is_dir() {
+                bail!("{} is not an archive directory", dir.display());
+            }
+            let r = reader::verify(&dir)?;
+            println!(
+                "{}: {} segments ({} sealed), {} records, last sequence {}",
+                dir.display(),
+                r.segments,
+                r.sealed,
+                r.records,
+                r.last_seq
+            );
+            for n in &r.notes {
+                println!("  note: {n}");
+            }
+            for p in &r.problems {
+                println!("  PROBLEM: {p}");
+            }
+            if r.problems.is_empty() {
+                println!("verified: no problems");
+                Ok(())
+            } else {
+                bail!("{} problem(s) found in {}", r.problems.len(), dir.display())
+            }
+        }
+        ArchiveCommand::Export {
+            dir,
+            format,
+            characteristic,
+            since,
+            until,
+            kind,
+        } => {
+            let filter = Filter {
+                from_seq: None,
+                since_ms: since
+                    .as_deref()
+                    .map(|t| parse_time("--since", t))
+                    .transpose()?,
+                until_ms: until
+                    .as_deref()
+                    .map(|t| parse_time("--until", t))
+                    .transpose()?,
+                characteristic,
+                kinds: kind,
+            };
+            let r = Reader::open(&dir)?;
+            let stdout = std::io::stdout();
+            let mut out = std::io::BufWriter::new(stdout.lock());
+            use std::io::Write;
+            match format {
+                ExportFormat::Jsonl => {
+                    for e in r.iter(&filter) {
+                        serde_json::to_writer(&mut out, &e?)?;
+                        out.write_all(b"\n")?;
+                    }
+                }
+                ExportFormat::Csv => {
+                    let mut w = csv::Writer::from_writer(out);
+                    w.write_record([
+                        "seq",
+                        "time",
+                        "kind",
+                        "characteristic",
+                        "value",
+                        "unit",
+                        "source",
+                        "part",
+                        "detail",
+                    ])?;
+                    for e in r.iter(&filter) {
+                        let e = e?;
+                        let row = csv_row(&e);
+                        w.write_record([
+                            e.seq.to_string(),
+                            format_ms(e.time_ms),
+                            e.record.kind().to_string(),
+                            e.record.characteristic().unwrap_or("").to_string(),
+                            row.0,
+                            row.1,
+                            row.2,
+                            row.3,
+                            row.4,
+                        ])?;
+                    }
+                    w.flush()?;
+                    return Ok(());
+                }
+            }
+            out.flush()?;
+            Ok(())
+        }
+        ArchiveCommand::Stats { dir, json } => {
+            let s = reader::stats(&dir)?;
+            if json {
+                println!("{}", serde_json::to_string_pretty(&s)?);
+                return Ok(());
+            }
+            println!("{}", dir.display());
+            println!(
+                "  segments        {} ({} sealed), {} bytes",
+                s.segments, s.sealed, s.bytes
+            );
+            println!("  records         {}", s.records);
+            if let (Some(a), Some(b)) = (s.first_seq, s.last_seq) {
+                println!("  sequence        {a} to {b}");
+            }
+            if let (Some(a), Some(b)) = (s.first_time_ms, s.last_time_ms) {
+                println!("  time            {} to {}", format_ms(a), format_ms(b));
+            }
+            println!("  by kind");
+            for (k, n) in &s.by_kind {
+                println!("    {k:<22} {n}");
+            }
+            if !s.by_characteristic.is_empty() {
+                println!("  by characteristic");
+                for (k, n) in &s.by_characteristic {
+                    println!("    {k:<22} {n}");
+                }
+            }
+            Ok(())
+        }
+    }
+}
+
+/// value, unit, source, part, detail for one CSV row.
+fn csv_row(e: &linewarden::archive::Envelope) -> (String, String, String, String, String) {
+    use linewarden::archive::Record as R;
+    let s = |v: &Option<String>| v.clone().unwrap_or_default();
+    match &e.record {
+        R::ReadingAccepted {
+            value,
+            unit,
+            source,
+            part,
+            ..
+        } => (
+            value.to_string(),
+            s(unit),
+            source.clone(),
+            s(part),
+            String::new(),
+        ),
+        R::ReadingRejected {
+            source,
+            raw,
+            reason,
+            ..
+        } => (
+            String::new(),
+            String::new(),
+            source.clone(),
+            String::new(),
+            format!("{reason} (raw: {raw})"),
+        ),
+        R::SubgroupResult {
+            subgroup,
+            violations,
+            ..
+        } => (
+            subgroup.mean.to_string(),
+            String::new(),
+            String::new(),
+            String::new(),
+            format!(
+                "subgroup {} of {}{}",
+                subgroup.number,
+                subgroup.n,
+                if violations.is_empty() {
+                    String::new()
+                } else {
+                    format!(
+                        "; {}",
+                        violations
+                            .iter()
+                            .map(|v| v.rule.as_str())
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    )
+                }
+            ),
+        ),
+        other => (
+            String::new(),
+            String::new(),
+            String::new(),
+            String::new(),
+            serde_json::to_string(other).unwrap_or_default(),
+        ),
+    }
 }

@@ -1,0 +1,304 @@
+//! What the archive holds: every reading, rejected reading, subgroup verdict, alert event,
+//! limit change and daemon event, each with a sequence number and the time it was recorded.
+//!
+//! Records are versioned (`v`); a reader refuses versions it does not know rather than guess.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use crate::limits_file::StoredLimits;
+use crate::rules::Violation;
+use crate::stats::Limits;
+
+/// The record version this build writes.
+pub const RECORD_VERSION: u32 = 1;
+
+/// A record as stored: its sequence number, when it was recorded, and what it says.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Envelope {
+    pub v: u32,
+    /// Monotonic, gap-free sequence number across the whole archive, from 1.
+    pub seq: u64,
+    /// When the record was appended, milliseconds since the Unix epoch.
+    pub time_ms: i64,
+    #[serde(flatten)]
+    pub record: Record,
+}
+
+/// An alert's life events.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "event", rename_all = "kebab-case")]
+pub enum AlertEvent {
+    Raised {
+        rule: String,
+        severity: crate::rules::Severity,
+        message: String,
+    },
+    /// The same rule fired again while the alert was open.
+    Repeated {
+        count: u64,
+    },
+    Delivered {
+        output: String,
+    },
+    Acknowledged {
+        by: String,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        note: Option<String>,
+    },
+    Cleared,
+    Escalated {
+        to: String,
+    },
+}
+
+/// One subgroup as it was plotted, in brief: enough to redraw a chart and rebuild rules.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct SubgroupSummary {
+    pub number: u64,
+    pub time_ms: i64,
+    pub n: usize,
+    pub mean: f64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dispersion: Option<f64>,
+}
+
+/// A reading waiting to complete a subgroup.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PendingReading {
+    /// The sequence number of its `reading-accepted` record.
+    pub seq: u64,
+    pub value: f64,
+    pub time_ms: i64,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub part: Option<String>,
+}
+
+/// The recent state of one characteristic, as the archive knows it.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct CharacteristicTail {
+    /// The last subgroups, oldest first (at most the archive's tail length).
+    pub recent: Vec<SubgroupSummary>,
+    /// Accepted readings not yet part of a subgroup, oldest first.
+    pub pending: std::collections::VecDeque<PendingReading>,
+    /// The engine's last saved state and the sequence number it was saved at.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub engine: Option<(u64, serde_json::Value)>,
+}
+
+/// Everything the archive records.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "kebab-case")]
+pub enum Record {
+    ReadingAccepted {
+        source: String,
+        characteristic: String,
+        value: f64,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        unit: Option<String>,
+        /// When the gauge or source says it measured, if it says.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        source_time_ms: Option<i64>,
+        /// When linewarden received it.
+        arrival_ms: i64,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        part: Option<String>,
+        /// A key that identifies the message at its source (MQTT topic and payload hash, file
+        /// hash and row), so that redeliveries are recognised.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        source_key: Option<String>,
+    },
+    ReadingRejected {
+        source: String,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        characteristic: Option<String>,
+        raw: String,
+        reason: String,
+        arrival_ms: i64,
+    },
+    SubgroupResult {
+        characteristic: String,
+        subgroup: SubgroupSummary,
+        /// The `reading-accepted` records it was formed from.
+        readings: Vec<u64>,
+        /// Whether it was completed early (by the maximum wait) with fewer readings.
+        #[serde(default)]
+        partial: bool,
+        location: Limits,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        dispersion: Option<Limits>,
+        violations: Vec<Violation>,
+    },
+    /// A subgroup that was given up (discarded after its maximum wait).
+    SubgroupDiscarded {
+        characteristic: String,
+        readings: Vec<u64>,
+        reason: String,
+    },
+    Alert {
+        alert_id: String,
+        characteristic: String,
+        #[serde(flatten)]
+        event: AlertEvent,
+    },
+    LimitsInstalled {
+        characteristic: String,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        old: Option<Box<StoredLimits>>,
+        new: Box<StoredLimits>,
+        reason: String,
+    },
+    ConfigLoaded {
+        path: String,
+        sha256: String,
+    },
+    DaemonStarted {
+        version: String,
+    },
+    DaemonStopped {
+        reason: String,
+    },
+    /// The engine's state for one characteristic, saved so a restart resumes its rules.
+    EngineState {
+        characteristic: String,
+        state: serde_json::Value,
+    },
+    /// Written by the archive itself at the start of every segment: the recent state of every
+    /// characteristic, so a restart reads back only from the newest checkpoint.
+    Checkpoint {
+        characteristics: BTreeMap<String, CharacteristicTail>,
+    },
+}
+
+impl Record {
+    /// The record's kind, as written in the `kind` field.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            Record::ReadingAccepted { .. } => "reading-accepted",
+            Record::ReadingRejected { .. } => "reading-rejected",
+            Record::SubgroupResult { .. } => "subgroup-result",
+            Record::SubgroupDiscarded { .. } => "subgroup-discarded",
+            Record::Alert { .. } => "alert",
+            Record::LimitsInstalled { .. } => "limits-installed",
+            Record::ConfigLoaded { .. } => "config-loaded",
+            Record::DaemonStarted { .. } => "daemon-started",
+            Record::DaemonStopped { .. } => "daemon-stopped",
+            Record::EngineState { .. } => "engine-state",
+            Record::Checkpoint { .. } => "checkpoint",
+        }
+    }
+
+    /// The characteristic the record is about, if any.
+    pub fn characteristic(&self) -> Option<&str> {
+        match self {
+            Record::ReadingAccepted { characteristic, .. }
+            | Record::SubgroupResult { characteristic, .. }
+            | Record::SubgroupDiscarded { characteristic, .. }
+            | Record::Alert { characteristic, .. }
+            | Record::LimitsInstalled { characteristic, .. }
+            | Record::EngineState { characteristic, .. } => Some(characteristic),
+            Record::ReadingRejected { characteristic, .. } => characteristic.as_deref(),
+            _ => None,
+        }
+    }
+}
+
+/// Pending readings kept per characteristic at most: the largest subgroup linewarden forms.
+/// More means readings that no subgroup will take (they stay in the archive, just not in the
+/// tail), and checkpoints stay small.
+pub const MAX_PENDING: usize = crate::stats::constants::MAX_SIZE;
+
+/// The recent state of every characteristic, kept up to date record by record. The writer
+/// keeps one and writes it as a checkpoint at the start of each segment; a reader rebuilds it
+/// from the newest checkpoint and the records after it.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct Tail {
+    /// How many recent subgroups to keep per characteristic.
+    pub keep: usize,
+    pub characteristics: BTreeMap<String, CharacteristicTail>,
+}
+
+impl Tail {
+    /// An empty tail keeping `keep` subgroups per characteristic.
+    pub fn new(keep: usize) -> Self {
+        Tail {
+            keep,
+            characteristics: BTreeMap::new(),
+        }
+    }
+
+    /// Takes one record into account.
+    pub fn apply(&mut self, e: &Envelope) {
+        self.apply_record(e.seq, &e.record);
+    }
+
+    /// The entry for `c`, created if new (without allocating the key when it exists).
+    fn entry(&mut self, c: &str) -> &mut CharacteristicTail {
+        if !self.characteristics.contains_key(c) {
+            self.characteristics
+                .insert(c.to_string(), CharacteristicTail::default());
+        }
+        self.characteristics.get_mut(c).expect("inserted above")
+    }
+
+    /// Takes one record, numbered `seq`, into account.
+    pub fn apply_record(&mut self, seq: u64, record: &Record) {
+        match record {
+            Record::ReadingAccepted {
+                characteristic,
+                value,
+                source_time_ms,
+                arrival_ms,
+                part,
+                ..
+            } => {
+                let t = self.entry(characteristic);
+                if t.pending.len() >= MAX_PENDING {
+                    t.pending.pop_front();
+                }
+                t.pending.push_back(PendingReading {
+                    seq,
+                    value: *value,
+                    time_ms: source_time_ms.unwrap_or(*arrival_ms),
+                    part: part.clone(),
+                });
+            }
+            Record::SubgroupResult {
+                characteristic,
+                subgroup,
+                readings,
+                ..
+            } => {
+                let keep = self.keep;
+                let t = self.entry(characteristic);
+                t.pending.retain(|p| !readings.contains(&p.seq));
+                t.recent.push(*subgroup);
+                if t.recent.len() > keep {
+                    let extra = t.recent.len() - keep;
+                    t.recent.drain(..extra);
+                }
+            }
+            Record::SubgroupDiscarded {
+                characteristic,
+                readings,
+                ..
+            } => {
+                if let Some(t) = self.characteristics.get_mut(characteristic) {
+                    t.pending.retain(|p| !readings.contains(&p.seq));
+                }
+            }
+            Record::EngineState {
+                characteristic,
+                state,
+            } => {
+                let t = self.entry(characteristic);
+                t.engine = Some((seq, state.clone()));
+            }
+            Record::Checkpoint { characteristics } => {
+                self.characteristics = characteristics.clone();
+            }
+            _ => {}
+        }
+    }
+}

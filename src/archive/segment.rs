@@ -1,0 +1,267 @@
+//! The on-disk format: segment files of framed records.
+//!
+//! ```text
+//! segment file  = header-frame record-frame* [seal-frame trailer]
+//! frame         = len:u32le crc:u32le type:u8 payload        (len counts type + payload)
+//! crc           = CRC-32C over len, type and payload
+//! type          = 'H' header | 'R' record | 'S' seal          (payload: JSON)
+//! trailer       = seal-frame-length:u32le "LWSEALED"
+//! ```
+//!
+//! The header names the segment's index, first sequence number and the chain hash of the
+//! previous segment. The seal holds the SHA-256 of every byte before it and the chain hash
+//! `SHA-256(previous chain ‖ this segment's SHA-256)`, so editing or deleting a sealed segment
+//! breaks the chain. The trailer lets a reader find the seal without reading the segment.
+
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+use super::record::Envelope;
+
+pub const TYPE_HEADER: u8 = b'H';
+pub const TYPE_RECORD: u8 = b'R';
+pub const TYPE_SEAL: u8 = b'S';
+pub const TRAILER_MAGIC: &[u8; 8] = b"LWSEALED";
+pub const TRAILER_LEN: usize = 12;
+/// Frame overhead before the type byte.
+pub const FRAME_PREFIX: usize = 8;
+/// The largest frame accepted; anything larger is corruption (a record is a few hundred bytes;
+/// a checkpoint of many characteristics can reach megabytes).
+pub const MAX_FRAME: usize = 256 * 1024 * 1024;
+/// The segment file extension.
+pub const EXTENSION: &str = "lwseg";
+
+/// The first frame of every segment.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Header {
+    pub format: u32,
+    pub segment: u64,
+    pub first_seq: u64,
+    pub created_ms: i64,
+    /// Chain hash of the previous segment (hex), empty for the first.
+    pub prev_chain: String,
+}
+
+/// The last frame of a sealed segment.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Seal {
+    pub segment: u64,
+    pub first_seq: u64,
+    pub last_seq: u64,
+    pub records: u64,
+    /// SHA-256 (hex) of every byte of the file before the seal frame.
+    pub sha256: String,
+    pub prev_chain: String,
+    /// SHA-256 (hex) of the previous chain hash's bytes followed by this segment's hash bytes.
+    pub chain: String,
+    /// Byte offset of the checkpoint record in this segment, if it has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub checkpoint_offset: Option<u64>,
+    pub sealed_ms: i64,
+}
+
+/// Encodes one frame.
+pub fn encode(kind: u8, payload: &[u8], out: &mut Vec<u8>) {
+    let len = (payload.len() + 1) as u32;
+    let mut crc = crc32c::crc32c(&len.to_le_bytes());
+    crc = crc32c::crc32c_append(crc, &[kind]);
+    crc = crc32c::crc32c_append(crc, payload);
+    out.extend_from_slice(&len.to_le_bytes());
+    out.extend_from_slice(&crc.to_le_bytes());
+    out.push(kind);
+    out.extend_from_slice(payload);
+}
+
+/// A frame found in a buffer.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Frame<'a> {
+    pub offset: usize,
+    pub kind: u8,
+    pub payload: &'a [u8],
+    /// Offset just past the frame.
+    pub end: usize,
+}
+
+/// Why no good frame stands at an offset.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Bad {
+    /// The buffer ends before the frame does (a torn write).
+    Incomplete,
+    /// The length is impossible (zero or huge).
+    BadLength,
+    /// The checksum does not match.
+    BadCrc,
+}
+
+impl Bad {
+    pub fn words(self) -> &'static str {
+        match self {
+            Bad::Incomplete => "the frame is cut short",
+            Bad::BadLength => "the frame length is impossible",
+            Bad::BadCrc => "the CRC-32C does not match",
+        }
+    }
+}
+
+/// Decodes the frame at `offset` of `buf`.
+pub fn decode(buf: &[u8], offset: usize) -> Result<Frame<'_>, Bad> {
+    let rest = &buf[offset..];
+    if rest.len() < FRAME_PREFIX + 1 {
+        return Err(Bad::Incomplete);
+    }
+    let len = u32::from_le_bytes([rest[0], rest[1], rest[2], rest[3]]) as usize;
+    if len == 0 || len > MAX_FRAME {
+        return Err(Bad::BadLength);
+    }
+    if rest.len() < FRAME_PREFIX + len {
+        return Err(Bad::Incomplete);
+    }
+    let stored = u32::from_le_bytes([rest[4], rest[5], rest[6], rest[7]]);
+    let mut crc = crc32c::crc32c(&rest[..4]);
+    crc = crc32c::crc32c_append(crc, &rest[FRAME_PREFIX..FRAME_PREFIX + len]);
+    if crc != stored {
+        return Err(Bad::BadCrc);
+    }
+    Ok(Frame {
+        offset,
+        kind: rest[FRAME_PREFIX],
+        payload: &rest[FRAME_PREFIX + 1..FRAME_PREFIX + len],
+        end: offset + FRAME_PREFIX + len,
+    })
+}
+
+/// Lowercase hex of bytes.
+pub fn hex(bytes: &[u8]) -> String {
+    let mut s = String::with_capacity(bytes.len() * 2);
+    for b in bytes {
+        s.push_str(&format!("{b:02x}"));
+    }
+    s
+}
+
+/// Bytes of a hex string (empty on malformed input, which then fails every comparison).
+pub fn unhex(s: &str) -> Vec<u8> {
+    if !s.len().is_multiple_of(2) {
+        return Vec::new();
+    }
+    (0..s.len())
+        .step_by(2)
+        .map(|i| u8::from_str_radix(&s[i..i + 2], 16))
+        .collect::<Result<Vec<_>, _>>()
+        .unwrap_or_default()
+}
+
+/// SHA-256 of `data`, hex.
+pub fn sha256_hex(data: &[u8]) -> String {
+    hex(&Sha256::digest(data))
+}
+
+/// The chain hash that follows `prev_chain` (hex) for a segment hashing to `sha` (hex).
+pub fn chain(prev_chain: &str, sha: &str) -> String {
+    let mut h = Sha256::new();
+    h.update(unhex(prev_chain));
+    h.update(unhex(sha));
+    hex(&h.finalize())
+}
+
+/// The file name of segment `index` starting at `first_seq`.
+pub fn file_name(index: u64, first_seq: u64) -> String {
+    format!("{index:08}-{first_seq:016}.{EXTENSION}")
+}
+
+/// Segment files in `dir`, sorted by index: `(index, first_seq, path)`.
+pub fn list(dir: &Path) -> std::io::Result<Vec<(u64, u64, PathBuf)>> {
+    let mut out = Vec::new();
+    for entry in std::fs::read_dir(dir)? {
+        let path = entry?.path();
+        if path.extension().and_then(|e| e.to_str()) != Some(EXTENSION) {
+            continue;
+        }
+        let Some(stem) = path.file_stem().and_then(|s| s.to_str()) else {
+            continue;
+        };
+        let Some((a, b)) = stem.split_once('-') else {
+            continue;
+        };
+        if let (Ok(index), Ok(first)) = (a.parse(), b.parse()) {
+            out.push((index, first, path));
+        }
+    }
+    out.sort();
+    Ok(out)
+}
+
+/// The seal of a segment file's bytes, read through the trailer, if the segment is sealed.
+pub fn seal_of(buf: &[u8]) -> Option<(Seal, usize)> {
+    if buf.len() < TRAILER_LEN || &buf[buf.len() - 8..] != TRAILER_MAGIC {
+        return None;
+    }
+    let t = buf.len() - TRAILER_LEN;
+    let seal_len = u32::from_le_bytes([buf[t], buf[t + 1], buf[t + 2], buf[t + 3]]) as usize;
+    let start = t.checked_sub(seal_len)?;
+    let f = decode(buf, start).ok()?;
+    if f.kind != TYPE_SEAL || f.end != t {
+        return None;
+    }
+    serde_json::from_slice(f.payload).ok().map(|s| (s, start))
+}
+
+/// Parses a record frame's payload.
+pub fn envelope(payload: &[u8]) -> Result<Envelope, serde_json::Error> {
+    serde_json::from_slice(payload)
+}
+
+/// Reads only the seal of a segment file (through its trailer), without reading the rest.
+pub fn read_seal(path: &Path) -> std::io::Result<Option<(Seal, u64)>> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = std::fs::File::open(path)?;
+    let len = f.metadata()?.len();
+    if len < TRAILER_LEN as u64 {
+        return Ok(None);
+    }
+    let mut trailer = [0u8; TRAILER_LEN];
+    f.seek(SeekFrom::Start(len - TRAILER_LEN as u64))?;
+    f.read_exact(&mut trailer)?;
+    if &trailer[4..] != TRAILER_MAGIC {
+        return Ok(None);
+    }
+    let seal_len = u64::from(u32::from_le_bytes([
+        trailer[0], trailer[1], trailer[2], trailer[3],
+    ]));
+    let Some(start) = (len - TRAILER_LEN as u64).checked_sub(seal_len) else {
+        return Ok(None);
+    };
+    let mut buf = vec![0u8; seal_len as usize];
+    f.seek(SeekFrom::Start(start))?;
+    f.read_exact(&mut buf)?;
+    Ok(decode(&buf, 0)
+        .ok()
+        .filter(|fr| fr.kind == TYPE_SEAL && fr.end == buf.len())
+        .and_then(|fr| serde_json::from_slice(fr.payload).ok())
+        .map(|s| (s, start)))
+}
+
+/// Reads only the header of a segment file.
+pub fn read_header(path: &Path) -> std::io::Result<Option<Header>> {
+    use std::io::Read;
+    let mut f = std::fs::File::open(path)?;
+    let mut prefix = [0u8; FRAME_PREFIX];
+    if f.read_exact(&mut prefix).is_err() {
+        return Ok(None);
+    }
+    let len = u32::from_le_bytes([prefix[0], prefix[1], prefix[2], prefix[3]]) as usize;
+    if len == 0 || len > 1 << 20 {
+        return Ok(None);
+    }
+    let mut buf = prefix.to_vec();
+    buf.resize(FRAME_PREFIX + len, 0);
+    if f.read_exact(&mut buf[FRAME_PREFIX..]).is_err() {
+        return Ok(None);
+    }
+    Ok(decode(&buf, 0)
+        .ok()
+        .filter(|fr| fr.kind == TYPE_HEADER)
+        .and_then(|fr| serde_json::from_slice(fr.payload).ok()))
+}
