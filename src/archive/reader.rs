@@ -209,16 +209,7 @@ impl Reader {
 fn torn_tail(buf: &[u8], offset: usize) -> bool {
     match segment::decode(buf, offset) {
         Err(segment::Bad::Incomplete) | Err(segment::Bad::BadLength) => true,
-        Err(segment::Bad::BadCrc) => {
-            let len = u32::from_le_bytes([
-                buf[offset],
-                buf[offset + 1],
-                buf[offset + 2],
-                buf[offset + 3],
-            ]) as usize;
-            let next = offset + segment::FRAME_PREFIX + len;
-            !(next < buf.len() && segment::decode(buf, next).is_ok())
-        }
+        Err(segment::Bad::BadCrc) => !segment::good_frame_follows(buf, offset),
         Ok(_) => false,
     }
 }

@@ -132,6 +132,18 @@ pub fn decode(buf: &[u8], offset: usize) -> Result<Frame<'_>, Bad> {
     })
 }
 
+/// Whether, after a damaged frame at `offset`, a good frame follows where its length says the
+/// next frame starts. A damaged frame followed by a good one is corruption in the middle of a
+/// segment, not a torn tail, and must not be cut.
+pub fn good_frame_follows(buf: &[u8], offset: usize) -> bool {
+    let Some(len) = buf.get(offset..offset + 4) else {
+        return false;
+    };
+    let len = u32::from_le_bytes([len[0], len[1], len[2], len[3]]) as usize;
+    let next = offset + FRAME_PREFIX + len;
+    next < buf.len() && decode(buf, next).is_ok()
+}
+
 /// Lowercase hex of bytes.
 pub fn hex(bytes: &[u8]) -> String {
     let mut s = String::with_capacity(bytes.len() * 2);

@@ -289,23 +289,14 @@ impl Writer {
                 Err(bad) => {
                     // A damaged frame followed by a good one is corruption in the middle, not a
                     // torn tail: refuse rather than cut good records.
-                    if bad == segment::Bad::BadCrc {
-                        let len = u32::from_le_bytes([
-                            buf[offset],
-                            buf[offset + 1],
-                            buf[offset + 2],
-                            buf[offset + 3],
-                        ]) as usize;
-                        let next = offset + segment::FRAME_PREFIX + len;
-                        if next < buf.len() && segment::decode(buf, next).is_ok() {
-                            return Err(corrupt(
-                                offset,
-                                format!(
-                                    "{} and good records follow; run `linewarden archive verify`",
-                                    bad.words()
-                                ),
-                            ));
-                        }
+                    if bad == segment::Bad::BadCrc && segment::good_frame_follows(buf, offset) {
+                        return Err(corrupt(
+                            offset,
+                            format!(
+                                "{} and good records follow; run `linewarden archive verify`",
+                                bad.words()
+                            ),
+                        ));
                     }
                     quarantined.push(quarantine(path, buf, offset, bad.words())?);
                     let file = OpenOptions::new()

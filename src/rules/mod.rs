@@ -76,3 +76,25 @@ pub struct Violation {
     pub limit: f64,
     pub side: Option<Side>,
 }
+
+impl Violation {
+    /// A violation of `rule`.
+    pub fn new(
+        rule: &config::Rule,
+        message: String,
+        points: Vec<PointRef>,
+        statistic: f64,
+        limit: f64,
+        side: Option<Side>,
+    ) -> Self {
+        Violation {
+            rule: rule.id.clone(),
+            severity: rule.severity,
+            message,
+            points,
+            statistic,
+            limit,
+            side,
+        }
+    }
+}

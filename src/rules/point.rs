@@ -372,14 +372,8 @@ impl PointEvaluator {
                   points: Vec<PointRef>,
                   statistic: f64,
                   limit: f64,
-                  side: Option<Side>| Violation {
-            rule: rule.id.clone(),
-            severity: rule.severity,
-            message,
-            points,
-            statistic,
-            limit,
-            side,
+                  side: Option<Side>| {
+            Violation::new(rule, message, points, statistic, limit, side)
         };
         match (&rule.kind, &self.state.rules[i]) {
             (RuleKind::BeyondLimits { .. }, _) => {
@@ -587,23 +581,22 @@ impl PointEvaluator {
         } else {
             "below the lower"
         };
-        Violation {
-            rule: rule.id.clone(),
-            severity: rule.severity,
-            message: format!(
+        Violation::new(
+            rule,
+            format!(
                 "{name} {} is {which} control limit {}; {text}",
                 b.with_unit(d),
                 b.with_unit(limit)
             ),
-            points: vec![PointRef {
+            vec![PointRef {
                 number: p.number,
                 time_ms: p.time_ms,
                 value: d,
             }],
-            statistic: d,
+            d,
             limit,
-            side: Some(side),
-        }
+            Some(side),
+        )
     }
 }
 

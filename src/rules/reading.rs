@@ -116,14 +116,8 @@ impl ReadingEvaluator {
                      points: Vec<PointRef>,
                      statistic: f64,
                      limit: f64,
-                     side: Option<Side>| Violation {
-                rule: rule.id.clone(),
-                severity: rule.severity,
-                message,
-                points,
-                statistic,
-                limit,
-                side,
+                     side: Option<Side>| {
+                Violation::new(rule, message, points, statistic, limit, side)
             };
             match &rule.kind {
                 RuleKind::OutsideSpec => {
