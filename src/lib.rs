@@ -24,7 +24,9 @@
 //! The binary (`src/main.rs`) is a thin command-line shell over these modules.
 
 pub mod archive;
+pub mod config;
 pub mod diag;
+pub mod engine;
 pub mod format;
 pub mod fsutil;
 pub mod input;

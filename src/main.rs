@@ -35,6 +35,12 @@ enum Command {
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
+    /// Validate a daemon config file and report every problem at once.
+    Check {
+        /// The config file.
+        #[arg(long, value_name = "FILE")]
+        config: PathBuf,
+    },
     /// Inspect the archive: verify it, export it, count what it holds.
     #[command(subcommand)]
     Archive(ArchiveCommand),
@@ -86,8 +92,14 @@ struct ArlArgs {
     #[arg(long, value_enum)]
     preset: Option<linewarden::rules::Preset>,
     /// A TOML file with a [rules] table (preset, off, [[rules.rule]]), as in a characteristic.
-    #[arg(long, value_name = "FILE")]
+    #[arg(long, value_name = "FILE", conflicts_with = "config")]
     rules: Option<PathBuf>,
+    /// A daemon config file; the rules of --characteristic are used.
+    #[arg(long, value_name = "FILE", requires = "characteristic")]
+    config: Option<PathBuf>,
+    /// The characteristic of --config whose rules to evaluate.
+    #[arg(long, value_name = "ID", requires = "config")]
+    characteristic: Option<String>,
     /// Mean shifts to evaluate, in sigmas of the plotted point.
     #[arg(
         long,
@@ -225,6 +237,7 @@ fn main() -> ExitCode {
         Command::Capability(a) => capability_cmd(a),
         Command::Arl(a) => arl_cmd(a),
         Command::Archive(a) => archive_cmd(a),
+        Command::Check { config } => check_cmd(&config),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -428,11 +441,27 @@ struct RulesFile {
 }
 
 fn arl_cmd(a: ArlArgs) -> Result<()> {
-    use linewarden::rules::arl::{self, ArlOptions, time_between};
     use linewarden::rules::{RuleSet, RulesConfig};
     let mut cfg = RulesConfig::default();
     let mut source = String::new();
     let mut text = String::new();
+    if let (Some(path), Some(id)) = (&a.config, &a.characteristic) {
+        let c = linewarden::config::load(path)?;
+        let Some(ch) = c.characteristics.iter().find(|c| &c.id == id) else {
+            let known: Vec<&str> = c.characteristics.iter().map(|c| c.id.as_str()).collect();
+            bail!(
+                "{}: no characteristic \"{id}\" (it has: {})",
+                path.display(),
+                known.join(", ")
+            );
+        };
+        if a.preset.is_some() {
+            bail!(
+                "--preset and --config both give rules; the characteristic's rules already name their preset"
+            );
+        }
+        return arl_report(&a, &ch.rules);
+    }
     if let Some(path) = &a.rules {
         source = path.display().to_string();
         text = std::fs::read_to_string(path)
@@ -454,7 +483,9 @@ fn arl_cmd(a: ArlArgs) -> Result<()> {
         (Some(p), Some(q)) if p != q => {
             bail!("--preset {p:?} conflicts with preset {q:?} in {source}")
         }
-        (None, None) if a.rules.is_none() => bail!("give --preset NAME and/or --rules FILE"),
+        (None, None) if a.rules.is_none() => {
+            bail!("give --preset NAME and/or --rules FILE, or --config FILE --characteristic ID")
+        }
         _ => {}
     }
     let loc = linewarden::diag::Locator::new(&text);
@@ -471,6 +502,11 @@ fn arl_cmd(a: ArlArgs) -> Result<()> {
             }
         )
     })?;
+    arl_report(&a, &set)
+}
+
+fn arl_report(a: &ArlArgs, set: &linewarden::rules::RuleSet) -> Result<()> {
+    use linewarden::rules::arl::{self, ArlOptions, time_between};
     let interval_s = match &a.interval {
         Some(t) => {
             let d = humantime::parse_duration(t).with_context(|| {
@@ -488,7 +524,7 @@ fn arl_cmd(a: ArlArgs) -> Result<()> {
         seed: a.seed,
         ..ArlOptions::default()
     };
-    let results = arl::arl(&set, &a.shift, &opts)?;
+    let results = arl::arl(set, &a.shift, &opts)?;
     if a.json {
         let rows: Vec<serde_json::Value> = results
             .iter()
@@ -763,4 +799,42 @@ fn csv_row(e: &linewarden::archive::Envelope) -> (String, String, String, String
             serde_json::to_string(other).unwrap_or_default(),
         ),
     }
+}
+
+fn check_cmd(path: &std::path::Path) -> Result<()> {
+    let c = linewarden::config::load(path)?;
+    println!("{}: valid", path.display());
+    println!("  archive      {}", c.archive_dir.display());
+    for ch in &c.characteristics {
+        let limits = match (&ch.limits, &ch.limits_path) {
+            (Some(_), Some(p)) => format!("limits from {}", p.display()),
+            (None, Some(p)) => format!(
+                "learning: limits after {} subgroups, written to {}",
+                ch.baseline_subgroups,
+                p.display()
+            ),
+            _ => format!(
+                "learning: provisional limits after {} subgroups",
+                ch.baseline_subgroups
+            ),
+        };
+        println!(
+            "  {:<12} {} chart, rules: {}; {limits}",
+            ch.id,
+            ch.chart.name(),
+            if ch.rules.rules.is_empty() {
+                "none".to_string()
+            } else {
+                ch.rules.ids().join(", ")
+            }
+        );
+    }
+    for s in &c.sources {
+        match s {
+            linewarden::config::Source::Replay { id, file, speed } => {
+                println!("  source {id}: replay of {} at {speed}x", file.display())
+            }
+        }
+    }
+    Ok(())
 }

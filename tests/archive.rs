@@ -37,11 +37,11 @@ fn subgroup(c: &str, number: u64, readings: Vec<u64>) -> Record {
         },
         readings,
         partial: false,
-        location: Limits {
+        location: Some(Limits {
             center: 12.0,
             ucl: 12.01,
             lcl: 11.99,
-        },
+        }),
         dispersion: None,
         violations: vec![],
     }

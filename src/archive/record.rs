@@ -125,9 +125,19 @@ pub enum Record {
         /// Whether it was completed early (by the maximum wait) with fewer readings.
         #[serde(default)]
         partial: bool,
-        location: Limits,
+        /// The limits in force (none while the characteristic is still learning its limits).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        location: Option<Limits>,
         #[serde(default, skip_serializing_if = "Option::is_none")]
         dispersion: Option<Limits>,
+        violations: Vec<Violation>,
+    },
+    /// Reading rules that fired (out of specification, gauge health), on a reading or, for a
+    /// silent feed, on none.
+    Flagged {
+        characteristic: String,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        reading: Option<u64>,
         violations: Vec<Violation>,
     },
     /// A subgroup that was given up (discarded after its maximum wait).
@@ -179,6 +189,7 @@ impl Record {
             Record::ReadingRejected { .. } => "reading-rejected",
             Record::SubgroupResult { .. } => "subgroup-result",
             Record::SubgroupDiscarded { .. } => "subgroup-discarded",
+            Record::Flagged { .. } => "flagged",
             Record::Alert { .. } => "alert",
             Record::LimitsInstalled { .. } => "limits-installed",
             Record::ConfigLoaded { .. } => "config-loaded",
@@ -195,6 +206,7 @@ impl Record {
             Record::ReadingAccepted { characteristic, .. }
             | Record::SubgroupResult { characteristic, .. }
             | Record::SubgroupDiscarded { characteristic, .. }
+            | Record::Flagged { characteristic, .. }
             | Record::Alert { characteristic, .. }
             | Record::LimitsInstalled { characteristic, .. }
             | Record::EngineState { characteristic, .. } => Some(characteristic),

@@ -1,0 +1,565 @@
+//! The daemon's configuration: one TOML file naming the archive, the characteristics of a cell
+//! (with their subgroups, specification, rules and stored limits) and the sources that feed
+//! them.
+//!
+//! Parse, then validate, then build: [`load`] collects *every* problem before it reports, each
+//! with its TOML path and line:column, and opens no ports and touches no devices (it reads the
+//! limits files the config names, nothing else), so `linewarden check` works on a laptop.
+
+use std::collections::HashSet;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::diag::{Locator, Problem, Problems};
+use crate::limits_file::{StoredLimits, valid_id};
+use crate::rules::{RuleSet, RulesConfig};
+use crate::stats::capability::Spec;
+use crate::stats::variables::VariablesChart;
+
+/// The file as written.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawConfig {
+    pub daemon: RawDaemon,
+    #[serde(default)]
+    pub characteristic: Vec<RawCharacteristic>,
+    #[serde(default)]
+    pub source: Vec<RawSource>,
+}
+
+/// `[daemon]`.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawDaemon {
+    /// The archive directory (relative paths are relative to the config file).
+    pub archive_dir: String,
+    #[serde(default = "default_flush_ms")]
+    pub flush_interval_ms: u64,
+    #[serde(default = "default_segment_mb")]
+    pub max_segment_mb: u64,
+}
+
+fn default_flush_ms() -> u64 {
+    10
+}
+
+fn default_segment_mb() -> u64 {
+    64
+}
+
+/// What to do with a subgroup that is still incomplete when its maximum wait runs out.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum OnTimeout {
+    /// Evaluate it with the readings it has (recorded as partial).
+    #[default]
+    Evaluate,
+    /// Discard it (recorded as discarded).
+    Discard,
+}
+
+/// `[characteristic.subgroup]`: how readings are grouped. Exactly one of `size`, `window_s`
+/// and `by_part`.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawSubgroup {
+    /// n consecutive readings (1 for individuals).
+    pub size: Option<usize>,
+    /// All readings within a window of this many seconds.
+    pub window_s: Option<f64>,
+    /// Readings of the same part or sample id, `by_part_size` of them.
+    #[serde(default)]
+    pub by_part: bool,
+    pub by_part_size: Option<usize>,
+    /// After this long, an incomplete subgroup is evaluated or discarded.
+    pub max_wait_s: Option<f64>,
+    pub on_timeout: Option<OnTimeout>,
+}
+
+/// `[characteristic.learning]`: how limits are learned when none are stored.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLearning {
+    #[serde(default = "default_baseline")]
+    pub subgroups: usize,
+    /// The chart the learned limits are for; by default from the subgroup size.
+    pub chart: Option<VariablesChart>,
+}
+
+impl Default for RawLearning {
+    fn default() -> Self {
+        RawLearning {
+            subgroups: default_baseline(),
+            chart: None,
+        }
+    }
+}
+
+fn default_baseline() -> usize {
+    25
+}
+
+/// `[[characteristic]]`.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCharacteristic {
+    pub id: String,
+    pub name: Option<String>,
+    pub unit: Option<String>,
+    /// The stored limits file (relative to the config file). Without one, the characteristic
+    /// learns its limits.
+    pub limits: Option<String>,
+    /// Readings outside this range cannot be real and are rejected.
+    pub valid_min: Option<f64>,
+    pub valid_max: Option<f64>,
+    #[serde(default)]
+    pub subgroup: RawSubgroup,
+    pub spec: Option<Spec>,
+    #[serde(default)]
+    pub rules: RulesConfig,
+    #[serde(default)]
+    pub learning: RawLearning,
+    /// What the technician should check first when an alert is raised.
+    pub reaction_plan: Option<String>,
+}
+
+/// `[[source]]`.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSource {
+    pub id: String,
+    pub kind: String,
+    /// replay: the recorded feed file (JSON lines).
+    pub file: Option<String>,
+    /// replay: speed factor (2 = twice as fast as recorded; 0 = as fast as possible).
+    pub speed: Option<f64>,
+}
+
+/// How readings form subgroups.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "by", rename_all = "kebab-case")]
+pub enum Grouping {
+    Count { size: usize },
+    Window { window_ms: i64 },
+    Part { size: usize },
+}
+
+/// A validated characteristic.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Characteristic {
+    pub id: String,
+    pub name: String,
+    pub unit: String,
+    pub grouping: Grouping,
+    pub max_wait_ms: Option<i64>,
+    pub on_timeout: OnTimeout,
+    pub chart: VariablesChart,
+    pub valid: Option<(f64, f64)>,
+    pub spec: Option<Spec>,
+    pub rules: RuleSet,
+    pub limits_path: Option<PathBuf>,
+    pub limits: Option<StoredLimits>,
+    pub baseline_subgroups: usize,
+    pub reaction_plan: Option<String>,
+}
+
+/// A validated source.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Source {
+    Replay {
+        id: String,
+        file: PathBuf,
+        speed: f64,
+    },
+}
+
+/// A validated configuration.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Config {
+    pub path: PathBuf,
+    pub archive_dir: PathBuf,
+    pub flush_interval_ms: u64,
+    pub max_segment_bytes: u64,
+    pub characteristics: Vec<Characteristic>,
+    pub sources: Vec<Source>,
+}
+
+/// Why a configuration could not be loaded.
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read config file {path}: {source}")]
+    Read {
+        path: String,
+        source: std::io::Error,
+    },
+    #[error("{0}")]
+    Invalid(#[from] Problems),
+}
+
+/// Reads, parses and validates the config file at `path`.
+pub fn load(path: &Path) -> Result<Config, ConfigError> {
+    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+        path: path.display().to_string(),
+        source,
+    })?;
+    Ok(parse(&text, path)?)
+}
+
+/// Parses and validates config `text` that came from `path` (relative paths in it are taken
+/// from the file's directory).
+pub fn parse(text: &str, path: &Path) -> Result<Config, Problems> {
+    let file = path.display().to_string();
+    let loc = Locator::new(text);
+    let raw: RawConfig = toml::from_str(text).map_err(|e| Problems {
+        file: file.clone(),
+        problems: vec![loc.from_toml_error(&e)],
+    })?;
+    let base = path.parent().unwrap_or(Path::new("."));
+    let mut p = Vec::new();
+    let cfg = build(&raw, base, path, &loc, &mut p);
+    if p.is_empty() {
+        Ok(cfg)
+    } else {
+        Err(Problems { file, problems: p })
+    }
+}
+
+fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<Problem>) -> Config {
+    let resolve = |s: &str| {
+        let q = Path::new(s);
+        if q.is_absolute() {
+            q.to_path_buf()
+        } else {
+            base.join(q)
+        }
+    };
+    if raw.daemon.archive_dir.trim().is_empty() {
+        p.push(loc.problem("daemon.archive_dir", "the archive directory must be named"));
+    }
+    if raw.daemon.max_segment_mb == 0 || raw.daemon.max_segment_mb > 4096 {
+        p.push(loc.problem(
+            "daemon.max_segment_mb",
+            format!(
+                "{} is out of range; use 1 to 4096",
+                raw.daemon.max_segment_mb
+            ),
+        ));
+    }
+    if raw.daemon.flush_interval_ms > 10_000 {
+        p.push(loc.problem(
+            "daemon.flush_interval_ms",
+            format!(
+                "{} ms would leave records unconfirmed too long; use 0 to 10000",
+                raw.daemon.flush_interval_ms
+            ),
+        ));
+    }
+    if raw.characteristic.is_empty() {
+        p.push(loc.problem(
+            "",
+            "no [[characteristic]] is configured: there is nothing to watch",
+        ));
+    }
+    let mut ids = HashSet::new();
+    let mut chars = Vec::new();
+    for (i, c) in raw.characteristic.iter().enumerate() {
+        let at = format!("characteristic[{i}]");
+        let who = format!("characteristic \"{}\"", c.id);
+        if !valid_id(&c.id) {
+            p.push(loc.problem(
+                &format!("{at}.id"),
+                format!(
+                    "\"{}\" is not a valid identifier; use letters, digits, '-', '_' and '.'",
+                    c.id
+                ),
+            ));
+        } else if !ids.insert(c.id.clone()) {
+            p.push(loc.problem(&format!("{at}.id"), format!("{who} is configured twice")));
+        }
+        if let Some(ch) = build_characteristic(c, &at, &who, &resolve, loc, p) {
+            chars.push(ch);
+        }
+    }
+    let mut source_ids = HashSet::new();
+    let mut sources = Vec::new();
+    for (i, s) in raw.source.iter().enumerate() {
+        let at = format!("source[{i}]");
+        if !valid_id(&s.id) {
+            p.push(loc.problem(
+                &format!("{at}.id"),
+                format!("\"{}\" is not a valid identifier", s.id),
+            ));
+        } else if !source_ids.insert(s.id.clone()) {
+            p.push(loc.problem(
+                &format!("{at}.id"),
+                format!("source \"{}\" is configured twice", s.id),
+            ));
+        }
+        match s.kind.as_str() {
+            "replay" => {
+                let speed = s.speed.unwrap_or(1.0);
+                if !(speed >= 0.0 && speed.is_finite()) {
+                    p.push(loc.problem(
+                        &format!("{at}.speed"),
+                        format!(
+                            "{speed} is not a speed factor; use 0 (as fast as possible) or more"
+                        ),
+                    ));
+                }
+                match &s.file {
+                    Some(f) => {
+                        let file = resolve(f);
+                        if !file.is_file() {
+                            p.push(loc.problem(
+                                &format!("{at}.file"),
+                                format!("{} does not exist or is not a file", file.display()),
+                            ));
+                        }
+                        sources.push(Source::Replay {
+                            id: s.id.clone(),
+                            file,
+                            speed,
+                        });
+                    }
+                    None => p.push(loc.problem(&at, "kind = \"replay\" needs file")),
+                }
+            }
+            other => p.push(loc.problem(
+                &format!("{at}.kind"),
+                format!("\"{other}\" is not a source kind this build has; the kinds are: replay"),
+            )),
+        }
+    }
+    Config {
+        path: path.to_path_buf(),
+        archive_dir: resolve(&raw.daemon.archive_dir),
+        flush_interval_ms: raw.daemon.flush_interval_ms,
+        max_segment_bytes: raw.daemon.max_segment_mb * 1024 * 1024,
+        characteristics: chars,
+        sources,
+    }
+}
+
+fn build_characteristic(
+    c: &RawCharacteristic,
+    at: &str,
+    who: &str,
+    resolve: &impl Fn(&str) -> PathBuf,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<Characteristic> {
+    let before = p.len();
+    let sg = &c.subgroup;
+    let chosen = [sg.size.is_some(), sg.window_s.is_some(), sg.by_part]
+        .iter()
+        .filter(|x| **x)
+        .count();
+    let grouping = match (sg.size, sg.window_s, sg.by_part) {
+        _ if chosen != 1 => {
+            p.push(loc.problem(
+                &format!("{at}.subgroup"),
+                format!("{who}: say how readings form subgroups with exactly one of size, window_s or by_part = true"),
+            ));
+            None
+        }
+        (Some(n), _, _) if !(1..=100).contains(&n) => {
+            p.push(loc.problem(
+                &format!("{at}.subgroup.size"),
+                format!("{who}: subgroup.size = {n} is out of range; use 1 to 100"),
+            ));
+            None
+        }
+        (Some(n), _, _) => Some(Grouping::Count { size: n }),
+        (_, Some(w), _) if !(w > 0.0 && w.is_finite()) => {
+            p.push(loc.problem(
+                &format!("{at}.subgroup.window_s"),
+                format!("{who}: subgroup.window_s = {w} must be a positive number of seconds"),
+            ));
+            None
+        }
+        (_, Some(w), _) => Some(Grouping::Window {
+            window_ms: (w * 1000.0).round() as i64,
+        }),
+        _ => match sg.by_part_size {
+            Some(n) if (1..=100).contains(&n) => Some(Grouping::Part { size: n }),
+            Some(n) => {
+                p.push(loc.problem(
+                    &format!("{at}.subgroup.by_part_size"),
+                    format!("{who}: {n} is out of range; use 1 to 100"),
+                ));
+                None
+            }
+            None => {
+                p.push(loc.problem(
+                    &format!("{at}.subgroup"),
+                    format!("{who}: by_part = true needs by_part_size, the readings per part"),
+                ));
+                None
+            }
+        },
+    };
+    if sg.by_part_size.is_some() && !sg.by_part {
+        p.push(loc.problem(
+            &format!("{at}.subgroup.by_part_size"),
+            format!("{who}: by_part_size only applies with by_part = true"),
+        ));
+    }
+    let max_wait_ms = match sg.max_wait_s {
+        Some(w) if w > 0.0 && w.is_finite() => Some((w * 1000.0).round() as i64),
+        Some(w) => {
+            p.push(loc.problem(
+                &format!("{at}.subgroup.max_wait_s"),
+                format!("{who}: {w} must be a positive number of seconds"),
+            ));
+            None
+        }
+        None => None,
+    };
+    if sg.on_timeout.is_some() && sg.max_wait_s.is_none() {
+        p.push(loc.problem(
+            &format!("{at}.subgroup.on_timeout"),
+            format!("{who}: on_timeout needs max_wait_s"),
+        ));
+    }
+    // The chart follows from the stored limits, the learning table, or the subgroup size.
+    let nominal = match &grouping {
+        Some(Grouping::Count { size }) | Some(Grouping::Part { size }) => Some(*size),
+        _ => None,
+    };
+    let default_chart = match nominal {
+        Some(1) => VariablesChart::Individuals,
+        Some(n) if n > 10 => VariablesChart::XbarS,
+        _ => VariablesChart::XbarR,
+    };
+    let chart = c.learning.chart.unwrap_or(default_chart);
+    if let Some(n) = nominal {
+        if n == 1 && chart != VariablesChart::Individuals {
+            p.push(loc.problem(
+                &format!("{at}.subgroup.size"),
+                format!("{who}: subgroup.size = 1 needs chart = \"individuals\""),
+            ));
+        }
+        if n > 1 && chart == VariablesChart::Individuals {
+            p.push(loc.problem(
+                &format!("{at}.learning.chart"),
+                format!("{who}: chart = \"individuals\" needs subgroup.size = 1, not {n}"),
+            ));
+        }
+    }
+    if matches!(grouping, Some(Grouping::Window { .. })) && chart == VariablesChart::Individuals {
+        p.push(loc.problem(&format!("{at}.learning.chart"), format!("{who}: a time window forms subgroups of many readings; chart = \"individuals\" does not fit")));
+    }
+    if !(2..=1000).contains(&c.learning.subgroups) {
+        p.push(loc.problem(
+            &format!("{at}.learning.subgroups"),
+            format!("{who}: {} baseline subgroups is out of range; use 2 to 1000 (common practice: 20 to 25)", c.learning.subgroups),
+        ));
+    }
+    let valid = match (c.valid_min, c.valid_max) {
+        (Some(a), Some(b)) if a < b && a.is_finite() && b.is_finite() => Some((a, b)),
+        (Some(a), Some(b)) => {
+            p.push(loc.problem(
+                &format!("{at}.valid_max"),
+                format!("{who}: valid_max = {b} must be above valid_min = {a}"),
+            ));
+            None
+        }
+        (None, None) => None,
+        _ => {
+            p.push(loc.problem(
+                at,
+                format!("{who}: give both valid_min and valid_max, or neither"),
+            ));
+            None
+        }
+    };
+    if let Some(spec) = &c.spec
+        && let Err(e) = spec.validate()
+    {
+        p.push(loc.problem(&format!("{at}.spec"), format!("{who}: {e}")));
+    }
+    let rules = match RuleSet::from_config(&c.rules, &format!("{at}.rules"), loc) {
+        Ok(r) => r,
+        Err(mut more) => {
+            p.append(&mut more);
+            RuleSet::default()
+        }
+    };
+    for (j, r) in c.rules.rule.iter().enumerate() {
+        let two_sided = c.spec.is_some_and(|s| s.lsl.is_some() && s.usl.is_some());
+        match r.kind.as_str() {
+            "outside-spec" if c.spec.is_none() => p.push(loc.problem(
+                &format!("{at}.rules.rule[{j}]"),
+                format!("{who}: kind = \"outside-spec\" needs a [characteristic.spec]"),
+            )),
+            "coarse-resolution" if !two_sided => p.push(loc.problem(
+                &format!("{at}.rules.rule[{j}]"),
+                format!("{who}: kind = \"coarse-resolution\" needs a two-sided spec (lsl and usl) to know the tolerance"),
+            )),
+            _ => {}
+        }
+    }
+    let limits_path = c.limits.as_deref().map(resolve);
+    let limits = match &limits_path {
+        Some(lp) if lp.exists() => match StoredLimits::load(lp) {
+            Ok(l) => {
+                if l.characteristic != c.id {
+                    p.push(loc.problem(
+                        &format!("{at}.limits"),
+                        format!(
+                            "{who}: {} holds the limits of \"{}\"",
+                            lp.display(),
+                            l.characteristic
+                        ),
+                    ));
+                }
+                if l.chart != chart && c.learning.chart.is_some() {
+                    p.push(loc.problem(
+                        &format!("{at}.learning.chart"),
+                        format!(
+                            "{who}: the stored limits are for chart \"{}\", not \"{}\"",
+                            l.chart.name(),
+                            chart.name()
+                        ),
+                    ));
+                }
+                if let Some(n) = nominal
+                    && n != l.subgroup_size
+                {
+                    p.push(loc.problem(
+                        &format!("{at}.subgroup.size"),
+                        format!("{who}: subgroups of {n}, but the stored limits are for subgroups of {}", l.subgroup_size),
+                    ));
+                }
+                Some(l)
+            }
+            Err(e) => {
+                p.push(loc.problem(&format!("{at}.limits"), format!("{who}: {e}")));
+                None
+            }
+        },
+        // A named file that does not exist yet: the characteristic learns and writes it there.
+        _ => None,
+    };
+    let chart = limits.as_ref().map_or(chart, |l| l.chart);
+    if p.len() > before {
+        return None;
+    }
+    Some(Characteristic {
+        id: c.id.clone(),
+        name: c.name.clone().unwrap_or_else(|| c.id.clone()),
+        unit: c.unit.clone().unwrap_or_default(),
+        grouping: grouping?,
+        max_wait_ms,
+        on_timeout: sg.on_timeout.unwrap_or_default(),
+        chart,
+        valid,
+        spec: c.spec,
+        rules,
+        limits_path,
+        limits,
+        baseline_subgroups: c.learning.subgroups,
+        reaction_plan: c.reaction_plan.clone(),
+    })
+}

@@ -1,0 +1,598 @@
+//! The engine of a cell: for every characteristic, reading checks, subgroup assembly, limits
+//! (stored, or learned from a baseline), the run rules, and what to record and tell.
+//!
+//! Pure: no I/O, no clock. The daemon archives each accepted reading first and then hands it
+//! here with its sequence number; everything the engine decides comes back as [`Output`]s for
+//! the shell to carry out (records to append, violations to alert on, limits files to write).
+//! Its state is rebuilt after a restart from the archive's [`Tail`].
+//!
+//! * [`assembly`] — readings into subgroups: by count, by time window, by part id, with a
+//!   maximum wait.
+
+pub mod assembly;
+
+use std::collections::BTreeMap;
+use std::path::PathBuf;
+
+use serde::{Deserialize, Serialize};
+
+use crate::archive::record::{PendingReading, Record, SubgroupSummary, Tail};
+use crate::config::{Characteristic, Config};
+use crate::format::num;
+use crate::limits_file::StoredLimits;
+use crate::rules::Violation;
+use crate::rules::point::{ChartBasis, PointEvaluator, PointState};
+use crate::rules::reading::{Reading, ReadingBasis, ReadingEvaluator, ReadingState};
+use crate::stats::study::{self, StudyOptions};
+use crate::stats::variables::VariablesChart;
+use crate::stats::{mean, range, sample_sd};
+use assembly::{Assembled, Assembler};
+
+/// A reading as a source delivers it, before it is checked.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Incoming {
+    pub source: String,
+    pub characteristic: String,
+    pub value: f64,
+    pub unit: Option<String>,
+    pub source_time_ms: Option<i64>,
+    pub arrival_ms: i64,
+    pub part: Option<String>,
+    pub source_key: Option<String>,
+}
+
+impl Incoming {
+    /// When it was measured: the source's time if it gave one, else the arrival.
+    pub fn time_ms(&self) -> i64 {
+        self.source_time_ms.unwrap_or(self.arrival_ms)
+    }
+
+    /// The record that archives it.
+    pub fn record(&self) -> Record {
+        Record::ReadingAccepted {
+            source: self.source.clone(),
+            characteristic: self.characteristic.clone(),
+            value: self.value,
+            unit: self.unit.clone(),
+            source_time_ms: self.source_time_ms,
+            arrival_ms: self.arrival_ms,
+            part: self.part.clone(),
+            source_key: self.source_key.clone(),
+        }
+    }
+}
+
+/// How loud a log line is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Level {
+    Info,
+    Warn,
+}
+
+/// What the engine asks the shell to do.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Output {
+    /// Append to the archive.
+    Record(Record),
+    /// A rule fired (it is also in an archived record): for the alert router.
+    Violation {
+        characteristic: String,
+        violation: Violation,
+    },
+    /// Store learned limits in this file.
+    WriteLimits {
+        path: PathBuf,
+        limits: Box<StoredLimits>,
+    },
+    /// Tell people, in the log.
+    Log {
+        level: Level,
+        characteristic: String,
+        message: String,
+    },
+    /// A subgroup was checked (for the console and the status).
+    Checked {
+        characteristic: String,
+        subgroup: SubgroupSummary,
+        violations: usize,
+        learning: bool,
+    },
+}
+
+/// Subgroups between saved engine states (and at every learning subgroup).
+pub const SAVE_EVERY: u64 = 10;
+
+/// What one characteristic saves in the archive to resume after a restart.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+struct Saved {
+    number: u64,
+    last_individual: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    learning: Option<Vec<Vec<f64>>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    points: Option<PointState>,
+    reading: ReadingState,
+    readings: u64,
+}
+
+enum Mode {
+    Learning {
+        baseline: Vec<Vec<f64>>,
+    },
+    Monitoring {
+        limits: Box<StoredLimits>,
+        points: Box<PointEvaluator>,
+    },
+}
+
+struct CharEngine {
+    cfg: Characteristic,
+    asm: Assembler,
+    mode: Mode,
+    reading_rules: ReadingEvaluator,
+    /// Subgroups plotted so far.
+    number: u64,
+    /// Readings accepted so far.
+    readings: u64,
+    last_individual: Option<f64>,
+}
+
+/// The engine of a whole cell.
+pub struct Engine {
+    chars: BTreeMap<String, CharEngine>,
+}
+
+impl Engine {
+    /// A fresh engine for `cfg`; `now_ms` starts the stale-feed clocks.
+    pub fn new(cfg: &Config, now_ms: i64) -> Self {
+        let chars = cfg
+            .characteristics
+            .iter()
+            .map(|c| (c.id.clone(), CharEngine::new(c.clone(), now_ms)))
+            .collect();
+        Engine { chars }
+    }
+
+    /// The characteristics, in order, and whether each is learning its limits.
+    pub fn characteristics(&self) -> Vec<(String, bool)> {
+        self.chars
+            .iter()
+            .map(|(id, c)| (id.clone(), matches!(c.mode, Mode::Learning { .. })))
+            .collect()
+    }
+
+    /// Checks a reading before it is accepted: a known characteristic, a finite value inside
+    /// the physically possible range, a part id where subgroups go by part. The error is the
+    /// reason it is rejected.
+    pub fn check(&self, inc: &Incoming) -> Result<(), String> {
+        let Some(c) = self.chars.get(&inc.characteristic) else {
+            return Err(format!(
+                "no characteristic \"{}\" is configured",
+                inc.characteristic
+            ));
+        };
+        if !inc.value.is_finite() {
+            return Err(format!("{} is not a finite reading", inc.value));
+        }
+        if let Some((lo, hi)) = c.cfg.valid
+            && !(lo..=hi).contains(&inc.value)
+        {
+            return Err(format!(
+                "{} is outside the possible range {} to {} of {}",
+                num(inc.value),
+                num(lo),
+                num(hi),
+                c.cfg.id
+            ));
+        }
+        if let (Some(u), false) = (&inc.unit, c.cfg.unit.is_empty())
+            && u != &c.cfg.unit
+        {
+            return Err(format!(
+                "the unit \"{u}\" is not the characteristic's unit \"{}\"",
+                c.cfg.unit
+            ));
+        }
+        if matches!(c.cfg.grouping, crate::config::Grouping::Part { .. }) && inc.part.is_none() {
+            return Err(format!(
+                "{} forms subgroups by part, and the reading names no part",
+                c.cfg.id
+            ));
+        }
+        Ok(())
+    }
+
+    /// Takes an accepted reading, already archived as record `seq`.
+    pub fn accept(&mut self, seq: u64, inc: &Incoming) -> Vec<Output> {
+        match self.chars.get_mut(&inc.characteristic) {
+            Some(c) => c.accept(seq, inc),
+            None => Vec::new(),
+        }
+    }
+
+    /// Applies time: windows that closed, maximum waits that ran out, feeds gone silent.
+    pub fn tick(&mut self, now_ms: i64) -> Vec<Output> {
+        let mut out = Vec::new();
+        for c in self.chars.values_mut() {
+            out.extend(c.tick(now_ms));
+        }
+        out
+    }
+
+    /// Rebuilds every characteristic's state from the archive's tail: waiting readings,
+    /// learning progress, and rule state (saved state, then the subgroups after it).
+    pub fn restore(&mut self, tail: &Tail) -> Vec<Output> {
+        let mut out = Vec::new();
+        for (id, c) in self.chars.iter_mut() {
+            if let Some(t) = tail.characteristics.get(id) {
+                out.extend(c.restore(t));
+            }
+        }
+        out
+    }
+
+    /// The state of every characteristic, as records to append (at shutdown, say).
+    pub fn snapshot(&self) -> Vec<Record> {
+        self.chars.values().map(CharEngine::saved_record).collect()
+    }
+}
+
+impl CharEngine {
+    fn new(cfg: Characteristic, now_ms: i64) -> Self {
+        let asm = Assembler::new(cfg.grouping.clone(), cfg.max_wait_ms, cfg.on_timeout);
+        let basis = ReadingBasis {
+            spec: cfg.spec,
+            unit: cfg.unit.clone(),
+        };
+        let reading_rules = ReadingEvaluator::new(&cfg.rules, basis, now_ms);
+        let mode = match &cfg.limits {
+            Some(l) => Mode::Monitoring {
+                points: Box::new(PointEvaluator::new(&cfg.rules, basis_of(l, &cfg))),
+                limits: Box::new(l.clone()),
+            },
+            None => Mode::Learning {
+                baseline: Vec::new(),
+            },
+        };
+        CharEngine {
+            cfg,
+            asm,
+            mode,
+            reading_rules,
+            number: 0,
+            readings: 0,
+            last_individual: None,
+        }
+    }
+
+    fn accept(&mut self, seq: u64, inc: &Incoming) -> Vec<Output> {
+        self.readings += 1;
+        let mut out = Vec::new();
+        let flagged = self.reading_rules.on_reading(Reading {
+            number: self.readings,
+            time_ms: inc.time_ms(),
+            value: inc.value,
+        });
+        self.flag(&mut out, Some(seq), flagged);
+        let pending = PendingReading {
+            seq,
+            value: inc.value,
+            time_ms: inc.time_ms(),
+            part: inc.part.clone(),
+        };
+        for a in self.asm.push(pending) {
+            self.assembled(a, &mut out);
+        }
+        out
+    }
+
+    fn tick(&mut self, now_ms: i64) -> Vec<Output> {
+        let mut out = Vec::new();
+        for a in self.asm.tick(now_ms) {
+            self.assembled(a, &mut out);
+        }
+        let silent = self.reading_rules.on_tick(now_ms);
+        self.flag(&mut out, None, silent);
+        out
+    }
+
+    fn flag(&self, out: &mut Vec<Output>, reading: Option<u64>, violations: Vec<Violation>) {
+        if violations.is_empty() {
+            return;
+        }
+        for v in &violations {
+            out.push(Output::Violation {
+                characteristic: self.cfg.id.clone(),
+                violation: v.clone(),
+            });
+        }
+        out.push(Output::Record(Record::Flagged {
+            characteristic: self.cfg.id.clone(),
+            reading,
+            violations,
+        }));
+    }
+
+    fn assembled(&mut self, a: Assembled, out: &mut Vec<Output>) {
+        let (readings, partial) = match a {
+            Assembled::Complete { readings, partial } => (readings, partial),
+            Assembled::Discarded { readings, reason } => {
+                out.push(self.discard(&readings, reason));
+                return;
+            }
+        };
+        let values: Vec<f64> = readings.iter().map(|r| r.value).collect();
+        let chart = self.chart();
+        if chart != VariablesChart::Individuals && values.len() < 2 {
+            let reason = format!(
+                "a subgroup of {} reading cannot be evaluated on the {} chart",
+                values.len(),
+                chart.name()
+            );
+            out.push(self.discard(&readings, reason));
+            return;
+        }
+        if chart == VariablesChart::Individuals && values.len() != 1 {
+            // A time window or a wait produced several readings on an individuals chart: each
+            // is a point of its own.
+            for r in readings {
+                self.assembled(
+                    Assembled::Complete {
+                        readings: vec![r],
+                        partial,
+                    },
+                    out,
+                );
+            }
+            return;
+        }
+        self.number += 1;
+        let time_ms = readings.last().map_or(0, |r| r.time_ms);
+        let dispersion = match chart {
+            VariablesChart::XbarR => Some(range(&values)),
+            VariablesChart::XbarS => Some(sample_sd(&values)),
+            VariablesChart::Individuals => {
+                let d = self.last_individual.map(|p| (values[0] - p).abs());
+                self.last_individual = Some(values[0]);
+                d
+            }
+        };
+        let summary = SubgroupSummary {
+            number: self.number,
+            time_ms,
+            n: values.len(),
+            mean: mean(&values),
+            dispersion,
+        };
+        let seqs: Vec<u64> = readings.iter().map(|r| r.seq).collect();
+        let learning = matches!(self.mode, Mode::Learning { .. });
+        let (location, disp_limits, violations) = match &mut self.mode {
+            Mode::Monitoring { points, .. } => {
+                let v = points.evaluate(&crate::rules::point::Plotted {
+                    number: summary.number,
+                    time_ms,
+                    n: summary.n,
+                    mean: summary.mean,
+                    dispersion,
+                });
+                let b = points.basis();
+                (
+                    Some(b.location_for(summary.n)),
+                    b.dispersion_for(summary.n),
+                    v,
+                )
+            }
+            Mode::Learning { baseline } => {
+                baseline.push(values);
+                (None, None, Vec::new())
+            }
+        };
+        for v in &violations {
+            out.push(Output::Violation {
+                characteristic: self.cfg.id.clone(),
+                violation: v.clone(),
+            });
+        }
+        out.push(Output::Checked {
+            characteristic: self.cfg.id.clone(),
+            subgroup: summary,
+            violations: violations.len(),
+            learning,
+        });
+        out.push(Output::Record(Record::SubgroupResult {
+            characteristic: self.cfg.id.clone(),
+            subgroup: summary,
+            readings: seqs,
+            partial,
+            location,
+            dispersion: disp_limits,
+            violations,
+        }));
+        if learning {
+            self.maybe_learn(time_ms, out);
+        }
+        if learning || self.number.is_multiple_of(SAVE_EVERY) {
+            out.push(Output::Record(self.saved_record()));
+        }
+    }
+
+    fn discard(&self, readings: &[PendingReading], reason: String) -> Output {
+        Output::Record(Record::SubgroupDiscarded {
+            characteristic: self.cfg.id.clone(),
+            readings: readings.iter().map(|r| r.seq).collect(),
+            reason,
+        })
+    }
+
+    fn chart(&self) -> VariablesChart {
+        match &self.mode {
+            Mode::Monitoring { limits, .. } => limits.chart,
+            Mode::Learning { .. } => self.cfg.chart,
+        }
+    }
+
+    /// With a full baseline, runs the study (automatic exclusion) and installs provisional
+    /// limits; on failure keeps the newest subgroups and tries again with the next.
+    fn maybe_learn(&mut self, time_ms: i64, out: &mut Vec<Output>) {
+        let Mode::Learning { baseline } = &mut self.mode else {
+            return;
+        };
+        if baseline.len() < self.cfg.baseline_subgroups {
+            return;
+        }
+        let mut opts = StudyOptions::new(self.cfg.chart);
+        opts.auto_exclude = true;
+        match study::run(baseline, &opts) {
+            Ok(s) => {
+                let when = humantime::format_rfc3339_seconds(
+                    std::time::UNIX_EPOCH + std::time::Duration::from_millis(time_ms.max(0) as u64),
+                )
+                .to_string();
+                let unit = (!self.cfg.unit.is_empty()).then(|| self.cfg.unit.clone());
+                let limits = StoredLimits::from_study(
+                    &s,
+                    &self.cfg.id,
+                    unit,
+                    self.cfg.spec,
+                    "learning",
+                    &when,
+                );
+                let message = format!(
+                    "provisional limits learned from {} subgroups ({} excluded): centre {}, limits {} to {}; review them before relying on them",
+                    s.subgroups_total,
+                    s.excluded.len(),
+                    num(limits.location.center),
+                    num(limits.location.lcl),
+                    num(limits.location.ucl)
+                );
+                out.push(Output::Log {
+                    level: Level::Warn,
+                    characteristic: self.cfg.id.clone(),
+                    message: message.clone(),
+                });
+                out.push(Output::Record(Record::LimitsInstalled {
+                    characteristic: self.cfg.id.clone(),
+                    old: None,
+                    new: Box::new(limits.clone()),
+                    reason: message,
+                }));
+                if let Some(path) = &self.cfg.limits_path {
+                    out.push(Output::WriteLimits {
+                        path: path.clone(),
+                        limits: Box::new(limits.clone()),
+                    });
+                }
+                let points = PointEvaluator::new(&self.cfg.rules, basis_of(&limits, &self.cfg));
+                self.mode = Mode::Monitoring {
+                    limits: Box::new(limits),
+                    points: Box::new(points),
+                };
+            }
+            Err(e) => {
+                out.push(Output::Log {
+                    level: Level::Warn,
+                    characteristic: self.cfg.id.clone(),
+                    message: format!(
+                        "the baseline of {} subgroups gives no limits yet ({e}); learning goes on with the newest subgroups",
+                        baseline.len()
+                    ),
+                });
+                baseline.remove(0);
+            }
+        }
+    }
+
+    fn saved(&self) -> Saved {
+        let (learning, points) = match &self.mode {
+            Mode::Learning { baseline } => (Some(baseline.clone()), None),
+            Mode::Monitoring { points, .. } => (None, Some(points.state().clone())),
+        };
+        Saved {
+            number: self.number,
+            last_individual: self.last_individual,
+            learning,
+            points,
+            reading: self.reading_rules.state().clone(),
+            readings: self.readings,
+        }
+    }
+
+    fn saved_record(&self) -> Record {
+        Record::EngineState {
+            characteristic: self.cfg.id.clone(),
+            state: serde_json::to_value(self.saved()).unwrap_or(serde_json::Value::Null),
+        }
+    }
+
+    fn restore(&mut self, t: &crate::archive::record::CharacteristicTail) -> Vec<Output> {
+        let mut out = Vec::new();
+        self.asm.restore(t.pending.iter().cloned());
+        let saved: Option<Saved> = t
+            .engine
+            .as_ref()
+            .and_then(|(_, v)| serde_json::from_value(v.clone()).ok());
+        let mut replay_from = 0;
+        if let Some(s) = saved {
+            self.number = s.number;
+            self.readings = s.readings;
+            self.last_individual = s.last_individual;
+            let basis = ReadingBasis {
+                spec: self.cfg.spec,
+                unit: self.cfg.unit.clone(),
+            };
+            self.reading_rules = ReadingEvaluator::resume(&self.cfg.rules, basis, s.reading);
+            match (&mut self.mode, s.learning, s.points) {
+                (Mode::Learning { baseline }, Some(b), _) => *baseline = b,
+                (Mode::Monitoring { points, .. }, _, Some(ps)) => {
+                    let (resumed, fits) =
+                        PointEvaluator::resume(&self.cfg.rules, points.basis().clone(), ps);
+                    if fits {
+                        **points = resumed;
+                    } else {
+                        out.push(Output::Log {
+                            level: Level::Warn,
+                            characteristic: self.cfg.id.clone(),
+                            message: "the rules changed since the last run; their state starts afresh from the recent subgroups".into(),
+                        });
+                    }
+                }
+                _ => {}
+            }
+            replay_from = s.number;
+        }
+        // Subgroups after the saved state go through the rules again (without alerting), so
+        // a run that began before the restart goes on counting.
+        if let Mode::Monitoring { points, .. } = &mut self.mode {
+            for sg in t.recent.iter().filter(|s| s.number > replay_from) {
+                let _ = points.evaluate(&crate::rules::point::Plotted {
+                    number: sg.number,
+                    time_ms: sg.time_ms,
+                    n: sg.n,
+                    mean: sg.mean,
+                    dispersion: sg.dispersion,
+                });
+            }
+        }
+        if let Some(last) = t.recent.last() {
+            self.number = self.number.max(last.number);
+        }
+        out.push(Output::Log {
+            level: Level::Info,
+            characteristic: self.cfg.id.clone(),
+            message: format!(
+                "resumed at subgroup {} with {} reading(s) waiting",
+                self.number,
+                self.asm.waiting().len()
+            ),
+        });
+        out
+    }
+}
+
+fn basis_of(l: &StoredLimits, c: &Characteristic) -> ChartBasis {
+    let mut b = ChartBasis::from_stored(l);
+    if b.unit.is_empty() {
+        b.unit = c.unit.clone();
+    }
+    b
+}
