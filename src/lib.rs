@@ -25,6 +25,7 @@
 
 pub mod archive;
 pub mod config;
+pub mod daemon;
 pub mod diag;
 pub mod engine;
 pub mod format;

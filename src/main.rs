@@ -35,6 +35,12 @@ enum Command {
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
+    /// Run the daemon: read the sources, check every subgroup, archive everything, alert.
+    Run {
+        /// The config file.
+        #[arg(long, value_name = "FILE")]
+        config: PathBuf,
+    },
     /// Validate a daemon config file and report every problem at once.
     Check {
         /// The config file.
@@ -238,6 +244,7 @@ fn main() -> ExitCode {
         Command::Arl(a) => arl_cmd(a),
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),
+        Command::Run { config } => run_cmd(&config),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -837,4 +844,49 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
         }
     }
     Ok(())
+}
+
+fn run_cmd(path: &std::path::Path) -> Result<()> {
+    tracing_subscriber::fmt()
+        .with_writer(std::io::stderr)
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env()
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info")),
+        )
+        .with_target(false)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
+        .init();
+    let cfg = linewarden::config::load(path)?;
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .context("cannot start the async runtime")?;
+    rt.block_on(async move {
+        let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+        tokio::spawn(async move {
+            use tokio::signal::unix::{SignalKind, signal};
+            let (Ok(mut term), Ok(mut int)) = (signal(SignalKind::terminate()), signal(SignalKind::interrupt())) else {
+                tracing::error!(component = "daemon", "cannot install signal handlers");
+                return;
+            };
+            let which = tokio::select! {
+                _ = term.recv() => "SIGTERM",
+                _ = int.recv() => "SIGINT",
+            };
+            tracing::info!(component = "daemon", "{which} received; stopping the sources");
+            let _ = stop_tx.send(true);
+        });
+        let s = linewarden::daemon::run(cfg, stop_rx).await?;
+        tracing::info!(
+            component = "daemon",
+            "stopped: {} readings accepted, {} rejected, {} subgroups checked, {} violations; archive durable to sequence {}",
+            s.accepted,
+            s.rejected,
+            s.subgroups,
+            s.violations,
+            s.last_seq
+        );
+        Ok(())
+    })
 }

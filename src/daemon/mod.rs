@@ -1,0 +1,309 @@
+//! The daemon: sources → reading checks → archive → engine → outputs, over bounded channels.
+//!
+//! * Sources are tasks that send [`SourceEvent`]s into one channel of [`SOURCE_QUEUE`] events;
+//!   a source that can wait (replay, files, MQTT before its ack) waits when it is full.
+//! * The engine task owns the [`Engine`]: it rejects or archives each reading, then hands it to
+//!   the engine and carries out its outputs. Archive appends wait when the writer's queue is
+//!   full: nothing is lost.
+//! * Shutdown flows downstream: only sources watch the shutdown signal; the engine task ends
+//!   when every source has ended or dropped its sender, saves the engine state, and drops its
+//!   archive handle, so the writer flushes last.
+//!
+//! * [`replay`] — plays a recorded feed file.
+
+pub mod replay;
+
+use std::time::Duration;
+
+use tokio::sync::{mpsc, watch};
+
+use crate::archive::writer::{self, ArchiveHandle, Writer, WriterConfig};
+use crate::archive::{ArchiveError, Record};
+use crate::config::{Config, Source};
+use crate::engine::{Engine, Incoming, Level, Output};
+use crate::format::num;
+
+/// Events from sources, in the order they happened.
+#[derive(Debug, Clone, PartialEq)]
+pub enum SourceEvent {
+    Reading(Incoming),
+    /// Something arrived that is not a reading.
+    Unreadable {
+        source: String,
+        characteristic: Option<String>,
+        raw: String,
+        reason: String,
+    },
+    /// The source has nothing more to send (a replay that finished).
+    Ended {
+        source: String,
+    },
+}
+
+/// The queue from all sources to the engine.
+pub const SOURCE_QUEUE: usize = 1024;
+
+/// Milliseconds since the Unix epoch, now. The daemon's one clock.
+pub fn now_ms() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_millis() as i64)
+        .unwrap_or(0)
+}
+
+/// Why the daemon stopped with an error.
+#[derive(Debug, thiserror::Error)]
+pub enum DaemonError {
+    #[error(transparent)]
+    Archive(#[from] ArchiveError),
+    #[error("the archive writer did not finish within {0:?}")]
+    LateWriter(Duration),
+}
+
+/// What a run did, for the caller and the tests.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Summary {
+    pub accepted: u64,
+    pub rejected: u64,
+    pub subgroups: u64,
+    pub violations: u64,
+    pub last_seq: u64,
+}
+
+/// Runs the daemon until `shutdown` turns true or every source has ended.
+pub async fn run(cfg: Config, shutdown: watch::Receiver<bool>) -> Result<Summary, DaemonError> {
+    let mut wc = WriterConfig::new(&cfg.archive_dir);
+    wc.flush_interval_ms = cfg.flush_interval_ms;
+    wc.max_segment_bytes = cfg.max_segment_bytes;
+    let (writer, report) = Writer::open(wc)?;
+    for q in &report.quarantined {
+        tracing::warn!(
+            component = "archive",
+            "recovered: cut {} damaged bytes at offset {} of {} into {}",
+            q.bytes,
+            q.offset,
+            q.segment.display(),
+            q.quarantine.display()
+        );
+    }
+    let tail = writer.tail().clone();
+    let (archive, join) = writer::spawn(writer, now_ms);
+
+    let mut engine = Engine::new(&cfg, now_ms());
+    let mut summary = Summary::default();
+    let text = std::fs::read(&cfg.path).unwrap_or_default();
+    archive
+        .append(vec![
+            Record::DaemonStarted {
+                version: env!("CARGO_PKG_VERSION").to_string(),
+            },
+            Record::ConfigLoaded {
+                path: cfg.path.display().to_string(),
+                sha256: crate::archive::segment::sha256_hex(&text),
+            },
+        ])
+        .await?;
+    carry_out(&archive, &cfg, engine.restore(&tail), &mut summary).await?;
+
+    let (tx, mut rx) = mpsc::channel(SOURCE_QUEUE);
+    let mut sources = 0;
+    for s in &cfg.sources {
+        match s {
+            Source::Replay { id, file, speed } => {
+                tokio::spawn(replay::run(
+                    id.clone(),
+                    file.clone(),
+                    *speed,
+                    tx.clone(),
+                    shutdown.clone(),
+                ));
+            }
+        }
+        sources += 1;
+    }
+    drop(tx);
+    tracing::info!(
+        component = "daemon",
+        "monitoring {} characteristic(s) from {sources} source(s); archive {}",
+        cfg.characteristics.len(),
+        cfg.archive_dir.display()
+    );
+    let mut tick = tokio::time::interval(Duration::from_secs(1));
+    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    let mut ended = 0;
+    let mut rejected_logged = 0u64;
+    let reason = loop {
+        tokio::select! {
+            ev = rx.recv() => match ev {
+                Some(SourceEvent::Reading(inc)) => match engine.check(&inc) {
+                    Ok(()) => {
+                        let seq = archive.append_seq(vec![inc.record()]).await?;
+                        summary.accepted += 1;
+                        let out = engine.accept(seq, &inc);
+                        carry_out(&archive, &cfg, out, &mut summary).await?;
+                    }
+                    Err(reason) => {
+                        summary.rejected += 1;
+                        reject(&mut rejected_logged, &inc.source, &inc.value.to_string(), &reason);
+                        archive.append(vec![Record::ReadingRejected {
+                            source: inc.source.clone(),
+                            characteristic: Some(inc.characteristic.clone()),
+                            raw: inc.value.to_string(),
+                            reason,
+                            arrival_ms: inc.arrival_ms,
+                        }]).await?;
+                    }
+                },
+                Some(SourceEvent::Unreadable { source, characteristic, raw, reason }) => {
+                    summary.rejected += 1;
+                    reject(&mut rejected_logged, &source, &raw, &reason);
+                    archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms() }]).await?;
+                }
+                Some(SourceEvent::Ended { source }) => {
+                    ended += 1;
+                    tracing::info!(component = "daemon", "source {source} has ended");
+                    if ended == sources {
+                        break "every source has ended".to_string();
+                    }
+                }
+                None => break "every source has stopped".to_string(),
+            },
+            _ = tick.tick() => {
+                let out = engine.tick(now_ms());
+                carry_out(&archive, &cfg, out, &mut summary).await?;
+            }
+        }
+    };
+    tracing::info!(component = "daemon", "stopping: {reason}");
+    let mut last = engine.snapshot();
+    last.push(Record::DaemonStopped { reason });
+    summary.last_seq = archive.append_seq(last).await?;
+    drop(archive);
+    let deadline = Duration::from_secs(30);
+    let joined =
+        tokio::time::timeout(deadline, tokio::task::spawn_blocking(move || join.join())).await;
+    match joined {
+        Ok(Ok(Ok(result))) => result?,
+        Ok(_) => {
+            return Err(DaemonError::Archive(ArchiveError::Stopped(
+                "the writer thread panicked".into(),
+            )));
+        }
+        Err(_) => return Err(DaemonError::LateWriter(deadline)),
+    }
+    Ok(summary)
+}
+
+/// Logs a rejected reading: the first ten, then one in a hundred (a noisy gauge must not flood
+/// the journal); every one is archived and counted.
+fn reject(logged: &mut u64, source: &str, raw: &str, reason: &str) {
+    *logged += 1;
+    if *logged <= 10 || logged.is_multiple_of(100) {
+        tracing::warn!(
+            component = "checks",
+            source,
+            "rejected reading {raw:?}: {reason} ({} so far)",
+            logged
+        );
+    }
+}
+
+/// Carries out the engine's outputs: archive records, log violations and checks, write
+/// learned limits.
+async fn carry_out(
+    archive: &ArchiveHandle,
+    cfg: &Config,
+    outputs: Vec<Output>,
+    summary: &mut Summary,
+) -> Result<(), DaemonError> {
+    let mut records = Vec::new();
+    for o in outputs {
+        match o {
+            Output::Record(r) => records.push(r),
+            Output::Violation {
+                characteristic,
+                violation,
+            } => {
+                summary.violations += 1;
+                let plan = cfg
+                    .characteristics
+                    .iter()
+                    .find(|c| c.id == characteristic)
+                    .and_then(|c| c.reaction_plan.clone())
+                    .filter(|_| violation.severity == crate::rules::Severity::Stop);
+                tracing::warn!(
+                    component = "engine",
+                    characteristic = %characteristic,
+                    rule = %violation.rule,
+                    severity = violation.severity.name(),
+                    "ALERT {}: {}{}",
+                    violation.severity.name().to_uppercase(),
+                    violation.message,
+                    plan.map(|p| format!(". Reaction plan: {p}")).unwrap_or_default()
+                );
+            }
+            Output::Checked {
+                characteristic,
+                subgroup,
+                violations,
+                learning,
+            } => {
+                summary.subgroups += 1;
+                let state = if learning {
+                    "learning limits".to_string()
+                } else if violations == 0 {
+                    "in control".to_string()
+                } else {
+                    format!("{violations} rule(s) fired")
+                };
+                tracing::info!(
+                    component = "engine",
+                    characteristic = %characteristic,
+                    "subgroup {}: mean {} (n = {}){}, {state}",
+                    subgroup.number,
+                    num(subgroup.mean),
+                    subgroup.n,
+                    subgroup.dispersion.map(|d| format!(", spread {}", num(d))).unwrap_or_default()
+                );
+            }
+            Output::Log {
+                level,
+                characteristic,
+                message,
+            } => match level {
+                Level::Info => {
+                    tracing::info!(component = "engine", characteristic = %characteristic, "{message}")
+                }
+                Level::Warn => {
+                    tracing::warn!(component = "engine", characteristic = %characteristic, "{message}")
+                }
+            },
+            Output::WriteLimits { path, limits } => {
+                let text = limits.to_toml();
+                let id = limits.characteristic.clone();
+                let result = tokio::task::spawn_blocking(move || {
+                    if let Some(dir) = path.parent() {
+                        std::fs::create_dir_all(dir)?;
+                    }
+                    crate::fsutil::write_atomic(&path, text.as_bytes()).map(|_| path)
+                })
+                .await;
+                match result {
+                    Ok(Ok(path)) => {
+                        tracing::info!(component = "engine", characteristic = %id, "wrote provisional limits to {}", path.display())
+                    }
+                    Ok(Err(e)) => {
+                        tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits: {e}; they are in the archive")
+                    }
+                    Err(e) => {
+                        tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits: {e}")
+                    }
+                }
+            }
+        }
+    }
+    if !records.is_empty() {
+        archive.append(records).await?;
+    }
+    Ok(())
+}

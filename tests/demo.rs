@@ -1,0 +1,71 @@
+//! The README's demo, as fast as the machine allows: config/demo.toml with its replay at full
+//! speed and the archive in a temporary directory. It must check subgroups, learn the two
+//! characteristics without stored limits, and raise alerts on the bore after the insert wears.
+
+use std::path::Path;
+
+use linewarden::archive::Record;
+use linewarden::archive::reader::{Filter, Reader};
+use linewarden::config::{self, Source};
+
+#[test]
+fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let mut cfg = config::load(&root.join("config/demo.toml")).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    cfg.archive_dir = dir.path().join("archive");
+    for c in &mut cfg.characteristics {
+        // The characteristics that learn write under target/demo; an earlier demo run may have
+        // left learned limits there. Start them afresh in the temporary directory.
+        if c.limits_path
+            .as_ref()
+            .is_some_and(|p| p.to_string_lossy().contains("target/demo"))
+        {
+            c.limits = None;
+            c.limits_path = Some(dir.path().join(format!("limits/{}.toml", c.id)));
+        }
+    }
+    for s in &mut cfg.sources {
+        let Source::Replay { speed, .. } = s;
+        *speed = 0.0;
+    }
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap();
+    let (_tx, rx) = tokio::sync::watch::channel(false);
+    let s = rt.block_on(linewarden::daemon::run(cfg, rx)).unwrap();
+    assert_eq!(s.rejected, 2, "the two unreadable gauge outputs");
+    assert!(s.subgroups > 200);
+    assert!(dir.path().join("limits/vb210-face.toml").exists());
+    assert!(dir.path().join("limits/vb210-port.toml").exists());
+    let r = Reader::open(&dir.path().join("archive")).unwrap();
+    let mut bore_alerts = 0;
+    let mut installed = 0;
+    for e in r.iter(&Filter::default()) {
+        match e.unwrap().record {
+            Record::SubgroupResult {
+                characteristic,
+                violations,
+                subgroup,
+                ..
+            } if characteristic == "vb210-bore" && !violations.is_empty() => {
+                // The insert starts to wear after part 150, in subgroup 30.
+                assert!(
+                    subgroup.number >= 25,
+                    "false alarm at subgroup {}",
+                    subgroup.number
+                );
+                bore_alerts += 1;
+            }
+            Record::LimitsInstalled { .. } => installed += 1,
+            _ => {}
+        }
+    }
+    assert!(
+        bore_alerts > 10,
+        "{bore_alerts} bore subgroups with violations"
+    );
+    assert_eq!(installed, 2);
+}
