@@ -864,20 +864,31 @@ fn run_cmd(path: &std::path::Path) -> Result<()> {
         .context("cannot start the async runtime")?;
     rt.block_on(async move {
         let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+        let (reload_tx, reload_rx) = tokio::sync::mpsc::channel(4);
         tokio::spawn(async move {
             use tokio::signal::unix::{SignalKind, signal};
-            let (Ok(mut term), Ok(mut int)) = (signal(SignalKind::terminate()), signal(SignalKind::interrupt())) else {
+            let (Ok(mut term), Ok(mut int), Ok(mut hup)) = (
+                signal(SignalKind::terminate()),
+                signal(SignalKind::interrupt()),
+                signal(SignalKind::hangup()),
+            ) else {
                 tracing::error!(component = "daemon", "cannot install signal handlers");
                 return;
             };
-            let which = tokio::select! {
-                _ = term.recv() => "SIGTERM",
-                _ = int.recv() => "SIGINT",
+            let which = loop {
+                tokio::select! {
+                    _ = term.recv() => break "SIGTERM",
+                    _ = int.recv() => break "SIGINT",
+                    _ = hup.recv() => {
+                        tracing::info!(component = "daemon", "SIGHUP received; reloading the configuration");
+                        let _ = reload_tx.try_send(());
+                    }
+                }
             };
             tracing::info!(component = "daemon", "{which} received; stopping the sources");
             let _ = stop_tx.send(true);
         });
-        let s = linewarden::daemon::run(cfg, stop_rx).await?;
+        let s = linewarden::daemon::run(cfg, stop_rx, reload_rx).await?;
         tracing::info!(
             component = "daemon",
             "stopped: {} readings accepted, {} rejected, {} subgroups checked, {} violations; archive durable to sequence {}",

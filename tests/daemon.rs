@@ -88,7 +88,9 @@ fn run(path: &Path) -> linewarden::daemon::Summary {
         .build()
         .unwrap();
     let (_tx, rx) = tokio::sync::watch::channel(false);
-    rt.block_on(linewarden::daemon::run(cfg, rx)).unwrap()
+    let (_reload_tx, reload_rx) = tokio::sync::mpsc::channel(1);
+    rt.block_on(linewarden::daemon::run(cfg, rx, reload_rx))
+        .unwrap()
 }
 
 /// (subgroup number, rule) of every violation archived.

@@ -35,7 +35,10 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
         .build()
         .unwrap();
     let (_tx, rx) = tokio::sync::watch::channel(false);
-    let s = rt.block_on(linewarden::daemon::run(cfg, rx)).unwrap();
+    let (_reload_tx, reload_rx) = tokio::sync::mpsc::channel(1);
+    let s = rt
+        .block_on(linewarden::daemon::run(cfg, rx, reload_rx))
+        .unwrap();
     assert_eq!(s.rejected, 2, "the two unreadable gauge outputs");
     assert!(s.subgroups > 200);
     assert!(dir.path().join("limits/vb210-face.toml").exists());

@@ -10,7 +10,9 @@
 //!   archive handle, so the writer flushes last.
 //!
 //! * [`replay`] — plays a recorded feed file.
+//! * [`notify`] — systemd readiness, watchdog and status notifications.
 
+pub mod notify;
 pub mod replay;
 
 use std::time::Duration;
@@ -70,8 +72,16 @@ pub struct Summary {
     pub last_seq: u64,
 }
 
-/// Runs the daemon until `shutdown` turns true or every source has ended.
-pub async fn run(cfg: Config, shutdown: watch::Receiver<bool>) -> Result<Summary, DaemonError> {
+/// Runs the daemon until `shutdown` turns true or every source has ended. Each message on
+/// `reload` rereads the config file: a valid file is swapped in (characteristics whose
+/// configuration did not change keep their state), an invalid one is rejected whole and the
+/// running config kept.
+pub async fn run(
+    cfg: Config,
+    shutdown: watch::Receiver<bool>,
+    mut reload: mpsc::Receiver<()>,
+) -> Result<Summary, DaemonError> {
+    let mut cfg = cfg;
     let mut wc = WriterConfig::new(&cfg.archive_dir);
     wc.flush_interval_ms = cfg.flush_interval_ms;
     wc.max_segment_bytes = cfg.max_segment_bytes;
@@ -122,6 +132,33 @@ pub async fn run(cfg: Config, shutdown: watch::Receiver<bool>) -> Result<Summary
         sources += 1;
     }
     drop(tx);
+    let notifier = std::sync::Arc::new(notify::Notifier::from_env());
+    // Progress: the engine loop stamps the time of every turn (a reading or the 1 s tick). The
+    // watchdog is pinged only while the loop turns, or while the archive reports a full disk
+    // (a known, reported condition that a restart would not cure).
+    let progress = std::sync::Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
+    if let Some(interval) = notify::Notifier::watchdog() {
+        let (n, p, status) = (notifier.clone(), progress.clone(), archive.status());
+        tokio::spawn(async move {
+            let mut t = tokio::time::interval(interval / 2);
+            loop {
+                t.tick().await;
+                let fresh = now_ms() - p.load(std::sync::atomic::Ordering::Relaxed)
+                    < interval.as_millis() as i64;
+                let disk_full = matches!(
+                    status.borrow().state,
+                    crate::archive::writer::WriterState::DiskFull { .. }
+                );
+                if fresh || disk_full {
+                    n.send("WATCHDOG=1");
+                }
+            }
+        });
+    }
+    notifier.send(&format!(
+        "READY=1\nSTATUS=monitoring {} characteristic(s) from {sources} source(s)",
+        cfg.characteristics.len()
+    ));
     tracing::info!(
         component = "daemon",
         "monitoring {} characteristic(s) from {sources} source(s); archive {}",
@@ -133,6 +170,7 @@ pub async fn run(cfg: Config, shutdown: watch::Receiver<bool>) -> Result<Summary
     let mut ended = 0;
     let mut rejected_logged = 0u64;
     let reason = loop {
+        progress.store(now_ms(), std::sync::atomic::Ordering::Relaxed);
         tokio::select! {
             ev = rx.recv() => match ev {
                 Some(SourceEvent::Reading(inc)) => match engine.check(&inc) {
@@ -168,6 +206,37 @@ pub async fn run(cfg: Config, shutdown: watch::Receiver<bool>) -> Result<Summary
                 }
                 None => break "every source has stopped".to_string(),
             },
+            Some(()) = reload.recv() => {
+                let path = cfg.path.clone();
+                let loaded = tokio::task::spawn_blocking(move || crate::config::load(&path)).await;
+                match loaded {
+                    Ok(Ok(new)) => {
+                        if new.sources != cfg.sources {
+                            tracing::warn!(component = "daemon", "the sources changed; that takes effect at the next restart");
+                        }
+                        if new.archive_dir != cfg.archive_dir {
+                            tracing::warn!(component = "daemon", "archive_dir changed; that takes effect at the next restart");
+                        }
+                        let tail = crate::archive::reader::Reader::open(&cfg.archive_dir)
+                            .and_then(|r| r.tail(30))
+                            .unwrap_or_default();
+                        for note in engine.reconfigure(&new, &tail, now_ms()) {
+                            tracing::info!(component = "daemon", "reload: {note}");
+                        }
+                        let text = std::fs::read(&new.path).unwrap_or_default();
+                        archive.append(vec![Record::ConfigLoaded {
+                            path: new.path.display().to_string(),
+                            sha256: crate::archive::segment::sha256_hex(&text),
+                        }]).await?;
+                        let keep = (cfg.archive_dir.clone(), cfg.sources.clone());
+                        cfg = new;
+                        (cfg.archive_dir, cfg.sources) = keep;
+                        tracing::info!(component = "daemon", "reloaded {}", cfg.path.display());
+                    }
+                    Ok(Err(e)) => tracing::error!(component = "daemon", "reload rejected, the running configuration stays:\n{e}"),
+                    Err(e) => tracing::error!(component = "daemon", "reload failed: {e}"),
+                }
+            }
             _ = tick.tick() => {
                 let out = engine.tick(now_ms());
                 carry_out(&archive, &cfg, out, &mut summary).await?;
@@ -175,6 +244,7 @@ pub async fn run(cfg: Config, shutdown: watch::Receiver<bool>) -> Result<Summary
         }
     };
     tracing::info!(component = "daemon", "stopping: {reason}");
+    notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
     let mut last = engine.snapshot();
     last.push(Record::DaemonStopped { reason });
     summary.last_seq = archive.append_seq(last).await?;

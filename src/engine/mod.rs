@@ -153,6 +153,42 @@ impl Engine {
         Engine { chars }
     }
 
+    /// Takes a new configuration. A characteristic whose configuration (limits, rules,
+    /// grouping, spec, ...) did not change keeps its state; a changed or new one starts afresh
+    /// (rebuilt from `tail` where it has history); a removed one is dropped. Returns what changed,
+    /// in words.
+    pub fn reconfigure(&mut self, cfg: &Config, tail: &Tail, now_ms: i64) -> Vec<String> {
+        let mut notes = Vec::new();
+        let mut next = BTreeMap::new();
+        for c in &cfg.characteristics {
+            match self.chars.remove(&c.id) {
+                Some(old) if &old.cfg == c => {
+                    next.insert(c.id.clone(), old);
+                }
+                old => {
+                    let mut fresh = CharEngine::new(c.clone(), now_ms);
+                    if let Some(t) = tail.characteristics.get(&c.id) {
+                        let _ = fresh.restore(t);
+                    }
+                    notes.push(if old.is_some() {
+                        format!(
+                            "{}: configuration changed; its rules start from the recent subgroups",
+                            c.id
+                        )
+                    } else {
+                        format!("{}: added", c.id)
+                    });
+                    next.insert(c.id.clone(), fresh);
+                }
+            }
+        }
+        for id in self.chars.keys() {
+            notes.push(format!("{id}: removed"));
+        }
+        self.chars = next;
+        notes
+    }
+
     /// The characteristics, in order, and whether each is learning its limits.
     pub fn characteristics(&self) -> Vec<(String, bool)> {
         self.chars
