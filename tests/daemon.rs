@@ -7,32 +7,8 @@ use linewarden::archive::Record;
 use linewarden::archive::reader::{Filter, Reader};
 use linewarden::config;
 
-const LIMITS: &str = r#"format = 1
-characteristic = "bore"
-chart = "xbar-r"
-subgroup_size = 4
-unit = "mm"
-[sigma]
-within = 0.004
-overall = 0.004
-method = "average range / d2"
-[location]
-center = 12.0
-ucl = 12.006
-lcl = 11.994
-[dispersion]
-kind = "range"
-center = 0.008236
-ucl = 0.018792
-lcl = 0.0
-[provenance]
-computed_at = "2026-12-01T08:00:00Z"
-source = "test"
-tool = "linewarden test"
-subgroups_total = 25
-subgroups_used = 25
-used = "1-25"
-"#;
+mod common;
+use common::{BORE_LIMITS, run_daemon};
 
 /// Writes a feed of subgroups of 4 with the given means (each subgroup 4 readings spread
 /// ±0.001 around its mean, so ranges stay in control).
@@ -54,7 +30,7 @@ fn feed(path: &Path, means: &[f64], first_part: usize) {
 }
 
 fn cell(dir: &Path, feed_file: &str) -> std::path::PathBuf {
-    std::fs::write(dir.join("bore.toml"), LIMITS).unwrap();
+    std::fs::write(dir.join("bore.toml"), BORE_LIMITS).unwrap();
     let text = format!(
         r#"[daemon]
 archive_dir = "archive"
@@ -81,16 +57,7 @@ speed = 0
 }
 
 fn run(path: &Path) -> linewarden::daemon::Summary {
-    let cfg = config::load(path).unwrap();
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap();
-    let (_tx, rx) = tokio::sync::watch::channel(false);
-    let (_reload_tx, reload_rx) = tokio::sync::mpsc::channel(1);
-    rt.block_on(linewarden::daemon::run(cfg, rx, reload_rx))
-        .unwrap()
+    run_daemon(config::load(path).unwrap())
 }
 
 /// (subgroup number, rule) of every violation archived.

@@ -7,31 +7,8 @@ use linewarden::archive::Record;
 use linewarden::archive::reader::{Filter, Reader};
 use linewarden::config;
 
-const LIMITS: &str = r#"format = 1
-characteristic = "bore"
-chart = "xbar-r"
-subgroup_size = 4
-[sigma]
-within = 0.004
-overall = 0.004
-method = "average range / d2"
-[location]
-center = 12.0
-ucl = 12.006
-lcl = 11.994
-[dispersion]
-kind = "range"
-center = 0.008236
-ucl = 0.018792
-lcl = 0.0
-[provenance]
-computed_at = "2026-12-01T08:00:00Z"
-source = "test"
-tool = "linewarden test"
-subgroups_total = 25
-subgroups_used = 25
-used = "1-25"
-"#;
+mod common;
+use common::BORE_LIMITS;
 
 fn config_text(extra_rule: &str) -> String {
     format!(
@@ -60,7 +37,7 @@ speed = 1
 fn a_bad_reload_is_rejected_and_a_good_one_applies() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    std::fs::write(d.join("bore.toml"), LIMITS).unwrap();
+    std::fs::write(d.join("bore.toml"), BORE_LIMITS).unwrap();
     let mut feed = String::new();
     for i in 0..200 {
         let v = 12.001 + if i % 2 == 0 { 0.0005 } else { -0.0005 };

@@ -8,6 +8,8 @@ use linewarden::archive::Record;
 use linewarden::archive::reader::{Filter, Reader};
 use linewarden::config::{self, Source};
 
+mod common;
+
 #[test]
 fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
@@ -29,16 +31,7 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
         let Source::Replay { speed, .. } = s;
         *speed = 0.0;
     }
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap();
-    let (_tx, rx) = tokio::sync::watch::channel(false);
-    let (_reload_tx, reload_rx) = tokio::sync::mpsc::channel(1);
-    let s = rt
-        .block_on(linewarden::daemon::run(cfg, rx, reload_rx))
-        .unwrap();
+    let s = common::run_daemon(cfg);
     assert_eq!(s.rejected, 2, "the two unreadable gauge outputs");
     assert!(s.subgroups > 200);
     assert!(dir.path().join("limits/vb210-face.toml").exists());

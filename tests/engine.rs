@@ -7,6 +7,8 @@ use linewarden::archive::record::{Envelope, Record, Tail};
 use linewarden::config;
 use linewarden::engine::{Engine, Incoming, Output};
 
+mod common;
+
 const T0: i64 = 1_796_112_000_000;
 
 /// A tiny stand-in for the archive: numbers records and keeps the tail.
@@ -75,34 +77,7 @@ fn feed(engine: &mut Engine, log: &mut Log, c: &str, v: f64, t: i64) -> Vec<Stri
 }
 
 fn config_with_limits(dir: &Path) -> config::Config {
-    // Limits: centre 12.000, sigma 0.004, subgroups of 4.
-    let limits = r#"format = 1
-characteristic = "bore"
-chart = "xbar-r"
-subgroup_size = 4
-unit = "mm"
-[sigma]
-within = 0.004
-overall = 0.004
-method = "average range / d2"
-[location]
-center = 12.0
-ucl = 12.006
-lcl = 11.994
-[dispersion]
-kind = "range"
-center = 0.008236
-ucl = 0.018792
-lcl = 0.0
-[provenance]
-computed_at = "2026-12-01T08:00:00Z"
-source = "test"
-tool = "linewarden test"
-subgroups_total = 25
-subgroups_used = 25
-used = "1-25"
-"#;
-    std::fs::write(dir.join("bore.toml"), limits).unwrap();
+    std::fs::write(dir.join("bore.toml"), common::BORE_LIMITS).unwrap();
     let text = r#"
 [daemon]
 archive_dir = "archive"
