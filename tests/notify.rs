@@ -4,6 +4,8 @@
 use std::os::unix::net::UnixDatagram;
 use std::time::Duration;
 
+mod common;
+
 #[test]
 fn ready_watchdog_and_stopping_reach_the_notify_socket() {
     let dir = tempfile::tempdir().unwrap();
@@ -50,15 +52,7 @@ fn ready_watchdog_and_stopping_reach_the_notify_socket() {
     )
     .unwrap();
     let cfg = linewarden::config::load(&d.join("cell.toml")).unwrap();
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap();
-    let (_stop, stop_rx) = tokio::sync::watch::channel(false);
-    let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
-    rt.block_on(linewarden::daemon::run(cfg, stop_rx, reload_rx))
-        .unwrap();
+    common::run_daemon(cfg);
     let got = reader.join().unwrap();
     let text = got.join("|");
     assert!(
