@@ -134,6 +134,20 @@ pub struct RawSource {
     pub file: Option<String>,
     /// replay: speed factor (2 = twice as fast as recorded; 0 = as fast as possible).
     pub speed: Option<f64>,
+    /// folder: the directory a measuring machine drops its CSV reports into.
+    pub path: Option<String>,
+    /// folder: "per-part" (one row per part, a column per characteristic) or "per-reading"
+    /// (one reading per row).
+    pub rows: Option<String>,
+    /// folder, per-part: report column → characteristic id.
+    pub columns: Option<std::collections::BTreeMap<String, String>>,
+    /// folder: the column holding the part or sample id.
+    pub part_column: Option<String>,
+    /// folder, per-reading: the columns holding the characteristic id and the value.
+    pub characteristic_column: Option<String>,
+    pub value_column: Option<String>,
+    /// folder: a file is read once its size has not changed for this long.
+    pub settle_ms: Option<u64>,
 }
 
 /// How readings form subgroups.
@@ -164,6 +178,18 @@ pub struct Characteristic {
     pub reaction_plan: Option<String>,
 }
 
+/// How a folder source's CSV reports are laid out.
+#[derive(Debug, Clone, PartialEq)]
+pub enum ReportRows {
+    /// One row per part; each mapped column a characteristic.
+    PerPart { columns: Vec<(String, String)> },
+    /// One reading per row.
+    PerReading {
+        characteristic_column: String,
+        value_column: String,
+    },
+}
+
 /// A validated source.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Source {
@@ -171,6 +197,13 @@ pub enum Source {
         id: String,
         file: PathBuf,
         speed: f64,
+    },
+    Folder {
+        id: String,
+        path: PathBuf,
+        rows: ReportRows,
+        part_column: Option<String>,
+        settle_ms: u64,
     },
 }
 
@@ -325,9 +358,75 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
                     None => p.push(loc.problem(&at, "kind = \"replay\" needs file")),
                 }
             }
+            "folder" => {
+                let Some(dir) = &s.path else {
+                    p.push(loc.problem(&at, "kind = \"folder\" needs path"));
+                    continue;
+                };
+                let path = resolve(dir);
+                if !path.is_dir() {
+                    p.push(loc.problem(
+                        &format!("{at}.path"),
+                        format!("{} is not a directory", path.display()),
+                    ));
+                }
+                let known = |c: &str| raw.characteristic.iter().any(|k| k.id == c);
+                let rows = match s.rows.as_deref() {
+                    Some("per-part") => match &s.columns {
+                        Some(cols) if !cols.is_empty() => {
+                            for (col, c) in cols {
+                                if !known(c) {
+                                    p.push(loc.problem(
+                                        &format!("{at}.columns.{col}"),
+                                        format!("column \"{col}\" maps to \"{c}\", which is not a configured characteristic"),
+                                    ));
+                                }
+                            }
+                            Some(ReportRows::PerPart {
+                                columns: cols.iter().map(|(a, b)| (a.clone(), b.clone())).collect(),
+                            })
+                        }
+                        _ => {
+                            p.push(loc.problem(&at, "rows = \"per-part\" needs columns = { \"report column\" = \"characteristic\", ... }"));
+                            None
+                        }
+                    },
+                    Some("per-reading") => match (&s.characteristic_column, &s.value_column) {
+                        (Some(c), Some(v)) => Some(ReportRows::PerReading {
+                            characteristic_column: c.clone(),
+                            value_column: v.clone(),
+                        }),
+                        _ => {
+                            p.push(loc.problem(&at, "rows = \"per-reading\" needs characteristic_column and value_column"));
+                            None
+                        }
+                    },
+                    other => {
+                        p.push(loc.problem(
+                            &format!("{at}.rows"),
+                            format!(
+                                "{} is not a report layout; use \"per-part\" or \"per-reading\"",
+                                other.map_or("nothing".to_string(), |o| format!("\"{o}\""))
+                            ),
+                        ));
+                        None
+                    }
+                };
+                if let Some(rows) = rows {
+                    sources.push(Source::Folder {
+                        id: s.id.clone(),
+                        path,
+                        rows,
+                        part_column: s.part_column.clone(),
+                        settle_ms: s.settle_ms.unwrap_or(1000),
+                    });
+                }
+            }
             other => p.push(loc.problem(
                 &format!("{at}.kind"),
-                format!("\"{other}\" is not a source kind this build has; the kinds are: replay"),
+                format!(
+                    "\"{other}\" is not a source kind this build has; the kinds are: replay, folder"
+                ),
             )),
         }
     }

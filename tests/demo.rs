@@ -28,8 +28,9 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
         }
     }
     for s in &mut cfg.sources {
-        let Source::Replay { speed, .. } = s;
-        *speed = 0.0;
+        if let Source::Replay { speed, .. } = s {
+            *speed = 0.0;
+        }
     }
     let s = common::run_daemon(cfg);
     assert_eq!(s.rejected, 2, "the two unreadable gauge outputs");

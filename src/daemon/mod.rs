@@ -10,8 +10,10 @@
 //!   archive handle, so the writer flushes last.
 //!
 //! * [`replay`] — plays a recorded feed file.
+//! * [`folder`] — CSV reports dropped into a watched folder.
 //! * [`notify`] — systemd readiness, watchdog and status notifications.
 
+pub mod folder;
 pub mod notify;
 pub mod replay;
 
@@ -26,7 +28,7 @@ use crate::engine::{Engine, Incoming, Level, Output};
 use crate::format::num;
 
 /// Events from sources, in the order they happened.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug)]
 pub enum SourceEvent {
     Reading(Incoming),
     /// Something arrived that is not a reading.
@@ -40,6 +42,9 @@ pub enum SourceEvent {
     Ended {
         source: String,
     },
+    /// Answered once everything sent before it is durable in the archive (a folder source
+    /// moves a report to done/ only then).
+    Barrier(tokio::sync::oneshot::Sender<()>),
 }
 
 /// The queue from all sources to the engine.
@@ -128,6 +133,25 @@ pub async fn run(
                     shutdown.clone(),
                 ));
             }
+            Source::Folder {
+                id,
+                path,
+                rows,
+                part_column,
+                settle_ms,
+            } => {
+                let already =
+                    already_archived(&cfg.archive_dir, &folder::processing_dir(path)).await;
+                let src = folder::FolderSource {
+                    id: id.clone(),
+                    path: path.clone(),
+                    rows: rows.clone(),
+                    part_column: part_column.clone(),
+                    settle_ms: *settle_ms,
+                    already,
+                };
+                tokio::spawn(folder::run(src, tx.clone(), shutdown.clone()));
+            }
         }
         sources += 1;
     }
@@ -197,6 +221,10 @@ pub async fn run(
                     reject(&mut rejected_logged, &source, &raw, &reason);
                     archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms() }]).await?;
                 }
+                Some(SourceEvent::Barrier(done)) => {
+                    archive.flush().await?;
+                    let _ = done.send(());
+                }
                 Some(SourceEvent::Ended { source }) => {
                     ended += 1;
                     tracing::info!(component = "daemon", "source {source} has ended");
@@ -262,6 +290,51 @@ pub async fn run(
         Err(_) => return Err(DaemonError::LateWriter(deadline)),
     }
     Ok(summary)
+}
+
+/// Source keys the archive already holds for reports left in `processing/` by a crash (their
+/// content hash is the key's prefix). Reads the archive only when there are such files.
+async fn already_archived(
+    archive: &std::path::Path,
+    processing: &std::path::Path,
+) -> std::collections::HashSet<String> {
+    let (archive, processing) = (archive.to_path_buf(), processing.to_path_buf());
+    tokio::task::spawn_blocking(move || {
+        let mut prefixes = Vec::new();
+        for e in std::fs::read_dir(&processing)
+            .into_iter()
+            .flatten()
+            .flatten()
+        {
+            if let Ok(bytes) = std::fs::read(e.path()) {
+                prefixes.push(format!("{}:", crate::archive::segment::sha256_hex(&bytes)));
+            }
+        }
+        let mut keys = std::collections::HashSet::new();
+        if prefixes.is_empty() {
+            return keys;
+        }
+        let Ok(r) = crate::archive::reader::Reader::open(&archive) else {
+            return keys;
+        };
+        let filter = crate::archive::reader::Filter {
+            kinds: vec!["reading-accepted".into()],
+            ..Default::default()
+        };
+        for e in r.iter(&filter).flatten() {
+            if let Record::ReadingAccepted {
+                source_key: Some(k),
+                ..
+            } = e.record
+                && prefixes.iter().any(|p| k.starts_with(p.as_str()))
+            {
+                keys.insert(k);
+            }
+        }
+        keys
+    })
+    .await
+    .unwrap_or_default()
 }
 
 /// Logs a rejected reading: the first ten, then one in a hundred (a noisy gauge must not flood
