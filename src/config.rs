@@ -148,6 +148,28 @@ pub struct RawSource {
     pub value_column: Option<String>,
     /// folder: a file is read once its size has not changed for this long.
     pub settle_ms: Option<u64>,
+    /// serial: the device (/dev/ttyUSB0, /dev/serial/by-id/...).
+    pub port: Option<String>,
+    /// serial: line settings.
+    pub baud: Option<u32>,
+    pub data_bits: Option<u8>,
+    pub parity: Option<String>,
+    pub stop_bits: Option<u8>,
+    pub flow_control: Option<String>,
+    /// serial: the end of each frame ("\r\n" by default).
+    pub terminator: Option<String>,
+    /// serial: a regular expression with a named group `value` (and optionally `unit` and
+    /// `channel`).
+    pub pattern: Option<String>,
+    /// serial: the characteristic every reading belongs to (without channels).
+    pub characteristic: Option<String>,
+    /// serial: channel → characteristic, for multiplexers that prefix a channel.
+    pub channels: Option<std::collections::BTreeMap<String, String>>,
+    /// serial: sent on a timer for gauges that answer when asked.
+    pub request: Option<String>,
+    pub request_interval_ms: Option<u64>,
+    /// serial: the unit the gauge reports in when it does not say ("mm" or "in").
+    pub gauge_unit: Option<String>,
 }
 
 /// How readings form subgroups.
@@ -190,9 +212,31 @@ pub enum ReportRows {
     },
 }
 
+/// A validated serial gauge.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SerialGauge {
+    pub id: String,
+    pub port: String,
+    pub baud: u32,
+    pub data_bits: u8,
+    pub parity: String,
+    pub stop_bits: u8,
+    pub flow_control: String,
+    pub terminator: String,
+    pub pattern: String,
+    pub characteristic: Option<String>,
+    pub channels: Vec<(String, String)>,
+    pub request: Option<String>,
+    pub request_interval_ms: u64,
+    pub gauge_unit: Option<String>,
+    /// Each characteristic's unit, to convert mm/in readings into.
+    pub units: Vec<(String, String)>,
+}
+
 /// A validated source.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Source {
+    Serial(Box<SerialGauge>),
     Replay {
         id: String,
         file: PathBuf,
@@ -422,10 +466,118 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
                     });
                 }
             }
+            "serial" => {
+                let known = |c: &str| raw.characteristic.iter().any(|k| k.id == c);
+                let Some(port) = &s.port else {
+                    p.push(loc.problem(&at, "kind = \"serial\" needs port"));
+                    continue;
+                };
+                let pattern = s.pattern.clone().unwrap_or_else(|| {
+                    r"^\s*(?P<value>[-+]?\d+(?:\.\d+)?)\s*(?P<unit>mm|in)?\s*$".to_string()
+                });
+                match regex::Regex::new(&pattern) {
+                    Ok(re) if re.capture_names().flatten().any(|n| n == "value") => {}
+                    Ok(_) => p.push(loc.problem(
+                        &format!("{at}.pattern"),
+                        "the pattern needs a named group (?P<value>...)",
+                    )),
+                    Err(e) => p.push(loc.problem(
+                        &format!("{at}.pattern"),
+                        format!("not a regular expression: {e}"),
+                    )),
+                }
+                let channels: Vec<(String, String)> =
+                    s.channels.clone().unwrap_or_default().into_iter().collect();
+                match (&s.characteristic, channels.is_empty()) {
+                    (Some(c), true) if !known(c) => p.push(loc.problem(
+                        &format!("{at}.characteristic"),
+                        format!("\"{c}\" is not a configured characteristic"),
+                    )),
+                    (None, true) => p.push(loc.problem(
+                        &at,
+                        "kind = \"serial\" needs characteristic, or channels for a multiplexer",
+                    )),
+                    (Some(_), false) => p.push(loc.problem(
+                        &format!("{at}.characteristic"),
+                        "give characteristic or channels, not both",
+                    )),
+                    _ => {}
+                }
+                for (ch, c) in &channels {
+                    if !known(c) {
+                        p.push(loc.problem(
+                            &format!("{at}.channels.{ch}"),
+                            format!("\"{c}\" is not a configured characteristic"),
+                        ));
+                    }
+                }
+                let parity = s.parity.clone().unwrap_or_else(|| "none".into());
+                if !["none", "even", "odd"].contains(&parity.as_str()) {
+                    p.push(loc.problem(
+                        &format!("{at}.parity"),
+                        format!("\"{parity}\" is not a parity; use none, even or odd"),
+                    ));
+                }
+                let flow = s.flow_control.clone().unwrap_or_else(|| "none".into());
+                if !["none", "software", "hardware"].contains(&flow.as_str()) {
+                    p.push(loc.problem(
+                        &format!("{at}.flow_control"),
+                        format!("\"{flow}\" is not a flow control; use none, software or hardware"),
+                    ));
+                }
+                let data_bits = s.data_bits.unwrap_or(8);
+                if !(5..=8).contains(&data_bits) {
+                    p.push(loc.problem(
+                        &format!("{at}.data_bits"),
+                        format!("{data_bits} data bits; use 5 to 8"),
+                    ));
+                }
+                let stop_bits = s.stop_bits.unwrap_or(1);
+                if !(1..=2).contains(&stop_bits) {
+                    p.push(loc.problem(
+                        &format!("{at}.stop_bits"),
+                        format!("{stop_bits} stop bits; use 1 or 2"),
+                    ));
+                }
+                if let Some(u) = &s.gauge_unit
+                    && u != "mm"
+                    && u != "in"
+                {
+                    p.push(loc.problem(
+                        &format!("{at}.gauge_unit"),
+                        format!("\"{u}\" is not a gauge unit; use mm or in"),
+                    ));
+                }
+                let terminator = s.terminator.clone().unwrap_or_else(|| "\r\n".into());
+                if terminator.is_empty() {
+                    p.push(loc.problem(&format!("{at}.terminator"), "the terminator must not be empty"));
+                }
+                sources.push(Source::Serial(Box::new(SerialGauge {
+                    id: s.id.clone(),
+                    port: port.clone(),
+                    baud: s.baud.unwrap_or(9600),
+                    data_bits,
+                    parity,
+                    stop_bits,
+                    flow_control: flow,
+                    terminator,
+                    pattern,
+                    characteristic: s.characteristic.clone(),
+                    channels,
+                    request: s.request.clone(),
+                    request_interval_ms: s.request_interval_ms.unwrap_or(1000),
+                    gauge_unit: s.gauge_unit.clone(),
+                    units: raw
+                        .characteristic
+                        .iter()
+                        .filter_map(|c| c.unit.clone().map(|u| (c.id.clone(), u)))
+                        .collect(),
+                })));
+            }
             other => p.push(loc.problem(
                 &format!("{at}.kind"),
                 format!(
-                    "\"{other}\" is not a source kind this build has; the kinds are: replay, folder"
+                    "\"{other}\" is not a source kind this build has; the kinds are: replay, folder, serial"
                 ),
             )),
         }

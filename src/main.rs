@@ -841,6 +841,12 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
             linewarden::config::Source::Replay { id, file, speed } => {
                 println!("  source {id}: replay of {} at {speed}x", file.display())
             }
+            linewarden::config::Source::Serial(g) => {
+                println!(
+                    "  source {}: serial gauge on {} at {} baud",
+                    g.id, g.port, g.baud
+                )
+            }
             linewarden::config::Source::Folder { id, path, .. } => {
                 println!("  source {id}: CSV reports dropped into {}", path.display())
             }

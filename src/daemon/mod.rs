@@ -11,11 +11,13 @@
 //!
 //! * [`replay`] — plays a recorded feed file.
 //! * [`folder`] — CSV reports dropped into a watched folder.
+//! * [`serial`] — gauges on serial ports, reopened when unplugged.
 //! * [`notify`] — systemd readiness, watchdog and status notifications.
 
 pub mod folder;
 pub mod notify;
 pub mod replay;
+pub mod serial;
 
 use std::time::Duration;
 
@@ -151,6 +153,9 @@ pub async fn run(
                     already,
                 };
                 tokio::spawn(folder::run(src, tx.clone(), shutdown.clone()));
+            }
+            Source::Serial(g) => {
+                tokio::spawn(serial::run((**g).clone(), tx.clone(), shutdown.clone()));
             }
         }
         sources += 1;
