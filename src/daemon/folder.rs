@@ -1,8 +1,8 @@
 //! The watched-folder source: CSV reports dropped by a measuring machine.
 //!
 //! A file is taken once its size and modification time have not changed for `settle_ms`
-//! (a machine still writing it is left alone; one that renames a finished file into place is
-//! taken at the next look). It is first moved into `processing/`, then read; its readings go to
+//! (a machine still writing it is left alone; only files ending in .csv are looked at, so a
+//! machine that writes under another name and renames is never read half-written). It is first moved into `processing/`, then read; its readings go to
 //! the engine, and a barrier makes the archive durable before the file is moved to `done/`. A
 //! file that cannot be read as a report goes to `rejected/` with a `.error` file saying why.
 //! Files found in `processing/` at start were cut short by a crash: they are read again, and
