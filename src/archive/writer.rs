@@ -881,13 +881,7 @@ async fn run(
                     }
                 }
                 Err(e @ ArchiveError::DiskFull { .. }) => {
-                    tracing::error!(component = "archive", "{e}");
-                    publish(
-                        &w,
-                        WriterState::DiskFull {
-                            message: e.to_string(),
-                        },
-                    );
+                    disk_full(&w, &e, &publish);
                     stalled.push_front((record, reply, last));
                     tokio::time::sleep(retry).await;
                     break;
@@ -918,13 +912,7 @@ async fn run(
                 }
                 Ok(None) => deadline = None,
                 Err(e @ ArchiveError::DiskFull { .. }) => {
-                    tracing::error!(component = "archive", "{e}");
-                    publish(
-                        &w,
-                        WriterState::DiskFull {
-                            message: e.to_string(),
-                        },
-                    );
+                    disk_full(&w, &e, &publish);
                     tokio::time::sleep(retry).await;
                     continue;
                 }
@@ -1017,12 +1005,7 @@ fn flush_now(
             }
             Err(e @ ArchiveError::DiskFull { .. }) => {
                 stalled.push_front((record, r, last));
-                publish(
-                    w,
-                    WriterState::DiskFull {
-                        message: e.to_string(),
-                    },
-                );
+                disk_full(w, &e, publish);
                 let _ = reply.send(Err(e.to_string()));
                 return Ok(());
             }
@@ -1039,12 +1022,7 @@ fn flush_now(
             Ok(())
         }
         Err(e @ ArchiveError::DiskFull { .. }) => {
-            publish(
-                w,
-                WriterState::DiskFull {
-                    message: e.to_string(),
-                },
-            );
+            disk_full(w, &e, publish);
             let _ = reply.send(Err(e.to_string()));
             Ok(())
         }
@@ -1053,6 +1031,17 @@ fn flush_now(
             Err(e)
         }
     }
+}
+
+/// Reports a full disk: logged, and published so the daemon can raise it.
+fn disk_full(w: &Writer, e: &ArchiveError, publish: &impl Fn(&Writer, WriterState)) {
+    tracing::error!(component = "archive", "{e}");
+    publish(
+        w,
+        WriterState::DiskFull {
+            message: e.to_string(),
+        },
+    );
 }
 
 fn finish_error(
