@@ -170,6 +170,42 @@ pub struct RawSource {
     pub request_interval_ms: Option<u64>,
     /// serial: the unit the gauge reports in when it does not say ("mm" or "in").
     pub gauge_unit: Option<String>,
+    /// mqtt: the broker, `mqtt://host[:port]` or `mqtts://host[:port]` (TLS).
+    pub broker: Option<String>,
+    /// mqtt: the client id; kept across restarts so the broker keeps the session (default
+    /// `linewarden-<source id>`).
+    pub client_id: Option<String>,
+    /// mqtt: topic filters; `{characteristic}` stands for one level that names the
+    /// characteristic (`cell4/{characteristic}/measure`); `+` and `#` as in MQTT.
+    pub topics: Option<Vec<String>>,
+    /// mqtt: 0 or 1 (default 1: acknowledged only once archived durably).
+    pub qos: Option<u8>,
+    /// mqtt: "plain" (the payload is the number) or "json".
+    pub payload: Option<String>,
+    /// mqtt, json: JSON pointers (RFC 6901) to the value, the time it was measured, the
+    /// characteristic and the part id.
+    pub value_pointer: Option<String>,
+    pub time_pointer: Option<String>,
+    pub characteristic_pointer: Option<String>,
+    pub part_pointer: Option<String>,
+    /// mqtt: credentials. The password is read from a file or an environment variable, never
+    /// written in the config.
+    pub username: Option<String>,
+    pub password_file: Option<String>,
+    pub password_env: Option<String>,
+    /// mqtt, TLS: the CA certificate (PEM) to trust instead of the system's, and a client
+    /// certificate and key (PEM) when the broker asks for one.
+    pub ca_file: Option<String>,
+    pub client_cert_file: Option<String>,
+    pub client_key_file: Option<String>,
+    /// mqtt: keep-alive in seconds (default 30).
+    pub keep_alive_s: Option<u64>,
+    /// mqtt: how a redelivered message is recognised: "packet-id" (the DUP flag and the same
+    /// packet id, as MQTT 3.1.1 asks of a broker) or "content" (for brokers that resume a log
+    /// with new packet ids: the same topic and payload as one of the last `redelivery_window`
+    /// messages archived, while the backlog arrives after connecting).
+    pub duplicates: Option<String>,
+    pub redelivery_window: Option<usize>,
 }
 
 /// How readings form subgroups.
@@ -233,10 +269,90 @@ pub struct SerialGauge {
     pub units: Vec<(String, String)>,
 }
 
+/// A secret (a password): kept out of `Debug` output and so out of every log line.
+#[derive(Clone, PartialEq, Eq)]
+pub struct Secret(pub String);
+
+impl std::fmt::Debug for Secret {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Secret(…)")
+    }
+}
+
+/// How to reach an MQTT broker.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Broker {
+    pub host: String,
+    pub port: u16,
+    pub tls: bool,
+    pub client_id: String,
+    pub username: Option<String>,
+    pub password: Option<Secret>,
+    pub ca_file: Option<PathBuf>,
+    pub client_cert_file: Option<PathBuf>,
+    pub client_key_file: Option<PathBuf>,
+    pub keep_alive_s: u64,
+}
+
+impl Broker {
+    /// `mqtt://host:port` (TLS as `mqtts://`), for log lines; never the credentials.
+    pub fn url(&self) -> String {
+        let scheme = if self.tls { "mqtts" } else { "mqtt" };
+        format!("{scheme}://{}:{}", self.host, self.port)
+    }
+}
+
+/// One subscription of an MQTT source.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TopicFilter {
+    /// As written, with `{characteristic}`.
+    pub template: String,
+    /// What is subscribed to (`{characteristic}` replaced by `+`).
+    pub filter: String,
+    /// The level (0-based) that names the characteristic, if any.
+    pub characteristic_level: Option<usize>,
+}
+
+/// How an MQTT payload carries a reading.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Payload {
+    Plain,
+    Json {
+        value: String,
+        time: Option<String>,
+        characteristic: Option<String>,
+        part: Option<String>,
+    },
+}
+
+/// A validated MQTT source.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MqttSource {
+    pub id: String,
+    pub broker: Broker,
+    pub topics: Vec<TopicFilter>,
+    pub qos: u8,
+    pub payload: Payload,
+    /// The characteristic when neither the topic nor the payload names it.
+    pub characteristic: Option<String>,
+    pub duplicates: Duplicates,
+}
+
+/// How an MQTT source recognises a redelivered message.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Duplicates {
+    /// DUP set and the packet id of the last message archived under it (MQTT 3.1.1 §4.4).
+    PacketId,
+    /// Same topic and payload as one of the last `window` archived, in the backlog that arrives
+    /// first after connecting. Only for payloads that carry a time or a part id.
+    Content { window: usize },
+}
+
 /// A validated source.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Source {
     Serial(Box<SerialGauge>),
+    Mqtt(Box<MqttSource>),
     Replay {
         id: String,
         file: PathBuf,
@@ -574,10 +690,15 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
                         .collect(),
                 })));
             }
+            "mqtt" => {
+                if let Some(m) = build_mqtt(raw, s, &at, &resolve, loc, p) {
+                    sources.push(Source::Mqtt(Box::new(m)));
+                }
+            }
             other => p.push(loc.problem(
                 &format!("{at}.kind"),
                 format!(
-                    "\"{other}\" is not a source kind this build has; the kinds are: replay, folder, serial"
+                    "\"{other}\" is not a source kind this build has; the kinds are: replay, folder, serial, mqtt"
                 ),
             )),
         }
@@ -590,6 +711,355 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
         characteristics: chars,
         sources,
     }
+}
+
+/// Reads a broker's connection settings (shared by the MQTT source and the MQTT output).
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn build_broker(
+    url: Option<&str>,
+    client_id: Option<&str>,
+    default_client_id: &str,
+    creds: (Option<&String>, Option<&String>, Option<&String>),
+    tls_files: (Option<&String>, Option<&String>, Option<&String>),
+    keep_alive_s: Option<u64>,
+    at: &str,
+    resolve: &impl Fn(&str) -> PathBuf,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<Broker> {
+    let Some(url) = url else {
+        p.push(loc.problem(
+            at,
+            "needs broker = \"mqtt://host:port\" (or mqtts:// for TLS)",
+        ));
+        return None;
+    };
+    let (tls, rest) = if let Some(r) = url.strip_prefix("mqtts://") {
+        (true, r)
+    } else if let Some(r) = url.strip_prefix("mqtt://") {
+        (false, r)
+    } else {
+        p.push(loc.problem(
+            &format!("{at}.broker"),
+            format!(
+                "\"{url}\" is not a broker address; write mqtt://host:port or mqtts://host:port"
+            ),
+        ));
+        return None;
+    };
+    let rest = rest.trim_end_matches('/');
+    let (host, port) = match rest.rsplit_once(':') {
+        Some((h, port)) => match port.parse::<u16>() {
+            Ok(n) if n > 0 => (h.to_string(), n),
+            _ => {
+                p.push(loc.problem(
+                    &format!("{at}.broker"),
+                    format!("\"{port}\" in \"{url}\" is not a port number"),
+                ));
+                return None;
+            }
+        },
+        None => (rest.to_string(), if tls { 8883 } else { 1883 }),
+    };
+    if host.is_empty() || host.contains('/') || host.contains('@') {
+        p.push(loc.problem(
+            &format!("{at}.broker"),
+            format!("\"{url}\" does not name a host (credentials go in username and password_file, not the address)"),
+        ));
+        return None;
+    }
+    let client_id = client_id.unwrap_or(default_client_id).to_string();
+    if client_id.is_empty() || client_id.len() > 64 {
+        p.push(loc.problem(
+            &format!("{at}.client_id"),
+            "the client id must be 1 to 64 characters",
+        ));
+    }
+    let (username, password_file, password_env) = creds;
+    let password = match (password_file, password_env) {
+        (Some(_), Some(_)) => {
+            p.push(loc.problem(
+                &format!("{at}.password_env"),
+                "give password_file or password_env, not both",
+            ));
+            None
+        }
+        (Some(f), None) => {
+            let f = resolve(f);
+            match std::fs::read_to_string(&f) {
+                Ok(t) => Some(Secret(t.trim_end_matches(['\r', '\n']).to_string())),
+                Err(e) => {
+                    p.push(loc.problem(
+                        &format!("{at}.password_file"),
+                        format!("cannot read {}: {e}", f.display()),
+                    ));
+                    None
+                }
+            }
+        }
+        (None, Some(var)) => match std::env::var(var) {
+            Ok(v) => Some(Secret(v)),
+            Err(_) => {
+                p.push(loc.problem(
+                    &format!("{at}.password_env"),
+                    format!("the environment variable {var} is not set"),
+                ));
+                None
+            }
+        },
+        (None, None) => None,
+    };
+    if password.is_some() && username.is_none() {
+        p.push(loc.problem(at, "a password needs a username"));
+    }
+    let (ca, cert, key) = tls_files;
+    let mut file = |name: &str, v: Option<&String>| {
+        v.map(|f| {
+            let f = resolve(f);
+            if !tls {
+                p.push(loc.problem(
+                    &format!("{at}.{name}"),
+                    "certificates are for TLS; the broker address needs mqtts://",
+                ));
+            } else if !f.is_file() {
+                p.push(loc.problem(
+                    &format!("{at}.{name}"),
+                    format!("{} does not exist or is not a file", f.display()),
+                ));
+            }
+            f
+        })
+    };
+    let ca_file = file("ca_file", ca);
+    let client_cert_file = file("client_cert_file", cert);
+    let client_key_file = file("client_key_file", key);
+    if client_cert_file.is_some() != client_key_file.is_some() {
+        p.push(loc.problem(at, "client_cert_file and client_key_file go together"));
+    }
+    let keep_alive_s = keep_alive_s.unwrap_or(30);
+    if !(5..=3600).contains(&keep_alive_s) {
+        p.push(loc.problem(
+            &format!("{at}.keep_alive_s"),
+            format!("{keep_alive_s} s is out of range; use 5 to 3600"),
+        ));
+    }
+    Some(Broker {
+        host,
+        port,
+        tls,
+        client_id,
+        username: username.cloned(),
+        password,
+        ca_file,
+        client_cert_file,
+        client_key_file,
+        keep_alive_s,
+    })
+}
+
+/// Checks a topic filter: levels split by '/', `+` a whole level, `#` only as the last level.
+fn check_filter(filter: &str) -> Result<(), String> {
+    if filter.is_empty() {
+        return Err("a topic filter must not be empty".into());
+    }
+    let levels: Vec<&str> = filter.split('/').collect();
+    for (i, l) in levels.iter().enumerate() {
+        if (l.contains('+') && *l != "+") || (l.contains('#') && *l != "#") {
+            return Err(format!("\"{l}\": + and # must stand alone in their level"));
+        }
+        if *l == "#" && i + 1 != levels.len() {
+            return Err("# must be the last level".into());
+        }
+    }
+    Ok(())
+}
+
+fn build_mqtt(
+    raw: &RawConfig,
+    s: &RawSource,
+    at: &str,
+    resolve: &impl Fn(&str) -> PathBuf,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<MqttSource> {
+    let known = |c: &str| raw.characteristic.iter().any(|k| k.id == c);
+    let broker = build_broker(
+        s.broker.as_deref(),
+        s.client_id.as_deref(),
+        &format!("linewarden-{}", s.id),
+        (
+            s.username.as_ref(),
+            s.password_file.as_ref(),
+            s.password_env.as_ref(),
+        ),
+        (
+            s.ca_file.as_ref(),
+            s.client_cert_file.as_ref(),
+            s.client_key_file.as_ref(),
+        ),
+        s.keep_alive_s,
+        at,
+        resolve,
+        loc,
+        p,
+    );
+    let mut topics = Vec::new();
+    match &s.topics {
+        Some(list) if !list.is_empty() => {
+            for (i, t) in list.iter().enumerate() {
+                let levels: Vec<&str> = t.split('/').collect();
+                let marks: Vec<usize> = levels
+                    .iter()
+                    .enumerate()
+                    .filter(|(_, l)| **l == "{characteristic}")
+                    .map(|(i, _)| i)
+                    .collect();
+                let filter = levels
+                    .iter()
+                    .map(|l| if *l == "{characteristic}" { "+" } else { l })
+                    .collect::<Vec<_>>()
+                    .join("/");
+                if marks.len() > 1 {
+                    p.push(loc.problem(
+                        &format!("{at}.topics[{i}]"),
+                        format!("\"{t}\" names {{characteristic}} more than once"),
+                    ));
+                } else if t.contains("{characteristic}") && marks.is_empty() {
+                    p.push(loc.problem(
+                        &format!("{at}.topics[{i}]"),
+                        format!("\"{t}\": {{characteristic}} must be a whole level"),
+                    ));
+                } else if let Err(e) = check_filter(&filter) {
+                    p.push(loc.problem(&format!("{at}.topics[{i}]"), format!("\"{t}\": {e}")));
+                } else {
+                    topics.push(TopicFilter {
+                        template: t.clone(),
+                        filter,
+                        characteristic_level: marks.first().copied(),
+                    });
+                }
+            }
+        }
+        _ => p.push(loc.problem(at, "kind = \"mqtt\" needs topics = [\"...\"]")),
+    }
+    let qos = s.qos.unwrap_or(1);
+    if qos > 1 {
+        p.push(loc.problem(
+            &format!("{at}.qos"),
+            format!("QoS {qos}: use 1 (acknowledged once archived) or 0 (no redelivery)"),
+        ));
+    }
+    let json_keys = [
+        ("value_pointer", &s.value_pointer),
+        ("time_pointer", &s.time_pointer),
+        ("characteristic_pointer", &s.characteristic_pointer),
+        ("part_pointer", &s.part_pointer),
+    ];
+    for (name, v) in json_keys {
+        if let Some(v) = v
+            && !v.is_empty()
+            && !v.starts_with('/')
+        {
+            p.push(loc.problem(
+                &format!("{at}.{name}"),
+                format!("\"{v}\" is not a JSON pointer; pointers start with / (\"/value\")"),
+            ));
+        }
+    }
+    let payload = match s.payload.as_deref().unwrap_or("plain") {
+        "plain" => {
+            for (name, v) in json_keys {
+                if v.is_some() {
+                    p.push(loc.problem(
+                        &format!("{at}.{name}"),
+                        "pointers are for payload = \"json\"",
+                    ));
+                }
+            }
+            Payload::Plain
+        }
+        "json" => Payload::Json {
+            value: s.value_pointer.clone().unwrap_or_else(|| "/value".into()),
+            time: s.time_pointer.clone(),
+            characteristic: s.characteristic_pointer.clone(),
+            part: s.part_pointer.clone(),
+        },
+        other => {
+            p.push(loc.problem(
+                &format!("{at}.payload"),
+                format!("\"{other}\" is not a payload format; use \"plain\" or \"json\""),
+            ));
+            Payload::Plain
+        }
+    };
+    if let Some(c) = &s.characteristic
+        && !known(c)
+    {
+        p.push(loc.problem(
+            &format!("{at}.characteristic"),
+            format!("\"{c}\" is not a configured characteristic"),
+        ));
+    }
+    let from_payload = matches!(
+        &payload,
+        Payload::Json {
+            characteristic: Some(_),
+            ..
+        }
+    );
+    if s.characteristic.is_none()
+        && !from_payload
+        && topics.iter().any(|t| t.characteristic_level.is_none())
+    {
+        p.push(loc.problem(
+            at,
+            "say which characteristic a message is for: {characteristic} in every topic, characteristic_pointer, or characteristic",
+        ));
+    }
+    let window = s.redelivery_window.unwrap_or(1000);
+    if !(1..=100_000).contains(&window) {
+        p.push(loc.problem(
+            &format!("{at}.redelivery_window"),
+            format!("{window} is out of range; use 1 to 100000"),
+        ));
+    }
+    let duplicates = match s.duplicates.as_deref().unwrap_or("packet-id") {
+        "packet-id" => Duplicates::PacketId,
+        "content" => {
+            if !matches!(
+                &payload,
+                Payload::Json { time: Some(_), .. } | Payload::Json { part: Some(_), .. }
+            ) {
+                p.push(loc.problem(
+                    &format!("{at}.duplicates"),
+                    "duplicates = \"content\" needs payloads that differ from one reading to the next: payload = \"json\" with time_pointer or part_pointer",
+                ));
+            }
+            Duplicates::Content { window }
+        }
+        other => {
+            p.push(loc.problem(
+                &format!("{at}.duplicates"),
+                format!("\"{other}\" is not a way to recognise redeliveries; use \"packet-id\" or \"content\""),
+            ));
+            Duplicates::PacketId
+        }
+    };
+    if s.redelivery_window.is_some() && duplicates == Duplicates::PacketId {
+        p.push(loc.problem(
+            &format!("{at}.redelivery_window"),
+            "redelivery_window is for duplicates = \"content\"",
+        ));
+    }
+    Some(MqttSource {
+        id: s.id.clone(),
+        broker: broker?,
+        topics,
+        qos,
+        payload,
+        characteristic: s.characteristic.clone(),
+        duplicates,
+    })
 }
 
 fn build_characteristic(

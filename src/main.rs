@@ -850,6 +850,18 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
             linewarden::config::Source::Folder { id, path, .. } => {
                 println!("  source {id}: CSV reports dropped into {}", path.display())
             }
+            linewarden::config::Source::Mqtt(m) => println!(
+                "  source {}: MQTT {} as {}, QoS {}, topics {}",
+                m.id,
+                m.broker.url(),
+                m.broker.client_id,
+                m.qos,
+                m.topics
+                    .iter()
+                    .map(|t| t.template.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
         }
     }
     Ok(())

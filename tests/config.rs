@@ -92,3 +92,84 @@ fn unknown_keys_are_rejected_with_their_position() {
         "{err}"
     );
 }
+
+#[test]
+fn a_bad_mqtt_source_reports_every_problem_and_never_the_password() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("pw"), "s3cret-word\n").unwrap();
+    let text = r#"[daemon]
+archive_dir = "archive"
+
+[[characteristic]]
+id = "bore"
+subgroup = { size = 1 }
+
+[[source]]
+id = "a"
+kind = "mqtt"
+broker = "tcp://plant-broker:1883"
+topics = ["cell4/#/x"]
+
+[[source]]
+id = "b"
+kind = "mqtt"
+broker = "mqtt://plant-broker:70000"
+topics = ["cell4/{characteristic}/measure"]
+qos = 2
+payload = "plain"
+value_pointer = "value"
+
+[[source]]
+id = "c"
+kind = "mqtt"
+broker = "mqtt://plant-broker"
+topics = ["cell4/bore"]
+username = "lw"
+password_file = "pw"
+password_env = "LINEWARDEN_TEST_UNSET_VARIABLE"
+ca_file = "ca.pem"
+duplicates = "content"
+
+[[source]]
+id = "d"
+kind = "mqtt"
+broker = "mqtts://plant-broker"
+topics = ["cell4/bore"]
+characteristic = "bore"
+username = "lw"
+password_file = "pw"
+"#;
+    let p = dir.path().join("bad.toml");
+    std::fs::write(&p, text).unwrap();
+    let e = config::load(&p).unwrap_err().to_string();
+    for want in [
+        "bad.toml:11:10: source[0].broker: \"tcp://plant-broker:1883\" is not a broker address",
+        "bad.toml:12:11: source[0].topics[0]: \"cell4/#/x\": # must be the last level",
+        "bad.toml:17:10: source[1].broker: \"70000\" in \"mqtt://plant-broker:70000\" is not a port number",
+        "bad.toml:19:7: source[1].qos: QoS 2",
+        "bad.toml:21:17: source[1].value_pointer: \"value\" is not a JSON pointer",
+        "source[1].value_pointer: pointers are for payload = \"json\"",
+        "source[2].password_env: give password_file or password_env, not both",
+        "source[2].ca_file: certificates are for TLS",
+        "source[2].duplicates: duplicates = \"content\" needs",
+        "source[2]: say which characteristic a message is for",
+    ] {
+        assert!(e.contains(want), "missing {want:?} in:\n{e}");
+    }
+    assert!(!e.contains("s3cret"), "the password leaked:\n{e}");
+    // The good source parses, and its password stays out of Debug output (and so out of logs).
+    let good = text.split("[[source]]").last().unwrap();
+    let ok = format!(
+        "[daemon]\narchive_dir = \"archive\"\n[[characteristic]]\nid = \"bore\"\nsubgroup = {{ size = 1 }}\n[[source]]{good}"
+    );
+    std::fs::write(&p, ok).unwrap();
+    let cfg = config::load(&p).unwrap();
+    let shown = format!("{cfg:?}");
+    assert!(shown.contains("plant-broker"), "{shown}");
+    assert!(!shown.contains("s3cret"), "the password leaked: {shown}");
+    let config::Source::Mqtt(m) = &cfg.sources[0] else {
+        panic!("not an MQTT source")
+    };
+    assert_eq!((m.broker.port, m.broker.tls), (8883, true));
+    assert_eq!(m.broker.password.as_ref().unwrap().0, "s3cret-word");
+}

@@ -42,8 +42,6 @@ pub async fn run(
     tx: mpsc::Sender<SourceEvent>,
     mut shutdown: watch::Receiver<bool>,
 ) {
-    let span = tracing::info_span!("source", component = "folder", id = %src.id);
-    let _enter = span.enter();
     let name = format!("folder:{}", src.id);
     for sub in ["processing", "done", "rejected"] {
         if let Err(e) = std::fs::create_dir_all(src.path.join(sub)) {

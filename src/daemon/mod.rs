@@ -15,6 +15,7 @@
 //! * [`notify`] — systemd readiness, watchdog and status notifications.
 
 pub mod folder;
+pub mod mqtt;
 pub mod notify;
 pub mod replay;
 pub mod serial;
@@ -22,6 +23,7 @@ pub mod serial;
 use std::time::Duration;
 
 use tokio::sync::{mpsc, watch};
+use tracing::Instrument;
 
 use crate::archive::writer::{self, ArchiveHandle, Writer, WriterConfig};
 use crate::archive::{ArchiveError, Record};
@@ -58,6 +60,11 @@ pub fn now_ms() -> i64 {
         .duration_since(std::time::UNIX_EPOCH)
         .map(|d| d.as_millis() as i64)
         .unwrap_or(0)
+}
+
+/// The span every log line of a source task carries: its kind and id.
+fn source_span(component: &'static str, id: &str) -> tracing::Span {
+    tracing::info_span!("source", component, id = %id)
 }
 
 /// Why the daemon stopped with an error.
@@ -127,13 +134,16 @@ pub async fn run(
     for s in &cfg.sources {
         match s {
             Source::Replay { id, file, speed } => {
-                tokio::spawn(replay::run(
-                    id.clone(),
-                    file.clone(),
-                    *speed,
-                    tx.clone(),
-                    shutdown.clone(),
-                ));
+                tokio::spawn(
+                    replay::run(
+                        id.clone(),
+                        file.clone(),
+                        *speed,
+                        tx.clone(),
+                        shutdown.clone(),
+                    )
+                    .instrument(source_span("replay", id)),
+                );
             }
             Source::Folder {
                 id,
@@ -152,10 +162,26 @@ pub async fn run(
                     settle_ms: *settle_ms,
                     already,
                 };
-                tokio::spawn(folder::run(src, tx.clone(), shutdown.clone()));
+                tokio::spawn(
+                    folder::run(src, tx.clone(), shutdown.clone())
+                        .instrument(source_span("folder", id)),
+                );
             }
             Source::Serial(g) => {
-                tokio::spawn(serial::run((**g).clone(), tx.clone(), shutdown.clone()));
+                tokio::spawn(
+                    serial::run((**g).clone(), tx.clone(), shutdown.clone())
+                        .instrument(source_span("serial", &g.id)),
+                );
+            }
+            Source::Mqtt(m) => {
+                let (dir, name) = (cfg.archive_dir.clone(), format!("mqtt:{}", m.id));
+                let known = tokio::task::spawn_blocking(move || mqtt::recent_keys(&dir, &name))
+                    .await
+                    .unwrap_or_default();
+                tokio::spawn(
+                    mqtt::run((**m).clone(), known, tx.clone(), shutdown.clone())
+                        .instrument(source_span("mqtt", &m.id)),
+                );
             }
         }
         sources += 1;

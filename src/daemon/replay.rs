@@ -33,8 +33,6 @@ pub async fn run(
     tx: mpsc::Sender<SourceEvent>,
     mut shutdown: watch::Receiver<bool>,
 ) {
-    let span = tracing::info_span!("source", component = "replay", id = %id);
-    let _enter = span.enter();
     let name = format!("replay:{id}");
     let f = match tokio::fs::File::open(&file).await {
         Ok(f) => f,

@@ -33,8 +33,6 @@ pub async fn run(
     tx: mpsc::Sender<SourceEvent>,
     mut shutdown: watch::Receiver<bool>,
 ) {
-    let span = tracing::info_span!("source", component = "serial", id = %g.id);
-    let _enter = span.enter();
     let name = format!("serial:{}", g.id);
     let re = match regex::Regex::new(&g.pattern) {
         Ok(re) => re,

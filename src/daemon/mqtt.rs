@@ -1,0 +1,603 @@
+//! The MQTT source: sensors and gateways that publish readings to a broker (rumqttc).
+//!
+//! QoS 1 messages are acknowledged by hand, and only once everything they carried is durable
+//! in the archive: a Barrier is sent down the engine queue behind the readings, and the acks go
+//! out when it is answered. The session is persistent (a fixed client id, clean session off), so
+//! after a kill -9 the broker redelivers what was not acknowledged. A redelivery (DUP set) whose
+//! packet id, topic and payload match the last message archived under that packet id is
+//! recognised as a duplicate: acknowledged again, not archived twice. Brokers that instead
+//! resume a log with new packet ids (rumqttd does) are served by `duplicates = "content"`: the
+//! backlog that arrives first after connecting is matched by topic and payload against the last
+//! messages archived, which is sound when each payload carries a time or a part id.
+//!
+//! Payloads are a plain number, or JSON with pointers to the value, the time it was measured,
+//! the characteristic and the part id. A topic level written `{characteristic}` in the
+//! subscription names the characteristic.
+
+use std::collections::{HashMap, VecDeque};
+use std::path::Path;
+use std::time::Duration;
+
+use rumqttc::{AsyncClient, Event, EventLoop, MqttOptions, Packet, Publish, QoS, Transport};
+use tokio::sync::{mpsc, oneshot, watch};
+
+use super::{SourceEvent, now_ms};
+use crate::config::{Broker, Duplicates, MqttSource, Payload, TopicFilter};
+use crate::engine::Incoming;
+
+/// The biggest payload accepted (a reading is a few dozen bytes).
+pub const MAX_PAYLOAD: usize = 64 * 1024;
+
+/// Connection options for `b`: persistent session, manual acks, TLS when asked.
+pub fn options(b: &Broker, manual_acks: bool) -> Result<MqttOptions, String> {
+    let mut o = MqttOptions::new(b.client_id.clone(), b.host.clone(), b.port);
+    o.set_keep_alive(Duration::from_secs(b.keep_alive_s));
+    o.set_clean_session(false);
+    o.set_manual_acks(manual_acks);
+    o.set_max_packet_size(MAX_PAYLOAD + 1024, MAX_PAYLOAD + 1024);
+    if let (Some(u), Some(p)) = (&b.username, &b.password) {
+        o.set_credentials(u.clone(), p.0.clone());
+    } else if let Some(u) = &b.username {
+        o.set_credentials(u.clone(), String::new());
+    }
+    if b.tls {
+        let read =
+            |p: &Path| std::fs::read(p).map_err(|e| format!("cannot read {}: {e}", p.display()));
+        let transport = match &b.ca_file {
+            Some(ca) => {
+                let client_auth = match (&b.client_cert_file, &b.client_key_file) {
+                    (Some(c), Some(k)) => Some((read(c)?, read(k)?)),
+                    _ => None,
+                };
+                Transport::Tls(rumqttc::TlsConfiguration::Simple {
+                    ca: read(ca)?,
+                    alpn: None,
+                    client_auth,
+                })
+            }
+            None => Transport::tls_with_default_config(),
+        };
+        o.set_transport(transport);
+    }
+    Ok(o)
+}
+
+/// True when `topic` matches the MQTT filter `filter`.
+pub fn matches(filter: &str, topic: &str) -> bool {
+    let mut f = filter.split('/');
+    let mut t = topic.split('/');
+    loop {
+        match (f.next(), t.next()) {
+            (Some("#"), _) => return !topic.starts_with('$') || filter.starts_with('$'),
+            (Some("+"), Some(_)) => {}
+            (Some(a), Some(b)) if a == b => {}
+            (None, None) => return !topic.starts_with('$') || filter.starts_with('$'),
+            _ => return false,
+        }
+    }
+}
+
+/// What a message carried.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Parsed {
+    pub characteristic: String,
+    pub value: f64,
+    pub time_ms: Option<i64>,
+    pub part: Option<String>,
+}
+
+/// Why a message is not a reading, and the characteristic when that much was known.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Unparsed {
+    pub characteristic: Option<String>,
+    pub reason: String,
+}
+
+/// Takes the reading out of a message on `topic`.
+pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Unparsed> {
+    let from_topic = src.topics.iter().find_map(|t: &TopicFilter| {
+        let level = t.characteristic_level?;
+        matches(&t.filter, topic).then(|| topic.split('/').nth(level).map(str::to_string))?
+    });
+    let fail = |c: Option<String>, reason: String| Unparsed {
+        characteristic: c,
+        reason,
+    };
+    let text = std::str::from_utf8(payload)
+        .map_err(|_| fail(from_topic.clone(), "the payload is not UTF-8 text".into()))?;
+    match &src.payload {
+        Payload::Plain => {
+            let characteristic = from_topic
+                .or_else(|| src.characteristic.clone())
+                .ok_or_else(|| {
+                    fail(
+                        None,
+                        "neither the topic nor the config names the characteristic".into(),
+                    )
+                })?;
+            let value = text.trim().parse::<f64>().map_err(|_| {
+                fail(
+                    Some(characteristic.clone()),
+                    format!("{:?} is not a number", clip(text)),
+                )
+            })?;
+            Ok(Parsed {
+                characteristic,
+                value,
+                time_ms: None,
+                part: None,
+            })
+        }
+        Payload::Json {
+            value,
+            time,
+            characteristic,
+            part,
+        } => {
+            let doc: serde_json::Value = serde_json::from_str(text).map_err(|e| {
+                fail(
+                    from_topic.clone(),
+                    format!("not JSON ({e}): {:?}", clip(text)),
+                )
+            })?;
+            let named = match characteristic {
+                Some(ptr) => match doc.pointer(ptr) {
+                    Some(serde_json::Value::String(s)) => Some(s.clone()),
+                    Some(other) => {
+                        return Err(fail(
+                            from_topic,
+                            format!("{ptr} is {other}, not a characteristic id"),
+                        ));
+                    }
+                    None => None,
+                },
+                None => None,
+            };
+            let characteristic = from_topic
+                .or(named)
+                .or_else(|| src.characteristic.clone())
+                .ok_or_else(|| {
+                    fail(
+                        None,
+                        format!(
+                            "no characteristic: the topic does not name one and {} is missing",
+                            characteristic.as_deref().unwrap_or("the payload")
+                        ),
+                    )
+                })?;
+            let c = Some(characteristic.clone());
+            let v = match doc.pointer(value) {
+                Some(serde_json::Value::Number(n)) => n.as_f64(),
+                Some(serde_json::Value::String(s)) => s.trim().parse::<f64>().ok(),
+                _ => None,
+            }
+            .ok_or_else(|| {
+                fail(
+                    c.clone(),
+                    match doc.pointer(value) {
+                        None => format!("no value at {value} in {:?}", clip(text)),
+                        Some(v) => format!("{value} is {v}, not a number"),
+                    },
+                )
+            })?;
+            let time_ms = match time {
+                None => None,
+                Some(ptr) => match doc.pointer(ptr) {
+                    None | Some(serde_json::Value::Null) => None,
+                    Some(serde_json::Value::Number(n)) => match n.as_f64() {
+                        Some(ms) if (0.0..1e15).contains(&ms) => Some(ms as i64),
+                        _ => {
+                            return Err(fail(
+                                c,
+                                format!("{ptr} = {n} is not a time in milliseconds since 1970"),
+                            ));
+                        }
+                    },
+                    Some(serde_json::Value::String(s)) => match humantime::parse_rfc3339_weak(s) {
+                        Ok(t) => t
+                            .duration_since(std::time::UNIX_EPOCH)
+                            .ok()
+                            .map(|d| d.as_millis() as i64),
+                        Err(_) => {
+                            return Err(fail(c, format!("{ptr} = {s:?} is not an RFC 3339 time")));
+                        }
+                    },
+                    Some(other) => return Err(fail(c, format!("{ptr} is {other}, not a time"))),
+                },
+            };
+            let part = match part.as_ref().and_then(|ptr| doc.pointer(ptr)) {
+                Some(serde_json::Value::String(s)) => Some(s.clone()),
+                Some(serde_json::Value::Number(n)) => Some(n.to_string()),
+                _ => None,
+            };
+            Ok(Parsed {
+                characteristic,
+                value: v,
+                time_ms,
+                part,
+            })
+        }
+    }
+}
+
+fn clip(s: &str) -> String {
+    if s.chars().count() > 80 {
+        format!("{}…", s.chars().take(80).collect::<String>())
+    } else {
+        s.to_string()
+    }
+}
+
+/// The key a QoS 1 message is archived under: its packet id and a hash of topic and payload.
+pub fn message_key(pkid: u16, topic: &str, payload: &[u8]) -> String {
+    use sha2::Digest;
+    let mut h = sha2::Sha256::new();
+    h.update(topic.as_bytes());
+    h.update([0u8]);
+    h.update(payload);
+    let d = h.finalize();
+    let hex: String = d[..8].iter().map(|b| format!("{b:02x}")).collect();
+    format!("mqtt:{pkid}:{hex}")
+}
+
+/// The packet id in a key made by [`message_key`].
+fn key_pkid(key: &str) -> Option<u16> {
+    key.strip_prefix("mqtt:")?.split(':').next()?.parse().ok()
+}
+
+/// The content hash in a key made by [`message_key`].
+fn key_content(key: &str) -> &str {
+    key.rsplit(':').next().unwrap_or(key)
+}
+
+/// The keys source `name` archived, oldest first, from the newest two segments (what the
+/// broker may still redeliver is never older than the last few acknowledgements).
+pub fn recent_keys(archive: &Path, name: &str) -> Vec<String> {
+    let mut keys = Vec::new();
+    let Ok(r) = crate::archive::reader::Reader::open(archive) else {
+        return keys;
+    };
+    let n = r.segments().len();
+    for i in n.saturating_sub(2)..n {
+        for e in r.read_segment(i, None).into_iter().flatten() {
+            if let crate::archive::record::Record::ReadingAccepted {
+                source,
+                source_key: Some(k),
+                ..
+            } = e.record
+                && source == name
+                && k.starts_with("mqtt:")
+            {
+                keys.push(k);
+            }
+        }
+    }
+    keys
+}
+
+/// Runs until shutdown, reconnecting with backoff whenever the broker is lost.
+pub async fn run(
+    src: MqttSource,
+    known: Vec<String>,
+    tx: mpsc::Sender<SourceEvent>,
+    mut shutdown: watch::Receiver<bool>,
+) {
+    let name = format!("mqtt:{}", src.id);
+    let opts = match options(&src.broker, src.qos > 0) {
+        Ok(o) => o,
+        Err(e) => {
+            tracing::error!("cannot set up the connection to {}: {e}", src.broker.url());
+            let _ = tx.send(SourceEvent::Ended { source: name }).await;
+            return;
+        }
+    };
+    let (client, mut eventloop): (AsyncClient, EventLoop) = AsyncClient::new(opts, 1024);
+    let (ack_tx, ack_rx) = mpsc::unbounded_channel::<Publish>();
+    let acker = tokio::spawn(acknowledge(client.clone(), ack_rx, tx.clone()));
+    let qos = if src.qos == 0 {
+        QoS::AtMostOnce
+    } else {
+        QoS::AtLeastOnce
+    };
+    let window = match src.duplicates {
+        Duplicates::Content { window } => window,
+        Duplicates::PacketId => 0,
+    };
+    let mut last_key: HashMap<u16, String> = HashMap::new();
+    let mut recent: VecDeque<String> = VecDeque::with_capacity(window);
+    for k in known {
+        if let Some(pkid) = key_pkid(&k) {
+            last_key.insert(pkid, k.clone());
+        }
+        remember(&mut recent, window, key_content(&k));
+    }
+    let mut catching_up = false;
+    let mut backoff = Duration::from_millis(250);
+    let mut down_since: Option<tokio::time::Instant> = None;
+    let mut connected = false;
+    let mut duplicates = 0u64;
+    tracing::info!(
+        "connecting to {} as {}, topics {}",
+        src.broker.url(),
+        src.broker.client_id,
+        src.topics
+            .iter()
+            .map(|t| t.template.as_str())
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    loop {
+        let ev = tokio::select! {
+            ev = eventloop.poll() => ev,
+            _ = shutdown.changed() => break,
+        };
+        match ev {
+            Ok(Event::Incoming(Packet::ConnAck(ack))) => {
+                connected = true;
+                catching_up = true;
+                backoff = Duration::from_millis(250);
+                match down_since.take() {
+                    Some(t) => tracing::warn!(
+                        "connected to {} again after {:.1} s without readings (session kept: {})",
+                        src.broker.url(),
+                        t.elapsed().as_secs_f64(),
+                        ack.session_present
+                    ),
+                    None => tracing::info!("connected to {}", src.broker.url()),
+                }
+                let subs = src
+                    .topics
+                    .iter()
+                    .map(|t| rumqttc::SubscribeFilter::new(t.filter.clone(), qos));
+                if let Err(e) = client.try_subscribe_many(subs) {
+                    tracing::error!("cannot subscribe: {e}");
+                }
+            }
+            Ok(Event::Incoming(Packet::SubAck(s))) => {
+                if s.return_codes
+                    .iter()
+                    .any(|c| matches!(c, rumqttc::SubscribeReasonCode::Failure))
+                {
+                    tracing::error!(
+                        "the broker refused a subscription (check its access rules): {:?}",
+                        s.return_codes
+                    );
+                } else {
+                    tracing::info!("subscribed");
+                }
+            }
+            Ok(Event::Incoming(Packet::Publish(p))) => {
+                let arrival = now_ms();
+                tracing::trace!(pkid = p.pkid, dup = p.dup, topic = %p.topic, "message");
+                let needs_ack = p.qos != QoS::AtMostOnce;
+                let key = needs_ack.then(|| message_key(p.pkid, &p.topic, &p.payload));
+                let duplicate = match (&key, src.duplicates) {
+                    (Some(k), Duplicates::PacketId) => p.dup && last_key.get(&p.pkid) == Some(k),
+                    (Some(k), Duplicates::Content { .. }) if catching_up => {
+                        let c = key_content(k);
+                        let seen = recent.iter().any(|r| r == c);
+                        catching_up = seen;
+                        seen
+                    }
+                    _ => false,
+                };
+                if duplicate {
+                    duplicates += 1;
+                    if duplicates <= 10 || duplicates.is_multiple_of(1000) {
+                        tracing::info!(
+                            "redelivered message {} on {} is already archived; acknowledged, not stored again ({duplicates} so far)",
+                            p.pkid,
+                            p.topic
+                        );
+                    }
+                } else {
+                    let ev = match parse(&src, &p.topic, &p.payload) {
+                        Ok(r) => {
+                            if let Some(k) = &key {
+                                last_key.insert(p.pkid, k.clone());
+                                remember(&mut recent, window, key_content(k));
+                            }
+                            SourceEvent::Reading(Incoming {
+                                source: name.clone(),
+                                characteristic: r.characteristic,
+                                value: r.value,
+                                unit: None,
+                                source_time_ms: r.time_ms,
+                                arrival_ms: arrival,
+                                part: r.part,
+                                source_key: key,
+                            })
+                        }
+                        Err(u) => SourceEvent::Unreadable {
+                            source: name.clone(),
+                            characteristic: u.characteristic,
+                            raw: format!(
+                                "{}: {}",
+                                p.topic,
+                                clip(&String::from_utf8_lossy(&p.payload))
+                            ),
+                            reason: u.reason,
+                        },
+                    };
+                    if tx.send(ev).await.is_err() {
+                        break;
+                    }
+                }
+                if needs_ack && ack_tx.send(p).is_err() {
+                    break;
+                }
+            }
+            Ok(_) => {}
+            Err(e) => {
+                if connected || down_since.is_none() {
+                    tracing::warn!(
+                        "lost the broker {}: {e}; reconnecting (messages not yet acknowledged will be redelivered)",
+                        src.broker.url()
+                    );
+                    down_since.get_or_insert_with(tokio::time::Instant::now);
+                }
+                connected = false;
+                tokio::select! {
+                    _ = tokio::time::sleep(backoff) => {}
+                    _ = shutdown.changed() => break,
+                }
+                backoff = (backoff * 2).min(Duration::from_secs(30));
+            }
+        }
+    }
+    drop(ack_tx);
+    // Acknowledge what is already durable before leaving; the rest is redelivered next time.
+    let _ = tokio::time::timeout(Duration::from_secs(2), acker).await;
+    let _ = tokio::time::timeout(Duration::from_secs(1), async {
+        let _ = client.try_disconnect();
+        while let Ok(ev) = eventloop.poll().await {
+            if matches!(ev, Event::Outgoing(rumqttc::Outgoing::Disconnect)) {
+                break;
+            }
+        }
+    })
+    .await;
+    let _ = tx.send(SourceEvent::Ended { source: name }).await;
+}
+
+/// Keeps the last `window` content hashes.
+fn remember(recent: &mut VecDeque<String>, window: usize, content: &str) {
+    if window == 0 {
+        return;
+    }
+    if recent.len() == window {
+        recent.pop_front();
+    }
+    recent.push_back(content.to_string());
+}
+
+/// Acknowledges messages in batches once the archive holds them durably: every message handed
+/// over since the last batch waits for one Barrier behind it in the engine queue.
+async fn acknowledge(
+    client: AsyncClient,
+    mut rx: mpsc::UnboundedReceiver<Publish>,
+    tx: mpsc::Sender<SourceEvent>,
+) {
+    while let Some(first) = rx.recv().await {
+        let mut batch = vec![first];
+        while batch.len() < 4096 {
+            match rx.try_recv() {
+                Ok(p) => batch.push(p),
+                Err(_) => break,
+            }
+        }
+        let (done, durable) = oneshot::channel();
+        if tx.send(SourceEvent::Barrier(done)).await.is_err() || durable.await.is_err() {
+            return; // the engine stopped: nothing more is known durable; the broker redelivers
+        }
+        for p in &batch {
+            if client.ack(p).await.is_err() {
+                return;
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn topic_filters_match_as_mqtt_says() {
+        assert!(matches("cell4/+/measure", "cell4/bore/measure"));
+        assert!(!matches("cell4/+/measure", "cell4/bore/x/measure"));
+        assert!(matches("cell4/#", "cell4/bore/measure"));
+        assert!(matches("cell4/#", "cell4"));
+        assert!(!matches("#", "$SYS/broker/load"));
+        assert!(!matches("cell4/+", "cell5/bore"));
+    }
+
+    fn source(payload: Payload, topic: &str, characteristic: Option<&str>) -> MqttSource {
+        let levels: Vec<&str> = topic.split('/').collect();
+        MqttSource {
+            id: "t".into(),
+            broker: crate::config::Broker {
+                host: "localhost".into(),
+                port: 1883,
+                tls: false,
+                client_id: "t".into(),
+                username: None,
+                password: None,
+                ca_file: None,
+                client_cert_file: None,
+                client_key_file: None,
+                keep_alive_s: 30,
+            },
+            topics: vec![TopicFilter {
+                template: topic.into(),
+                filter: topic.replace("{characteristic}", "+"),
+                characteristic_level: levels.iter().position(|l| *l == "{characteristic}"),
+            }],
+            qos: 1,
+            payload,
+            characteristic: characteristic.map(str::to_string),
+            duplicates: Duplicates::PacketId,
+        }
+    }
+
+    #[test]
+    fn payloads_give_readings_or_say_why_not() {
+        let plain = source(Payload::Plain, "cell4/{characteristic}/raw", None);
+        let r = parse(&plain, "cell4/bore/raw", b" 12.0031\n").unwrap();
+        assert_eq!((r.characteristic.as_str(), r.value), ("bore", 12.0031));
+        let e = parse(&plain, "cell4/bore/raw", b"12.0O31").unwrap_err();
+        assert_eq!(e.characteristic.as_deref(), Some("bore"));
+        assert!(e.reason.contains("is not a number"), "{}", e.reason);
+        let json = source(
+            Payload::Json {
+                value: "/m/v".into(),
+                time: Some("/t".into()),
+                characteristic: Some("/c".into()),
+                part: Some("/p".into()),
+            },
+            "lab/#",
+            None,
+        );
+        let r = parse(
+            &json,
+            "lab/x",
+            br#"{"m": {"v": "25.5"}, "t": 1796198400000, "c": "face", "p": 417}"#,
+        )
+        .unwrap();
+        assert_eq!(r.characteristic, "face");
+        assert_eq!(r.value, 25.5);
+        assert_eq!(r.time_ms, Some(1_796_198_400_000));
+        assert_eq!(r.part.as_deref(), Some("417"));
+        let r = parse(
+            &json,
+            "lab/x",
+            br#"{"m": {"v": 1}, "t": "2026-12-02T08:00:00.250Z", "c": "face"}"#,
+        )
+        .unwrap();
+        assert_eq!(r.time_ms, Some(1_796_198_400_250));
+        for (payload, why) in [
+            (&br#"{"m": {}, "c": "face"}"#[..], "no value at /m/v"),
+            (
+                br#"{"m": {"v": true}, "c": "face"}"#,
+                "/m/v is true, not a number",
+            ),
+            (
+                br#"{"m": {"v": 1}, "c": "face", "t": "yesterday"}"#,
+                "not an RFC 3339 time",
+            ),
+            (br#"{"m": {"v": 1}}"#, "no characteristic"),
+            (br#"{"m": "#, "not JSON"),
+        ] {
+            let e = parse(&json, "lab/x", payload).unwrap_err();
+            assert!(e.reason.contains(why), "{} does not say {why}", e.reason);
+        }
+    }
+
+    #[test]
+    fn keys_carry_the_packet_id() {
+        let k = message_key(513, "cell4/bore", b"12.0");
+        assert_eq!(key_pkid(&k), Some(513));
+        assert_ne!(k, message_key(513, "cell4/bore", b"12.1"));
+        assert_ne!(k, message_key(513, "cell4/face", b"12.0"));
+    }
+}
