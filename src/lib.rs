@@ -23,6 +23,7 @@
 //!
 //! The binary (`src/main.rs`) is a thin command-line shell over these modules.
 
+pub mod alerts;
 pub mod archive;
 pub mod config;
 pub mod daemon;

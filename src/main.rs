@@ -50,6 +50,58 @@ enum Command {
     /// Inspect the archive: verify it, export it, count what it holds.
     #[command(subcommand)]
     Archive(ArchiveCommand),
+    /// Ask the running daemon how things stand: sources, characteristics, open alerts.
+    Status {
+        #[command(flatten)]
+        to: DaemonArgs,
+        /// Print the daemon's JSON answer.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Acknowledge an alert (or every unacknowledged alert of a characteristic).
+    Ack {
+        /// The alert id (as the log, the HMI and the email show it), or a characteristic id.
+        alert: String,
+        /// Who acknowledges: a name or badge number, recorded in the archive.
+        #[arg(long, value_name = "NAME")]
+        by: String,
+        /// What was found or done.
+        #[arg(long, value_name = "TEXT")]
+        note: Option<String>,
+        #[command(flatten)]
+        to: DaemonArgs,
+        /// Print the daemon's JSON answer.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+/// Which daemon to talk to.
+#[derive(clap::Args)]
+struct DaemonArgs {
+    /// The control socket.
+    #[arg(long, value_name = "PATH", conflicts_with = "config")]
+    socket: Option<PathBuf>,
+    /// The daemon's config file (its [control] socket is used).
+    #[arg(long, value_name = "FILE")]
+    config: Option<PathBuf>,
+}
+
+impl DaemonArgs {
+    fn socket(&self) -> Result<PathBuf> {
+        if let Some(s) = &self.socket {
+            return Ok(s.clone());
+        }
+        let path = self
+            .config
+            .clone()
+            .or_else(|| std::env::var_os("LINEWARDEN_CONFIG").map(PathBuf::from))
+            .unwrap_or_else(|| PathBuf::from("/etc/linewarden/linewarden.toml"));
+        let cfg = linewarden::config::load(&path)?;
+        cfg.control
+            .map(|c| c.socket)
+            .ok_or_else(|| anyhow::anyhow!("{} has no [control] socket = \"...\"", path.display()))
+    }
 }
 
 #[derive(Subcommand)]
@@ -245,6 +297,14 @@ fn main() -> ExitCode {
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),
         Command::Run { config } => run_cmd(&config),
+        Command::Status { to, json } => status_cmd(&to, json),
+        Command::Ack {
+            alert,
+            by,
+            note,
+            to,
+            json,
+        } => ack_cmd(&to, alert, by, note, json),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -863,6 +923,44 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
                     .join(", ")
             ),
         }
+    }
+    Ok(())
+}
+
+fn status_cmd(to: &DaemonArgs, json: bool) -> Result<()> {
+    use linewarden::daemon::control::{ClientRequest, ask};
+    let v = ask(&to.socket()?, &ClientRequest::Status).map_err(anyhow::Error::msg)?;
+    if json {
+        println!("{}", serde_json::to_string_pretty(&v)?);
+        return Ok(());
+    }
+    if v.get("ok") == Some(&serde_json::Value::Bool(false)) {
+        anyhow::bail!("{}", v["error"].as_str().unwrap_or("the daemon refused"));
+    }
+    let r: linewarden::daemon::hub::StatusReport = serde_json::from_value(v)?;
+    print!("{}", linewarden::report::status(&r));
+    Ok(())
+}
+
+fn ack_cmd(
+    to: &DaemonArgs,
+    alert: String,
+    by: String,
+    note: Option<String>,
+    json: bool,
+) -> Result<()> {
+    use linewarden::daemon::control::{ClientRequest, ask};
+    let v =
+        ask(&to.socket()?, &ClientRequest::Ack { alert, by, note }).map_err(anyhow::Error::msg)?;
+    if json {
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    }
+    let r: linewarden::daemon::hub::AckReply = serde_json::from_value(v)?;
+    if !r.ok {
+        anyhow::bail!("{}", r.error.unwrap_or_else(|| "refused".into()));
+    }
+    if !json {
+        println!("acknowledged: {}", r.acknowledged.join(", "));
     }
     Ok(())
 }

@@ -240,3 +240,98 @@ pub fn capability_report(source: &str, spec: &Spec, c: &Capability, extra: &[Str
     warnings(&mut out, extra.iter().chain(&c.warnings));
     out
 }
+
+/// Milliseconds since 1970 as UTC RFC 3339, to the second.
+fn utc(ms: i64) -> String {
+    let t = std::time::UNIX_EPOCH + std::time::Duration::from_millis(ms.max(0) as u64);
+    humantime::format_rfc3339_seconds(t).to_string()
+}
+
+/// `linewarden status` as text: the light, the sources, the characteristics, the alerts.
+pub fn status(r: &crate::daemon::hub::StatusReport) -> String {
+    let mut s = String::new();
+    let up = (r.now_ms - r.started_ms).max(0) / 1000;
+    let _ = writeln!(
+        s,
+        "linewarden {} monitoring since {} ({}h {:02}m), config {}",
+        r.version,
+        utc(r.started_ms),
+        up / 3600,
+        (up / 60) % 60,
+        r.config
+    );
+    let _ = writeln!(s, "light: {}", r.light.name());
+    let _ = writeln!(
+        s,
+        "archive: {} ({}), durable up to record {}",
+        r.archive.dir, r.archive.state, r.archive.durable_seq
+    );
+    let _ = writeln!(s, "\nsources:");
+    for h in &r.sources {
+        let _ = writeln!(
+            s,
+            "  {:<24} {:<10} since {}  readings {}  rejected {}{}{}",
+            h.source,
+            h.state,
+            utc(h.since_ms),
+            h.readings,
+            h.rejected,
+            h.last_reading_ms
+                .map(|t| format!("  last {}", utc(t)))
+                .unwrap_or_default(),
+            if h.detail.is_empty() {
+                String::new()
+            } else {
+                format!("  ({})", h.detail)
+            }
+        );
+    }
+    let _ = writeln!(s, "\ncharacteristics:");
+    for c in &r.characteristics {
+        let last = match &c.last_subgroup {
+            Some(g) => format!("subgroup {} mean {} {}", g.number, num(g.mean), c.unit),
+            None => "no subgroup yet".into(),
+        };
+        let extra = match (c.baseline, c.limits) {
+            (Some((have, need)), _) => format!("  baseline {have}/{need}"),
+            (None, Some(l)) => format!(
+                "  limits {} / {} / {}",
+                num(l.lcl),
+                num(l.center),
+                num(l.ucl)
+            ),
+            _ => String::new(),
+        };
+        let _ = writeln!(s, "  {:<20} {:<11} {last}{extra}", c.id, c.state);
+    }
+    let active: Vec<_> = r
+        .alerts
+        .iter()
+        .filter(|a| a.status != crate::alerts::Status::Cleared)
+        .collect();
+    let _ = writeln!(s, "\nalerts: {} active", active.len());
+    for a in active {
+        let _ = writeln!(
+            s,
+            "  {}  {} {}  {}  raised {}{}{}",
+            a.id,
+            a.severity.name().to_uppercase(),
+            a.status.name(),
+            a.message,
+            utc(a.raised_ms),
+            if a.count > 1 {
+                format!(", {} times", a.count)
+            } else {
+                String::new()
+            },
+            a.ack
+                .as_ref()
+                .map(|k| format!(", acknowledged by {}", k.by))
+                .unwrap_or_default()
+        );
+        if let Some(p) = &a.reaction_plan {
+            let _ = writeln!(s, "      what to check first: {p}");
+        }
+    }
+    s
+}

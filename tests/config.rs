@@ -173,3 +173,67 @@ password_file = "pw"
     assert_eq!((m.broker.port, m.broker.tls), (8883, true));
     assert_eq!(m.broker.password.as_ref().unwrap().0, "s3cret-word");
 }
+
+#[test]
+fn bad_alert_outputs_report_every_problem() {
+    let dir = tempfile::tempdir().unwrap();
+    let text = r#"[daemon]
+archive_dir = "archive"
+
+[control]
+socket = "control.sock"
+mode = "0666"
+
+[alerts]
+stop = { escalate_after = "soon" }
+escalate_to = ["pager"]
+
+[[characteristic]]
+id = "bore"
+subgroup = { size = 1 }
+
+[[output]]
+id = "hmi"
+kind = "mqtt"
+broker = "mqtt://localhost"
+topic_prefix = "cell4/#"
+
+[[output]]
+id = "mail"
+kind = "email"
+smtp = "smtp+plain://mail.cell4.example"
+from = "not an address"
+to = []
+password_env = "LINEWARDEN_TEST_UNSET_VARIABLE"
+
+[[output]]
+id = "light"
+kind = "stack-light"
+modbus = "tcp://10.0.0.20:502"
+coils = { red = 0, amber = 0 }
+lamps = { alarm = ["red", "siren"], party = [] }
+
+[[output]]
+id = "pager2"
+kind = "sms"
+"#;
+    let p = dir.path().join("bad.toml");
+    std::fs::write(&p, text).unwrap();
+    let e = config::load(&p).unwrap_err().to_string();
+    for want in [
+        "control.mode: \"0666\" lets every user on the machine acknowledge alerts",
+        "alerts.stop.escalate_after: \"soon\" is not a duration",
+        "alerts.escalate_to[0]: \"pager\" is not a configured output",
+        "output[0].topic_prefix: \"cell4/#\" is not a topic prefix",
+        "output[1].from: \"not an address\" is not an email address",
+        "output[1]: kind = \"email\" needs to = [",
+        "output[1].password_env: the environment variable LINEWARDEN_TEST_UNSET_VARIABLE is not set",
+        "output[2].coils.red: coil 0 is also amber",
+        "output[2].lamps.alarm: \"siren\" is not one of the coils",
+        "output[2].lamps.party: \"party\" is not a light state",
+        "output[3].kind: \"sms\" is not an output kind",
+    ] {
+        assert!(e.contains(want), "missing {want:?} in:\n{e}");
+    }
+    assert!(e.contains("bad.toml:6:8: control.mode"), "positions: {e}");
+}

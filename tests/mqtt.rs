@@ -7,51 +7,15 @@
 //! the kills must still fire.
 
 use std::collections::BTreeMap;
-use std::io::Read;
-use std::net::TcpListener;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use linewarden::archive::Record;
 use linewarden::archive::reader::{Filter, Reader};
 
 mod common;
 use common::BORE_LIMITS;
-
-fn free_port() -> u16 {
-    TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
-
-/// A broker for one test: rumqttd in a thread of this process, or a Mosquitto child.
-enum Broker {
-    Rumqttd,
-    Mosquitto(Child),
-}
-
-impl Drop for Broker {
-    fn drop(&mut self) {
-        if let Broker::Mosquitto(c) = self {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
-    }
-}
-
-fn wait_for_port(port: u16) {
-    let start = Instant::now();
-    while std::net::TcpStream::connect(("127.0.0.1", port)).is_err() {
-        assert!(
-            start.elapsed() < Duration::from_secs(10),
-            "the broker did not open port {port}"
-        );
-        std::thread::sleep(Duration::from_millis(20));
-    }
-}
+use common::peers::{Broker, Daemon, free_port, start_mosquitto, wait_for_port, wait_until};
 
 fn start_rumqttd(port: u16) -> Broker {
     let text = format!(
@@ -80,39 +44,6 @@ dynamic_filters = true
     });
     wait_for_port(port);
     Broker::Rumqttd
-}
-
-/// Mosquitto on `port`, or None when it is not installed (and CI does not require it).
-fn start_mosquitto(dir: &Path, port: u16) -> Option<Broker> {
-    let bin = ["/usr/sbin/mosquitto", "/usr/bin/mosquitto"]
-        .into_iter()
-        .find(|p| Path::new(p).exists());
-    let Some(bin) = bin else {
-        assert!(
-            std::env::var_os("LINEWARDEN_REQUIRE_MOSQUITTO").is_none(),
-            "LINEWARDEN_REQUIRE_MOSQUITTO is set but mosquitto is not installed"
-        );
-        eprintln!("mosquitto is not installed; skipping the Mosquitto half");
-        return None;
-    };
-    let conf = dir.join("mosquitto.conf");
-    std::fs::write(
-        &conf,
-        format!(
-            "listener {port} 127.0.0.1\nallow_anonymous true\npersistence false\nmax_queued_messages 0\nmax_inflight_messages 100\nlog_dest stderr\n"
-        ),
-    )
-    .unwrap();
-    let child = Command::new(bin)
-        .arg("-c")
-        .arg(&conf)
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let b = Broker::Mosquitto(child);
-    wait_for_port(port);
-    Some(b)
 }
 
 /// A cell with a bore (stored limits, subgroups of 4) fed as JSON and a face (individuals,
@@ -162,78 +93,6 @@ characteristic = "face"
     let p = dir.join("cell.toml");
     std::fs::write(&p, text).unwrap();
     p
-}
-
-/// The daemon as a child process, its log going to `log`.
-struct Daemon {
-    child: Child,
-    log: PathBuf,
-}
-
-impl Daemon {
-    fn start(cfg: &Path, log: &Path) -> Daemon {
-        let f = std::fs::OpenOptions::new()
-            .create(true)
-            .append(true)
-            .open(log)
-            .unwrap();
-        let child = Command::new(env!("CARGO_BIN_EXE_linewarden"))
-            .args(["run", "--config"])
-            .arg(cfg)
-            .env(
-                "RUST_LOG",
-                std::env::var("TEST_DAEMON_LOG").unwrap_or("info".into()),
-            )
-            .stdout(Stdio::null())
-            .stderr(f)
-            .spawn()
-            .unwrap();
-        Daemon {
-            child,
-            log: log.to_path_buf(),
-        }
-    }
-
-    fn log_text(&self) -> String {
-        let mut s = String::new();
-        if let Ok(mut f) = std::fs::File::open(&self.log) {
-            let _ = f.read_to_string(&mut s);
-        }
-        s
-    }
-
-    /// Waits until the log shows `n` subscriptions in all.
-    fn wait_subscribed(&self, n: usize) {
-        let start = Instant::now();
-        while self.log_text().matches("subscribed").count() < n {
-            assert!(
-                start.elapsed() < Duration::from_secs(20),
-                "the daemon did not subscribe:\n{}",
-                self.log_text()
-            );
-            std::thread::sleep(Duration::from_millis(20));
-        }
-    }
-
-    fn kill9(&mut self) {
-        self.child.kill().unwrap();
-        self.child.wait().unwrap();
-    }
-
-    fn stop(mut self) {
-        unsafe {
-            libc::kill(self.child.id() as i32, libc::SIGTERM);
-        }
-        let status = self.child.wait().unwrap();
-        assert!(status.success(), "the daemon failed:\n{}", self.log_text());
-    }
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
 }
 
 /// Part id → every value archived for it, from source `source`; rejected raw texts.
@@ -304,14 +163,6 @@ fn publisher(rt: &tokio::runtime::Runtime, port: u16, id: &str) -> rumqttc::Asyn
         }
     });
     client
-}
-
-fn wait_until(what: &str, limit: Duration, f: impl Fn() -> bool) {
-    let start = Instant::now();
-    while !f() {
-        assert!(start.elapsed() < limit, "timed out waiting for {what}");
-        std::thread::sleep(Duration::from_millis(25));
-    }
 }
 
 /// Readings arrive from both payload kinds and wildcard topics; a bad payload is archived as

@@ -26,7 +26,7 @@ pub struct Envelope {
     pub record: Record,
 }
 
-/// An alert's life events.
+/// An alert's life events (see `crate::alerts` for what each one means).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "event", rename_all = "kebab-case")]
 pub enum AlertEvent {
@@ -34,22 +34,46 @@ pub enum AlertEvent {
         rule: String,
         severity: crate::rules::Severity,
         message: String,
+        #[serde(default)]
+        level: crate::alerts::Level,
+        #[serde(default)]
+        points: Vec<crate::rules::PointRef>,
+        statistic: f64,
+        limit: f64,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        reaction_plan: Option<String>,
+        at_ms: i64,
     },
-    /// The same rule fired again while the alert was open.
+    /// The same rule fired again while the alert was not cleared.
     Repeated {
         count: u64,
+        at_ms: i64,
+        message: String,
+        #[serde(default)]
+        points: Vec<crate::rules::PointRef>,
+        statistic: f64,
     },
-    Delivered {
-        output: String,
+    /// The condition is gone, but the alert waits for acknowledgement.
+    Gone {
+        at_ms: i64,
     },
     Acknowledged {
         by: String,
         #[serde(default, skip_serializing_if = "Option::is_none")]
         note: Option<String>,
+        at_ms: i64,
     },
-    Cleared,
+    Cleared {
+        at_ms: i64,
+    },
+    /// Left unacknowledged too long: the escalation outputs get it.
     Escalated {
-        to: String,
+        at_ms: i64,
+    },
+    /// An output delivered this version of the alert.
+    Delivered {
+        output: String,
+        version: u32,
     },
 }
 
@@ -85,6 +109,9 @@ pub struct CharacteristicTail {
     /// The engine's last saved state and the sequence number it was saved at.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub engine: Option<(u64, serde_json::Value)>,
+    /// The characteristic's alerts that are not cleared, and the last few cleared ones.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub alerts: Vec<crate::alerts::Alert>,
 }
 
 /// Everything the archive records.
@@ -309,6 +336,14 @@ impl Tail {
             }
             Record::Checkpoint { characteristics } => {
                 self.characteristics = characteristics.clone();
+            }
+            Record::Alert {
+                alert_id,
+                characteristic,
+                event,
+            } => {
+                let t = self.entry(characteristic);
+                crate::alerts::apply(&mut t.alerts, alert_id, characteristic, event);
             }
             _ => {}
         }

@@ -14,9 +14,12 @@
 //! * [`serial`] — gauges on serial ports, reopened when unplugged.
 //! * [`notify`] — systemd readiness, watchdog and status notifications.
 
+pub mod control;
 pub mod folder;
+pub mod hub;
 pub mod mqtt;
 pub mod notify;
+pub mod outputs;
 pub mod replay;
 pub mod serial;
 
@@ -49,6 +52,12 @@ pub enum SourceEvent {
     /// Answered once everything sent before it is durable in the archive (a folder source
     /// moves a report to done/ only then).
     Barrier(tokio::sync::oneshot::Sender<()>),
+    /// A source connected (up) or lost its device or broker (down), with a word on why.
+    Health {
+        source: String,
+        up: bool,
+        detail: String,
+    },
 }
 
 /// The queue from all sources to the engine.
@@ -86,6 +95,14 @@ pub struct Summary {
     pub last_seq: u64,
 }
 
+/// What one turn of the engine loop changed, for the outputs.
+#[derive(Default)]
+struct Effects {
+    alerts_changed: bool,
+    /// Characteristics whose retained state may have changed.
+    dirty: std::collections::BTreeSet<String>,
+}
+
 /// Runs the daemon until `shutdown` turns true or every source has ended. Each message on
 /// `reload` rereads the config file: a valid file is swapped in (characteristics whose
 /// configuration did not change keep their state), an invalid one is rejected whole and the
@@ -96,6 +113,7 @@ pub async fn run(
     mut reload: mpsc::Receiver<()>,
 ) -> Result<Summary, DaemonError> {
     let mut cfg = cfg;
+    let started_ms = now_ms();
     let mut wc = WriterConfig::new(&cfg.archive_dir);
     wc.flush_interval_ms = cfg.flush_interval_ms;
     wc.max_segment_bytes = cfg.max_segment_bytes;
@@ -127,12 +145,65 @@ pub async fn run(
             },
         ])
         .await?;
-    carry_out(&archive, &cfg, engine.restore(&tail), &mut summary).await?;
+    let mut fx = Effects::default();
+    carry_out(&archive, &cfg, engine.restore(&tail), &mut summary, &mut fx).await?;
 
+    let progress = std::sync::Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
+    // The outputs and the control socket: they outlive the sources, so that the last light
+    // state ("off") and the last status ("stopped") still go out.
+    let (outputs_stop, outputs_stop_rx) = watch::channel(false);
+    let (alerts_tx, alerts_rx) = watch::channel(std::sync::Arc::new(hub::AlertsView::default()));
+    let (light_tx, light_rx) = watch::channel(hub::Light::Off);
+    let (states_tx, states_rx) = watch::channel::<hub::States>(Default::default());
+    let (req_tx, mut req_rx) = mpsc::channel::<hub::Request>(64);
+    let (deliv_tx, mut deliv_rx) = mpsc::channel::<hub::Delivery>(1024);
+    let mut output_tasks = Vec::new();
+    for o in &cfg.outputs {
+        let t = outputs::spawn(
+            o.clone(),
+            outputs::Feeds {
+                alerts: alerts_rx.clone(),
+                light: light_rx.clone(),
+                states: states_rx.clone(),
+                delivered: deliv_tx.clone(),
+                requests: req_tx.clone(),
+                shutdown: outputs_stop_rx.clone(),
+                progress: progress.clone(),
+            },
+        );
+        tracing::info!(component = "output", output = %o.id, "alerts go to {}", o.describe());
+        output_tasks.push(t);
+    }
+    drop(deliv_tx);
+    if let Some(c) = &cfg.control {
+        match control::bind(c) {
+            Ok(l) => {
+                tracing::info!(
+                    component = "control",
+                    "status and acknowledgements on {}",
+                    c.socket.display()
+                );
+                output_tasks.push(tokio::spawn(control::serve(
+                    l,
+                    c.socket.clone(),
+                    req_tx.clone(),
+                    outputs_stop_rx.clone(),
+                )));
+            }
+            Err(e) => tracing::error!(
+                component = "control",
+                "cannot open the control socket {}: {e}; linewarden status and ack will not work",
+                c.socket.display()
+            ),
+        }
+    }
+    drop(req_tx);
+
+    let mut health: std::collections::BTreeMap<String, hub::SourceHealth> = Default::default();
     let (tx, mut rx) = mpsc::channel(SOURCE_QUEUE);
     let mut sources = 0;
     for s in &cfg.sources {
-        match s {
+        let name = match s {
             Source::Replay { id, file, speed } => {
                 tokio::spawn(
                     replay::run(
@@ -144,6 +215,7 @@ pub async fn run(
                     )
                     .instrument(source_span("replay", id)),
                 );
+                format!("replay:{id}")
             }
             Source::Folder {
                 id,
@@ -166,12 +238,14 @@ pub async fn run(
                     folder::run(src, tx.clone(), shutdown.clone())
                         .instrument(source_span("folder", id)),
                 );
+                format!("folder:{id}")
             }
             Source::Serial(g) => {
                 tokio::spawn(
                     serial::run((**g).clone(), tx.clone(), shutdown.clone())
                         .instrument(source_span("serial", &g.id)),
                 );
+                format!("serial:{}", g.id)
             }
             Source::Mqtt(m) => {
                 let (dir, name) = (cfg.archive_dir.clone(), format!("mqtt:{}", m.id));
@@ -182,8 +256,23 @@ pub async fn run(
                     mqtt::run((**m).clone(), known, tx.clone(), shutdown.clone())
                         .instrument(source_span("mqtt", &m.id)),
                 );
+                format!("mqtt:{}", m.id)
             }
-        }
+        };
+        // Replay and folder sources are up from the start; serial and MQTT say when they are.
+        let up = matches!(s, Source::Replay { .. } | Source::Folder { .. });
+        health.insert(
+            name.clone(),
+            hub::SourceHealth {
+                source: name,
+                state: if up { "up" } else { "connecting" }.into(),
+                since_ms: now_ms(),
+                last_reading_ms: None,
+                readings: 0,
+                rejected: 0,
+                detail: String::new(),
+            },
+        );
         sources += 1;
     }
     drop(tx);
@@ -191,7 +280,6 @@ pub async fn run(
     // Progress: the engine loop stamps the time of every turn (a reading or the 1 s tick). The
     // watchdog is pinged only while the loop turns, or while the archive reports a full disk
     // (a known, reported condition that a restart would not cure).
-    let progress = std::sync::Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
     if let Some(interval) = notify::Notifier::watchdog() {
         let (n, p, status) = (notifier.clone(), progress.clone(), archive.status());
         tokio::spawn(async move {
@@ -220,23 +308,70 @@ pub async fn run(
         cfg.characteristics.len(),
         cfg.archive_dir.display()
     );
+    let archive_status = archive.status();
+    let archive_ok = |s: &watch::Receiver<crate::archive::writer::Status>| {
+        matches!(
+            s.borrow().state,
+            crate::archive::writer::WriterState::Running
+        )
+    };
+    let healthy = |h: &std::collections::BTreeMap<String, hub::SourceHealth>| {
+        h.values().all(|s| s.state == "up" || s.state == "ended")
+    };
+    let mut generation = 0u64;
+    let publish_alerts = |engine: &Engine, generation: &mut u64| {
+        *generation += 1;
+        let book = engine.alerts().clone();
+        let characteristics = book
+            .by_characteristic
+            .keys()
+            .filter_map(|c| engine.view_of(c).map(|v| (c.clone(), v)))
+            .collect();
+        std::sync::Arc::new(hub::AlertsView {
+            book,
+            characteristics,
+            generation: *generation,
+        })
+    };
+    alerts_tx.send_replace(publish_alerts(&engine, &mut generation));
+    light_tx.send_replace(hub::light(
+        engine.alerts(),
+        healthy(&health),
+        archive_ok(&archive_status),
+    ));
+    let mut states: std::collections::BTreeMap<String, hub::StateView> = engine
+        .view()
+        .iter()
+        .map(|v| (v.id.clone(), hub::StateView::of(v, engine.alerts())))
+        .collect();
+    states_tx.send_replace(std::sync::Arc::new(states.clone()));
+    fx = Effects::default();
+
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     let mut ended = 0;
     let mut rejected_logged = 0u64;
     let reason = loop {
         progress.store(now_ms(), std::sync::atomic::Ordering::Relaxed);
+        let mut health_changed = false;
         tokio::select! {
             ev = rx.recv() => match ev {
                 Some(SourceEvent::Reading(inc)) => match engine.check(&inc) {
                     Ok(()) => {
                         let seq = archive.append_seq(vec![inc.record()]).await?;
                         summary.accepted += 1;
+                        if let Some(h) = health.get_mut(&inc.source) {
+                            h.readings += 1;
+                            h.last_reading_ms = Some(inc.arrival_ms);
+                        }
                         let out = engine.accept(seq, &inc);
-                        carry_out(&archive, &cfg, out, &mut summary).await?;
+                        carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
                     }
                     Err(reason) => {
                         summary.rejected += 1;
+                        if let Some(h) = health.get_mut(&inc.source) {
+                            h.rejected += 1;
+                        }
                         reject(&mut rejected_logged, &inc.source, &inc.value.to_string(), &reason);
                         archive.append(vec![Record::ReadingRejected {
                             source: inc.source.clone(),
@@ -249,6 +384,9 @@ pub async fn run(
                 },
                 Some(SourceEvent::Unreadable { source, characteristic, raw, reason }) => {
                     summary.rejected += 1;
+                    if let Some(h) = health.get_mut(&source) {
+                        h.rejected += 1;
+                    }
                     reject(&mut rejected_logged, &source, &raw, &reason);
                     archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms() }]).await?;
                 }
@@ -256,8 +394,24 @@ pub async fn run(
                     archive.flush().await?;
                     let _ = done.send(());
                 }
+                Some(SourceEvent::Health { source, up, detail }) => {
+                    if let Some(h) = health.get_mut(&source) {
+                        let state = if up { "up" } else { "down" };
+                        if h.state != state {
+                            h.state = state.into();
+                            h.since_ms = now_ms();
+                            health_changed = true;
+                        }
+                        h.detail = detail;
+                    }
+                }
                 Some(SourceEvent::Ended { source }) => {
                     ended += 1;
+                    if let Some(h) = health.get_mut(&source) {
+                        h.state = "ended".into();
+                        h.since_ms = now_ms();
+                        health_changed = true;
+                    }
                     tracing::info!(component = "daemon", "source {source} has ended");
                     if ended == sources {
                         break "every source has ended".to_string();
@@ -265,6 +419,52 @@ pub async fn run(
                 }
                 None => break "every source has stopped".to_string(),
             },
+            Some(req) = req_rx.recv() => match req {
+                hub::Request::Ack { target, by, note, via, reply } => {
+                    let answer = match engine.acknowledge(&target, &by, note.as_deref(), now_ms()) {
+                        Ok((ids, out)) => {
+                            tracing::info!(component = "alerts", "acknowledgement by {by} via {via}: {}", ids.join(", "));
+                            carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
+                            hub::AckReply { ok: true, acknowledged: ids, error: None }
+                        }
+                        Err(e) => {
+                            tracing::warn!(component = "alerts", "acknowledgement of {target:?} by {by:?} via {via} refused: {e}");
+                            hub::AckReply { ok: false, acknowledged: Vec::new(), error: Some(e.to_string()) }
+                        }
+                    };
+                    let _ = reply.send(answer);
+                }
+                hub::Request::Status(reply) => {
+                    let st = archive_status.borrow().clone();
+                    let report = hub::StatusReport {
+                        version: env!("CARGO_PKG_VERSION").to_string(),
+                        config: cfg.path.display().to_string(),
+                        started_ms,
+                        now_ms: now_ms(),
+                        light: *light_tx.borrow(),
+                        archive: hub::ArchiveStatus {
+                            dir: cfg.archive_dir.display().to_string(),
+                            durable_seq: st.durable_seq,
+                            state: match &st.state {
+                                crate::archive::writer::WriterState::Running => "running".into(),
+                                crate::archive::writer::WriterState::DiskFull { message } => format!("disk-full: {message}"),
+                                crate::archive::writer::WriterState::Failed { message } => format!("failed: {message}"),
+                                crate::archive::writer::WriterState::Stopped => "stopped".into(),
+                            },
+                        },
+                        sources: health.values().cloned().collect(),
+                        characteristics: engine.view().iter().map(hub::CharStatus::of).collect(),
+                        alerts: engine.alerts().all().cloned().collect(),
+                    };
+                    let _ = reply.send(report);
+                }
+            },
+            Some(d) = deliv_rx.recv() => {
+                if let Some(out) = engine.delivered(&d.output, &d.alert_id, d.version) {
+                    let mut quiet = Effects::default();
+                    carry_out(&archive, &cfg, vec![out], &mut summary, &mut quiet).await?;
+                }
+            }
             Some(()) = reload.recv() => {
                 let path = cfg.path.clone();
                 let loaded = tokio::task::spawn_blocking(move || crate::config::load(&path)).await;
@@ -272,6 +472,9 @@ pub async fn run(
                     Ok(Ok(new)) => {
                         if new.sources != cfg.sources {
                             tracing::warn!(component = "daemon", "the sources changed; that takes effect at the next restart");
+                        }
+                        if new.outputs != cfg.outputs || new.control != cfg.control {
+                            tracing::warn!(component = "daemon", "the outputs or the control socket changed; that takes effect at the next restart");
                         }
                         if new.archive_dir != cfg.archive_dir {
                             tracing::warn!(component = "daemon", "archive_dir changed; that takes effect at the next restart");
@@ -287,9 +490,10 @@ pub async fn run(
                             path: new.path.display().to_string(),
                             sha256: crate::archive::segment::sha256_hex(&text),
                         }]).await?;
-                        let keep = (cfg.archive_dir.clone(), cfg.sources.clone());
+                        let keep = (cfg.archive_dir.clone(), cfg.sources.clone(), cfg.outputs.clone(), cfg.control.clone());
                         cfg = new;
-                        (cfg.archive_dir, cfg.sources) = keep;
+                        (cfg.archive_dir, cfg.sources, cfg.outputs, cfg.control) = keep;
+                        fx.alerts_changed = true;
                         tracing::info!(component = "daemon", "reloaded {}", cfg.path.display());
                     }
                     Ok(Err(e)) => tracing::error!(component = "daemon", "reload rejected, the running configuration stays:\n{e}"),
@@ -298,15 +502,57 @@ pub async fn run(
             }
             _ = tick.tick() => {
                 let out = engine.tick(now_ms());
-                carry_out(&archive, &cfg, out, &mut summary).await?;
+                carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
+                // Retained states at most once a second, only the ones that changed.
+                if !fx.dirty.is_empty() {
+                    for id in std::mem::take(&mut fx.dirty) {
+                        if let Some(v) = engine.view_of(&id) {
+                            states.insert(id, hub::StateView::of(&v, engine.alerts()));
+                        }
+                    }
+                    states_tx.send_replace(std::sync::Arc::new(states.clone()));
+                }
+                health_changed = true;
             }
+        }
+        if fx.alerts_changed {
+            fx.alerts_changed = false;
+            alerts_tx.send_replace(publish_alerts(&engine, &mut generation));
+            health_changed = true;
+        }
+        if health_changed {
+            let l = hub::light(
+                engine.alerts(),
+                healthy(&health),
+                archive_ok(&archive_status),
+            );
+            light_tx.send_if_modified(|old| std::mem::replace(old, l) != l);
         }
     };
     tracing::info!(component = "daemon", "stopping: {reason}");
     notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
+    light_tx.send_replace(hub::Light::Off);
     let mut last = engine.snapshot();
     last.push(Record::DaemonStopped { reason });
     summary.last_seq = archive.append_seq(last).await?;
+    // Deliveries that finish while the outputs wind down are still archived.
+    let _ = outputs_stop.send(true);
+    let wind_down = async {
+        for t in output_tasks {
+            let _ = t.await;
+        }
+    };
+    let drain = async {
+        while let Some(d) = deliv_rx.recv().await {
+            if let Some(Output::Record(r)) = engine.delivered(&d.output, &d.alert_id, d.version) {
+                let _ = archive.append(vec![r]).await;
+            }
+        }
+    };
+    let _ = tokio::time::timeout(Duration::from_secs(5), async {
+        tokio::join!(wind_down, drain)
+    })
+    .await;
     drop(archive);
     let deadline = Duration::from_secs(30);
     let joined =
@@ -382,40 +628,34 @@ fn reject(logged: &mut u64, source: &str, raw: &str, reason: &str) {
     }
 }
 
-/// Carries out the engine's outputs: archive records, log violations and checks, write
-/// learned limits.
+/// Carries out the engine's outputs: archive records, log checks and the alert lifecycle,
+/// write learned limits; notes in `fx` what the outputs need to hear of.
 async fn carry_out(
     archive: &ArchiveHandle,
     cfg: &Config,
     outputs: Vec<Output>,
     summary: &mut Summary,
+    fx: &mut Effects,
 ) -> Result<(), DaemonError> {
     let mut records = Vec::new();
     for o in outputs {
         match o {
-            Output::Record(r) => records.push(r),
-            Output::Violation {
-                characteristic,
-                violation,
-            } => {
-                summary.violations += 1;
-                let plan = cfg
-                    .characteristics
-                    .iter()
-                    .find(|c| c.id == characteristic)
-                    .and_then(|c| c.reaction_plan.clone())
-                    .filter(|_| violation.severity == crate::rules::Severity::Stop);
-                tracing::warn!(
-                    component = "engine",
-                    characteristic = %characteristic,
-                    rule = %violation.rule,
-                    severity = violation.severity.name(),
-                    "ALERT {}: {}{}",
-                    violation.severity.name().to_uppercase(),
-                    violation.message,
-                    plan.map(|p| format!(". Reaction plan: {p}")).unwrap_or_default()
-                );
+            Output::Record(r) => {
+                if let Record::Alert {
+                    alert_id,
+                    characteristic,
+                    event,
+                } = &r
+                {
+                    log_alert(alert_id, characteristic, event, cfg);
+                    if !matches!(event, crate::archive::record::AlertEvent::Delivered { .. }) {
+                        fx.alerts_changed = true;
+                        fx.dirty.insert(characteristic.clone());
+                    }
+                }
+                records.push(r)
             }
+            Output::Violation { .. } => summary.violations += 1,
             Output::Checked {
                 characteristic,
                 subgroup,
@@ -439,6 +679,7 @@ async fn carry_out(
                     subgroup.n,
                     subgroup.dispersion.map(|d| format!(", spread {}", num(d))).unwrap_or_default()
                 );
+                fx.dirty.insert(characteristic);
             }
             Output::Log {
                 level,
@@ -480,4 +721,82 @@ async fn carry_out(
         archive.append(records).await?;
     }
     Ok(())
+}
+
+/// One log line per alert event, in plain words: what, where, which rule, what to do, and how
+/// to acknowledge.
+fn log_alert(
+    id: &str,
+    characteristic: &str,
+    event: &crate::archive::record::AlertEvent,
+    cfg: &Config,
+) {
+    use crate::archive::record::AlertEvent as E;
+    let latch = |s: crate::rules::Severity| cfg.alerts.policies.of(s).acknowledge;
+    match event {
+        E::Raised {
+            rule,
+            severity,
+            message,
+            points,
+            reaction_plan,
+            ..
+        } => {
+            let values = points
+                .iter()
+                .rev()
+                .take(8)
+                .rev()
+                .map(|p| num(p.value))
+                .collect::<Vec<_>>()
+                .join(", ");
+            tracing::warn!(
+                component = "alerts",
+                characteristic = %characteristic,
+                rule = %rule,
+                severity = severity.name(),
+                "ALERT {} {id}: {message} (recent values: {values}).{}{}",
+                severity.name().to_uppercase(),
+                reaction_plan.as_ref().map(|p| format!(" Reaction plan: {p}.")).unwrap_or_default(),
+                if latch(*severity) {
+                    format!(" Acknowledge with: linewarden ack {id} --by NAME")
+                } else {
+                    String::new()
+                }
+            );
+        }
+        E::Repeated { count, message, .. } => {
+            if *count <= 3 || count.is_multiple_of(100) {
+                tracing::info!(component = "alerts", characteristic = %characteristic, "alert {id} again ({count} times in all): {message}");
+            }
+        }
+        E::Gone { .. } => tracing::info!(
+            component = "alerts",
+            characteristic = %characteristic,
+            "alert {id}: the condition is gone; the alert stays until someone acknowledges it"
+        ),
+        E::Acknowledged { by, note, .. } => tracing::info!(
+            component = "alerts",
+            characteristic = %characteristic,
+            "alert {id} acknowledged by {by}{}",
+            note.as_ref().map(|n| format!(": {n}")).unwrap_or_default()
+        ),
+        E::Cleared { .. } => {
+            tracing::info!(component = "alerts", characteristic = %characteristic, "alert {id} cleared")
+        }
+        E::Escalated { .. } => tracing::warn!(
+            component = "alerts",
+            characteristic = %characteristic,
+            "alert {id} escalated: nobody has acknowledged it{}",
+            if cfg.alerts.escalate_to.is_empty() {
+                String::new()
+            } else {
+                format!("; telling {}", cfg.alerts.escalate_to.join(", "))
+            }
+        ),
+        E::Delivered { output, version } => tracing::debug!(
+            component = "alerts",
+            "alert {id} version {version} delivered by {output}"
+        ),
+    }
 }

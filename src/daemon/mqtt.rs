@@ -335,6 +335,13 @@ pub async fn run(
             Ok(Event::Incoming(Packet::ConnAck(ack))) => {
                 connected = true;
                 catching_up = true;
+                let _ = tx
+                    .send(SourceEvent::Health {
+                        source: name.clone(),
+                        up: true,
+                        detail: format!("connected to {}", src.broker.url()),
+                    })
+                    .await;
                 backoff = Duration::from_millis(250);
                 match down_since.take() {
                     Some(t) => tracing::warn!(
@@ -430,6 +437,13 @@ pub async fn run(
             Ok(_) => {}
             Err(e) => {
                 if connected || down_since.is_none() {
+                    let _ = tx
+                        .send(SourceEvent::Health {
+                            source: name.clone(),
+                            up: false,
+                            detail: format!("{}: {e}", src.broker.url()),
+                        })
+                        .await;
                     tracing::warn!(
                         "lost the broker {}: {e}; reconnecting (messages not yet acknowledged will be redelivered)",
                         src.broker.url()

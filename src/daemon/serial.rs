@@ -80,11 +80,25 @@ pub async fn run(
                 }
                 warned = false;
                 backoff = Duration::from_millis(250);
+                let _ = tx
+                    .send(SourceEvent::Health {
+                        source: name.clone(),
+                        up: true,
+                        detail: format!("{} open", g.port),
+                    })
+                    .await;
                 match read_loop(&g, &re, &name, port, &tx, &mut shutdown).await {
                     Ended::Shutdown => break,
                     Ended::EngineGone => return,
                     Ended::Lost(why) => {
                         tracing::warn!("lost serial port {}: {why}; reopening", g.port);
+                        let _ = tx
+                            .send(SourceEvent::Health {
+                                source: name.clone(),
+                                up: false,
+                                detail: format!("{}: {why}", g.port),
+                            })
+                            .await;
                         down_since = Some(tokio::time::Instant::now());
                     }
                 }
@@ -95,6 +109,13 @@ pub async fn run(
                         "cannot open serial port {}: {e}; retrying with backoff",
                         g.port
                     );
+                    let _ = tx
+                        .send(SourceEvent::Health {
+                            source: name.clone(),
+                            up: false,
+                            detail: format!("{}: {e}", g.port),
+                        })
+                        .await;
                     warned = true;
                 }
                 down_since.get_or_insert_with(tokio::time::Instant::now);

@@ -99,6 +99,14 @@ pub enum Output {
     },
 }
 
+fn alert_record(e: crate::alerts::Event) -> Output {
+    Output::Record(Record::Alert {
+        alert_id: e.alert_id,
+        characteristic: e.characteristic,
+        event: e.event,
+    })
+}
+
 /// Subgroups between saved engine states (and at every learning subgroup).
 pub const SAVE_EVERY: u64 = 10;
 
@@ -127,6 +135,8 @@ enum Mode {
 
 struct CharEngine {
     cfg: Characteristic,
+    /// The last subgroups, oldest first (for charts and the status).
+    recent: std::collections::VecDeque<SubgroupSummary>,
     asm: Assembler,
     mode: Mode,
     reading_rules: ReadingEvaluator,
@@ -137,9 +147,35 @@ struct CharEngine {
     last_individual: Option<f64>,
 }
 
+/// Subgroups kept per characteristic for charts and the status.
+pub const RECENT: usize = 30;
+
+/// One characteristic as the status, the outputs and the charts see it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CharView {
+    pub id: String,
+    pub name: String,
+    pub unit: String,
+    pub learning: bool,
+    /// Learning: subgroups collected and needed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub baseline: Option<(usize, usize)>,
+    pub standing: crate::alerts::Standing,
+    /// The last subgroups, oldest first.
+    pub recent: Vec<SubgroupSummary>,
+    /// Location limits at the nominal subgroup size.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub location: Option<crate::stats::Limits>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub spec: Option<crate::stats::capability::Spec>,
+    pub readings: u64,
+}
+
 /// The engine of a whole cell.
 pub struct Engine {
     chars: BTreeMap<String, CharEngine>,
+    alerts: crate::alerts::Book,
+    policies: crate::alerts::Policies,
 }
 
 impl Engine {
@@ -150,7 +186,11 @@ impl Engine {
             .iter()
             .map(|c| (c.id.clone(), CharEngine::new(c.clone(), now_ms)))
             .collect();
-        Engine { chars }
+        Engine {
+            chars,
+            alerts: crate::alerts::Book::default(),
+            policies: cfg.alerts.policies,
+        }
     }
 
     /// Takes a new configuration. A characteristic whose configuration (limits, rules,
@@ -159,6 +199,7 @@ impl Engine {
     /// in words.
     pub fn reconfigure(&mut self, cfg: &Config, tail: &Tail, now_ms: i64) -> Vec<String> {
         let mut notes = Vec::new();
+        self.policies = cfg.alerts.policies;
         let mut next = BTreeMap::new();
         for c in &cfg.characteristics {
             match self.chars.remove(&c.id) {
@@ -240,19 +281,185 @@ impl Engine {
 
     /// Takes an accepted reading, already archived as record `seq`.
     pub fn accept(&mut self, seq: u64, inc: &Incoming) -> Vec<Output> {
-        match self.chars.get_mut(&inc.characteristic) {
-            Some(c) => c.accept(seq, inc),
-            None => Vec::new(),
-        }
+        let Some(c) = self.chars.get_mut(&inc.characteristic) else {
+            return Vec::new();
+        };
+        let mut out = c.accept(seq, inc);
+        let plan = c.cfg.reaction_plan.clone();
+        self.follow(
+            &inc.characteristic,
+            plan.as_deref(),
+            &mut out,
+            Some(seq),
+            inc.arrival_ms,
+        );
+        out
     }
 
-    /// Applies time: windows that closed, maximum waits that ran out, feeds gone silent.
+    /// Applies time: windows that closed, maximum waits that ran out, feeds gone silent,
+    /// alerts left unacknowledged too long.
     pub fn tick(&mut self, now_ms: i64) -> Vec<Output> {
         let mut out = Vec::new();
-        for c in self.chars.values_mut() {
-            out.extend(c.tick(now_ms));
+        let ids: Vec<String> = self.chars.keys().cloned().collect();
+        for id in ids {
+            let c = self.chars.get_mut(&id).expect("listed above");
+            let mut o = c.tick(now_ms);
+            let plan = c.cfg.reaction_plan.clone();
+            self.follow(&id, plan.as_deref(), &mut o, None, now_ms);
+            out.extend(o);
+        }
+        for e in self.alerts.tick(&self.policies, now_ms) {
+            out.push(alert_record(e));
         }
         out
+    }
+
+    /// Drives the alert book from what a reading or a tick produced: violations raise or
+    /// repeat alerts, passed checks let them go.
+    fn follow(
+        &mut self,
+        characteristic: &str,
+        plan: Option<&str>,
+        out: &mut Vec<Output>,
+        reading: Option<u64>,
+        now_ms: i64,
+    ) {
+        use crate::alerts::Level;
+        let mut events = Vec::new();
+        let mut reading_fired: Vec<String> = Vec::new();
+        for o in out.iter() {
+            let Output::Record(r) = o else { continue };
+            match r {
+                Record::Flagged {
+                    reading: at,
+                    violations,
+                    ..
+                } => {
+                    let at = match at {
+                        Some(seq) => format!("r{seq}"),
+                        None => format!("t{now_ms}"),
+                    };
+                    for v in violations {
+                        if reading.is_some() {
+                            reading_fired.push(v.rule.clone());
+                        }
+                        events.extend(self.alerts.fired(
+                            characteristic,
+                            v,
+                            Level::Reading,
+                            &at,
+                            plan,
+                            now_ms,
+                        ));
+                    }
+                }
+                Record::SubgroupResult {
+                    subgroup,
+                    violations,
+                    ..
+                } => {
+                    let at = subgroup.number.to_string();
+                    for v in violations {
+                        events.extend(self.alerts.fired(
+                            characteristic,
+                            v,
+                            Level::Subgroup,
+                            &at,
+                            plan,
+                            now_ms,
+                        ));
+                    }
+                    let fired: Vec<&str> = violations.iter().map(|v| v.rule.as_str()).collect();
+                    events.extend(self.alerts.checked(
+                        characteristic,
+                        Level::Subgroup,
+                        &fired,
+                        &self.policies,
+                        now_ms,
+                    ));
+                }
+                _ => {}
+            }
+        }
+        if reading.is_some() {
+            let fired: Vec<&str> = reading_fired.iter().map(String::as_str).collect();
+            events.extend(self.alerts.checked(
+                characteristic,
+                Level::Reading,
+                &fired,
+                &self.policies,
+                now_ms,
+            ));
+        }
+        out.extend(events.into_iter().map(alert_record));
+    }
+
+    /// Acknowledges an alert, or every unacknowledged alert of a characteristic.
+    pub fn acknowledge(
+        &mut self,
+        target: &str,
+        by: &str,
+        note: Option<&str>,
+        now_ms: i64,
+    ) -> Result<(Vec<String>, Vec<Output>), crate::alerts::AckError> {
+        let events = self.alerts.acknowledge(target, by, note, now_ms)?;
+        let mut ids: Vec<String> = events.iter().map(|e| e.alert_id.clone()).collect();
+        ids.dedup();
+        Ok((ids, events.into_iter().map(alert_record).collect()))
+    }
+
+    /// An output delivered `version` of alert `id`.
+    pub fn delivered(&mut self, output: &str, id: &str, version: u32) -> Option<Output> {
+        self.alerts.delivered(output, id, version).map(alert_record)
+    }
+
+    /// Every alert.
+    pub fn alerts(&self) -> &crate::alerts::Book {
+        &self.alerts
+    }
+
+    /// Every characteristic, for the status and the outputs.
+    pub fn view(&self) -> Vec<CharView> {
+        self.chars.values().map(|c| self.view_char(c)).collect()
+    }
+
+    /// One characteristic, for the status and the outputs.
+    pub fn view_of(&self, id: &str) -> Option<CharView> {
+        self.chars.get(id).map(|c| self.view_char(c))
+    }
+
+    fn view_char(&self, c: &CharEngine) -> CharView {
+        {
+            {
+                let learning = matches!(c.mode, Mode::Learning { .. });
+                let alerts = self
+                    .alerts
+                    .by_characteristic
+                    .get(&c.cfg.id)
+                    .map(|l| l.as_slice())
+                    .unwrap_or(&[]);
+                CharView {
+                    id: c.cfg.id.clone(),
+                    name: c.cfg.name.clone(),
+                    unit: c.cfg.unit.clone(),
+                    learning,
+                    baseline: match &c.mode {
+                        Mode::Learning { baseline } => {
+                            Some((baseline.len(), c.cfg.baseline_subgroups))
+                        }
+                        Mode::Monitoring { .. } => None,
+                    },
+                    standing: crate::alerts::standing(alerts.iter(), learning),
+                    recent: c.recent.iter().copied().collect(),
+                    location: match &c.mode {
+                        Mode::Monitoring { points, .. } => Some(points.basis().location),
+                        Mode::Learning { .. } => None,
+                    },
+                    spec: c.cfg.spec,
+                    readings: c.readings,
+                }
+            }
+        }
     }
 
     /// Rebuilds every characteristic's state from the archive's tail: waiting readings,
@@ -263,6 +470,29 @@ impl Engine {
             if let Some(t) = tail.characteristics.get(id) {
                 out.extend(c.restore(t));
             }
+        }
+        self.alerts = crate::alerts::Book::default();
+        for (id, t) in &tail.characteristics {
+            if !t.alerts.is_empty() {
+                self.alerts
+                    .by_characteristic
+                    .insert(id.clone(), t.alerts.clone());
+            }
+        }
+        let open = self.alerts.active().count();
+        if open > 0 {
+            out.push(Output::Log {
+                level: Level::Warn,
+                characteristic: "-".into(),
+                message: format!(
+                    "{open} alert(s) still open from before the restart: {}",
+                    self.alerts
+                        .active()
+                        .map(|a| a.id.as_str())
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                ),
+            });
         }
         out
     }
@@ -292,6 +522,7 @@ impl CharEngine {
         };
         CharEngine {
             cfg,
+            recent: std::collections::VecDeque::new(),
             asm,
             mode,
             reading_rules,
@@ -401,6 +632,7 @@ impl CharEngine {
             dispersion,
         };
         let seqs: Vec<u64> = readings.iter().map(|r| r.seq).collect();
+        self.remember(summary);
         let learning = matches!(self.mode, Mode::Learning { .. });
         let (location, disp_limits, violations) = match &mut self.mode {
             Mode::Monitoring { points, .. } => {
@@ -450,6 +682,13 @@ impl CharEngine {
         if learning || self.number.is_multiple_of(SAVE_EVERY) {
             out.push(Output::Record(self.saved_record()));
         }
+    }
+
+    fn remember(&mut self, s: SubgroupSummary) {
+        if self.recent.len() == RECENT {
+            self.recent.pop_front();
+        }
+        self.recent.push_back(s);
     }
 
     fn discard(&self, readings: &[PendingReading], reason: String) -> Output {
@@ -563,6 +802,7 @@ impl CharEngine {
     fn restore(&mut self, t: &crate::archive::record::CharacteristicTail) -> Vec<Output> {
         let mut out = Vec::new();
         self.asm.restore(t.pending.iter().cloned());
+        self.recent = t.recent.iter().rev().take(RECENT).rev().copied().collect();
         let saved: Option<Saved> = t
             .engine
             .as_ref()

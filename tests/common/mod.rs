@@ -1,6 +1,8 @@
 //! Helpers shared by the daemon and engine tests.
 #![allow(dead_code)]
 
+pub mod peers;
+
 /// Stored limits of a characteristic "bore": centre 12.000, sigma 0.004, subgroups of 4.
 pub const BORE_LIMITS: &str = r#"format = 1
 characteristic = "bore"

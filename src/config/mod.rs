@@ -11,6 +11,12 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
+pub mod outputs;
+pub use outputs::{
+    AlertsConfig, Control, EmailOutput, ModbusLink, Output, OutputKind, RawAlerts, RawControl,
+    RawOutput, SmtpSecurity, StackLight,
+};
+
 use crate::diag::{Locator, Problem, Problems};
 use crate::limits_file::{StoredLimits, valid_id};
 use crate::rules::{RuleSet, RulesConfig};
@@ -26,6 +32,11 @@ pub struct RawConfig {
     pub characteristic: Vec<RawCharacteristic>,
     #[serde(default)]
     pub source: Vec<RawSource>,
+    #[serde(default)]
+    pub alerts: RawAlerts,
+    #[serde(default)]
+    pub output: Vec<RawOutput>,
+    pub control: Option<RawControl>,
 }
 
 /// `[daemon]`.
@@ -376,6 +387,9 @@ pub struct Config {
     pub max_segment_bytes: u64,
     pub characteristics: Vec<Characteristic>,
     pub sources: Vec<Source>,
+    pub alerts: AlertsConfig,
+    pub outputs: Vec<Output>,
+    pub control: Option<Control>,
 }
 
 /// Why a configuration could not be loaded.
@@ -703,6 +717,9 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
             )),
         }
     }
+    let alerts = outputs::build_alerts(&raw.alerts, &raw.output, loc, p);
+    let outputs = outputs::build_outputs(&raw.output, &alerts, &resolve, loc, p);
+    let control = outputs::build_control(&raw.control, &resolve, loc, p);
     Config {
         path: path.to_path_buf(),
         archive_dir: resolve(&raw.daemon.archive_dir),
@@ -710,6 +727,9 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
         max_segment_bytes: raw.daemon.max_segment_mb * 1024 * 1024,
         characteristics: chars,
         sources,
+        alerts,
+        outputs,
+        control,
     }
 }
 

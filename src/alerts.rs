@@ -1,0 +1,776 @@
+//! The alert lifecycle, pure: no I/O, no clock reads; the engine drives it and archives every
+//! event it returns, and a restart rebuilds it by applying the archived events again.
+//!
+//! A violation raises an alert with a stable id (`<characteristic>-<subgroup>-<rule>`, or
+//! `-r<reading>-` for a reading rule). The same rule firing again on the same characteristic
+//! while its alert is not cleared repeats it (count, last seen). The condition is gone when a
+//! later subgroup (or reading, for reading rules) is checked without that rule firing. An alert
+//! whose severity needs acknowledgement latches: it clears only once acknowledged and gone;
+//! otherwise it clears as soon as the condition is gone. An alert left unacknowledged past its
+//! severity's escalation time is escalated once.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use crate::archive::record::AlertEvent;
+use crate::rules::{PointRef, Severity, Violation};
+
+/// Cleared alerts kept per characteristic (for status and for deliveries still pending).
+pub const KEEP_CLEARED: usize = 50;
+
+/// Where an alert is in its life.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Status {
+    /// Raised, nobody has acknowledged it.
+    Open,
+    /// Someone has looked; the condition may still be there.
+    Acknowledged,
+    /// Over.
+    Cleared,
+}
+
+impl Status {
+    pub fn name(self) -> &'static str {
+        match self {
+            Status::Open => "open",
+            Status::Acknowledged => "acknowledged",
+            Status::Cleared => "cleared",
+        }
+    }
+}
+
+/// Which evaluation can show a rule's condition gone.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum Level {
+    /// A subgroup rule: gone when a later subgroup is checked without it.
+    #[default]
+    Subgroup,
+    /// A reading rule: gone when a later reading passes it.
+    Reading,
+}
+
+/// Who acknowledged, when, and why.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Ack {
+    pub by: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
+    pub at_ms: i64,
+}
+
+/// One alert, as the archive, the status and every output see it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Alert {
+    pub id: String,
+    pub characteristic: String,
+    pub rule: String,
+    pub severity: Severity,
+    pub level: Level,
+    /// The plain sentence of the violation that raised it.
+    pub message: String,
+    /// The sentence of the latest repeat.
+    pub last_message: String,
+    /// The points involved in the latest firing, with their values.
+    pub points: Vec<PointRef>,
+    pub statistic: f64,
+    pub limit: f64,
+    /// What the technician should check first (from the config).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reaction_plan: Option<String>,
+    pub raised_ms: i64,
+    pub last_seen_ms: i64,
+    pub count: u64,
+    pub status: Status,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ack: Option<Ack>,
+    /// The condition is not there any more (the last check passed).
+    pub gone: bool,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub escalated_ms: Option<i64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cleared_ms: Option<i64>,
+    /// Bumped by every event; outputs deliver versions (alert id + version is the idempotency
+    /// key).
+    pub version: u32,
+    /// The version each output has delivered.
+    #[serde(default)]
+    pub delivered: BTreeMap<String, u32>,
+    /// The name of the latest event ("raised", "repeated", "acknowledged", ...).
+    pub last_event: String,
+}
+
+/// What to do with alerts of one severity.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Policy {
+    /// The alert latches until someone acknowledges it.
+    pub acknowledge: bool,
+    /// Unacknowledged this long after raising: escalate.
+    pub escalate_after_ms: Option<i64>,
+}
+
+/// Policies per severity.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Policies {
+    pub stop: Policy,
+    pub warn: Policy,
+    pub notice: Policy,
+}
+
+impl Default for Policies {
+    /// Stop-level alerts latch until acknowledged and escalate after 15 minutes; warnings and
+    /// notices clear by themselves when the condition is gone.
+    fn default() -> Self {
+        Policies {
+            stop: Policy {
+                acknowledge: true,
+                escalate_after_ms: Some(15 * 60 * 1000),
+            },
+            warn: Policy {
+                acknowledge: false,
+                escalate_after_ms: None,
+            },
+            notice: Policy {
+                acknowledge: false,
+                escalate_after_ms: None,
+            },
+        }
+    }
+}
+
+impl Policies {
+    pub fn of(&self, s: Severity) -> Policy {
+        match s {
+            Severity::Stop => self.stop,
+            Severity::Warn => self.warn,
+            Severity::Notice => self.notice,
+        }
+    }
+}
+
+/// An event for the archive: which alert, which characteristic, what happened.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Event {
+    pub alert_id: String,
+    pub characteristic: String,
+    pub event: AlertEvent,
+}
+
+/// Why an acknowledgement was refused.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum AckError {
+    #[error("no alert or characteristic is called \"{0}\"")]
+    Unknown(String),
+    #[error("\"{0}\" has no alert waiting for acknowledgement")]
+    NothingOpen(String),
+    #[error("alert {id} was already acknowledged by {by}")]
+    Already { id: String, by: String },
+    #[error("alert {0} is already cleared")]
+    Cleared(String),
+    #[error("say who acknowledges (a name or badge number)")]
+    NoName,
+}
+
+/// Every alert of a cell, by characteristic.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct Book {
+    pub by_characteristic: BTreeMap<String, Vec<Alert>>,
+}
+
+impl Book {
+    /// Every alert, cleared ones included.
+    pub fn all(&self) -> impl Iterator<Item = &Alert> {
+        self.by_characteristic.values().flatten()
+    }
+
+    /// Alerts not yet cleared.
+    pub fn active(&self) -> impl Iterator<Item = &Alert> {
+        self.all().filter(|a| a.status != Status::Cleared)
+    }
+
+    pub fn get(&self, id: &str) -> Option<&Alert> {
+        self.all().find(|a| a.id == id)
+    }
+
+    /// Applies an event (the live book and the restart rebuild both come here).
+    pub fn apply(&mut self, alert_id: &str, characteristic: &str, event: &AlertEvent) {
+        let list = self
+            .by_characteristic
+            .entry(characteristic.to_string())
+            .or_default();
+        apply(list, alert_id, characteristic, event);
+    }
+
+    /// A rule fired. Returns the events to archive (a raise or a repeat).
+    pub fn fired(
+        &mut self,
+        characteristic: &str,
+        v: &Violation,
+        level: Level,
+        at: &str,
+        reaction_plan: Option<&str>,
+        now_ms: i64,
+    ) -> Vec<Event> {
+        let list = self
+            .by_characteristic
+            .entry(characteristic.to_string())
+            .or_default();
+        let event = match list
+            .iter()
+            .find(|a| a.rule == v.rule && a.status != Status::Cleared)
+        {
+            Some(a) => Event {
+                alert_id: a.id.clone(),
+                characteristic: characteristic.to_string(),
+                event: AlertEvent::Repeated {
+                    count: a.count + 1,
+                    at_ms: now_ms,
+                    message: v.message.clone(),
+                    points: v.points.clone(),
+                    statistic: v.statistic,
+                },
+            },
+            None => Event {
+                alert_id: format!("{characteristic}-{at}-{}", v.rule),
+                characteristic: characteristic.to_string(),
+                event: AlertEvent::Raised {
+                    rule: v.rule.clone(),
+                    severity: v.severity,
+                    message: v.message.clone(),
+                    level,
+                    points: v.points.clone(),
+                    statistic: v.statistic,
+                    limit: v.limit,
+                    reaction_plan: reaction_plan.map(str::to_string),
+                    at_ms: now_ms,
+                },
+            },
+        };
+        apply(list, &event.alert_id, characteristic, &event.event);
+        vec![event]
+    }
+
+    /// A check of `level` passed for `characteristic` except for the rules in `fired`: the
+    /// alerts of other rules at that level have their condition gone, and clear if their
+    /// policy allows.
+    pub fn checked(
+        &mut self,
+        characteristic: &str,
+        level: Level,
+        fired: &[&str],
+        policies: &Policies,
+        now_ms: i64,
+    ) -> Vec<Event> {
+        let Some(list) = self.by_characteristic.get_mut(characteristic) else {
+            return Vec::new();
+        };
+        let mut events = Vec::new();
+        for a in list.iter() {
+            if a.status == Status::Cleared || a.level != level || fired.contains(&a.rule.as_str()) {
+                continue;
+            }
+            let latch = policies.of(a.severity).acknowledge;
+            let ev = if a.status == Status::Acknowledged || !latch {
+                AlertEvent::Cleared { at_ms: now_ms }
+            } else if !a.gone {
+                AlertEvent::Gone { at_ms: now_ms }
+            } else {
+                continue;
+            };
+            events.push(Event {
+                alert_id: a.id.clone(),
+                characteristic: characteristic.to_string(),
+                event: ev,
+            });
+        }
+        for e in &events {
+            apply(list, &e.alert_id, characteristic, &e.event);
+        }
+        prune(list);
+        events
+    }
+
+    /// Acknowledges alert `target`, or every unacknowledged alert of the characteristic
+    /// `target`. An acknowledged alert whose condition is gone clears at once.
+    pub fn acknowledge(
+        &mut self,
+        target: &str,
+        by: &str,
+        note: Option<&str>,
+        now_ms: i64,
+    ) -> Result<Vec<Event>, AckError> {
+        if by.trim().is_empty() {
+            return Err(AckError::NoName);
+        }
+        let mut chosen: Vec<(String, String, bool)> = Vec::new();
+        if let Some(a) = self.get(target) {
+            match a.status {
+                Status::Cleared => return Err(AckError::Cleared(a.id.clone())),
+                Status::Acknowledged => {
+                    return Err(AckError::Already {
+                        id: a.id.clone(),
+                        by: a.ack.as_ref().map_or("someone".into(), |k| k.by.clone()),
+                    });
+                }
+                Status::Open => chosen.push((a.id.clone(), a.characteristic.clone(), a.gone)),
+            }
+        } else if let Some(list) = self.by_characteristic.get(target) {
+            chosen.extend(
+                list.iter()
+                    .filter(|a| a.status == Status::Open)
+                    .map(|a| (a.id.clone(), a.characteristic.clone(), a.gone)),
+            );
+            if chosen.is_empty() {
+                return Err(AckError::NothingOpen(target.to_string()));
+            }
+        } else {
+            return Err(AckError::Unknown(target.to_string()));
+        }
+        let mut events = Vec::new();
+        for (id, c, gone) in chosen {
+            events.push(Event {
+                alert_id: id.clone(),
+                characteristic: c.clone(),
+                event: AlertEvent::Acknowledged {
+                    by: by.trim().to_string(),
+                    note: note.map(str::to_string).filter(|n| !n.trim().is_empty()),
+                    at_ms: now_ms,
+                },
+            });
+            if gone {
+                events.push(Event {
+                    alert_id: id,
+                    characteristic: c,
+                    event: AlertEvent::Cleared { at_ms: now_ms },
+                });
+            }
+        }
+        for e in &events {
+            self.apply(&e.alert_id, &e.characteristic, &e.event);
+        }
+        Ok(events)
+    }
+
+    /// Escalates alerts left unacknowledged past their severity's time.
+    pub fn tick(&mut self, policies: &Policies, now_ms: i64) -> Vec<Event> {
+        let mut events = Vec::new();
+        for a in self.all() {
+            if a.status != Status::Open || a.escalated_ms.is_some() {
+                continue;
+            }
+            if let Some(after) = policies.of(a.severity).escalate_after_ms
+                && now_ms - a.raised_ms >= after
+            {
+                events.push(Event {
+                    alert_id: a.id.clone(),
+                    characteristic: a.characteristic.clone(),
+                    event: AlertEvent::Escalated { at_ms: now_ms },
+                });
+            }
+        }
+        for e in &events {
+            self.apply(&e.alert_id, &e.characteristic, &e.event);
+        }
+        events
+    }
+
+    /// Output `output` has delivered `version` of alert `id`.
+    pub fn delivered(&mut self, output: &str, id: &str, version: u32) -> Option<Event> {
+        let a = self.all().find(|a| a.id == id)?;
+        if a.delivered.get(output).is_some_and(|v| *v >= version) {
+            return None;
+        }
+        let e = Event {
+            alert_id: id.to_string(),
+            characteristic: a.characteristic.clone(),
+            event: AlertEvent::Delivered {
+                output: output.to_string(),
+                version,
+            },
+        };
+        self.apply(&e.alert_id, &e.characteristic, &e.event);
+        Some(e)
+    }
+}
+
+/// Applies one event to a characteristic's alert list.
+pub fn apply(list: &mut Vec<Alert>, id: &str, characteristic: &str, event: &AlertEvent) {
+    if let AlertEvent::Raised {
+        rule,
+        severity,
+        message,
+        level,
+        points,
+        statistic,
+        limit,
+        reaction_plan,
+        at_ms,
+    } = event
+    {
+        if list.iter().any(|a| a.id == id) {
+            return; // applied already (a checkpoint and the record after it)
+        }
+        list.push(Alert {
+            id: id.to_string(),
+            characteristic: characteristic.to_string(),
+            rule: rule.clone(),
+            severity: *severity,
+            level: *level,
+            message: message.clone(),
+            last_message: message.clone(),
+            points: points.clone(),
+            statistic: *statistic,
+            limit: *limit,
+            reaction_plan: reaction_plan.clone(),
+            raised_ms: *at_ms,
+            last_seen_ms: *at_ms,
+            count: 1,
+            status: Status::Open,
+            ack: None,
+            gone: false,
+            escalated_ms: None,
+            cleared_ms: None,
+            version: 1,
+            delivered: BTreeMap::new(),
+            last_event: "raised".into(),
+        });
+        return;
+    }
+    let Some(a) = list.iter_mut().find(|a| a.id == id) else {
+        return;
+    };
+    match event {
+        AlertEvent::Raised { .. } => {}
+        AlertEvent::Repeated {
+            count,
+            at_ms,
+            message,
+            points,
+            statistic,
+        } => {
+            a.count = *count;
+            a.last_seen_ms = *at_ms;
+            a.last_message = message.clone();
+            a.points = points.clone();
+            a.statistic = *statistic;
+            a.gone = false;
+            a.version += 1;
+            a.last_event = "repeated".into();
+        }
+        AlertEvent::Gone { .. } => {
+            a.gone = true;
+            a.version += 1;
+            a.last_event = "condition-gone".into();
+        }
+        AlertEvent::Acknowledged { by, note, at_ms } => {
+            a.status = Status::Acknowledged;
+            a.ack = Some(Ack {
+                by: by.clone(),
+                note: note.clone(),
+                at_ms: *at_ms,
+            });
+            a.version += 1;
+            a.last_event = "acknowledged".into();
+        }
+        AlertEvent::Cleared { at_ms } => {
+            a.status = Status::Cleared;
+            a.gone = true;
+            a.cleared_ms = Some(*at_ms);
+            a.version += 1;
+            a.last_event = "cleared".into();
+        }
+        AlertEvent::Escalated { at_ms } => {
+            a.escalated_ms = Some(*at_ms);
+            a.version += 1;
+            a.last_event = "escalated".into();
+        }
+        AlertEvent::Delivered { output, version } => {
+            let v = a.delivered.entry(output.clone()).or_insert(0);
+            *v = (*v).max(*version);
+        }
+    }
+    if matches!(event, AlertEvent::Cleared { .. }) {
+        prune(list);
+    }
+}
+
+/// Keeps at most [`KEEP_CLEARED`] cleared alerts, dropping the oldest.
+fn prune(list: &mut Vec<Alert>) {
+    let cleared = list.iter().filter(|a| a.status == Status::Cleared).count();
+    if cleared > KEEP_CLEARED {
+        let mut drop = cleared - KEEP_CLEARED;
+        list.retain(|a| {
+            if drop > 0 && a.status == Status::Cleared {
+                drop -= 1;
+                false
+            } else {
+                true
+            }
+        });
+    }
+}
+
+/// How a characteristic stands, for the status, the HMI and the stack light.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Standing {
+    /// No limits yet: collecting the baseline.
+    Learning,
+    InControl,
+    /// A warning or notice is active, or a stop alert has been acknowledged and is not over.
+    Warning,
+    /// A stop-level alert nobody has acknowledged.
+    Stopped,
+}
+
+impl Standing {
+    pub fn name(self) -> &'static str {
+        match self {
+            Standing::Learning => "learning",
+            Standing::InControl => "in-control",
+            Standing::Warning => "warning",
+            Standing::Stopped => "stopped",
+        }
+    }
+}
+
+/// The standing of a characteristic from its alerts.
+pub fn standing<'a>(alerts: impl Iterator<Item = &'a Alert>, learning: bool) -> Standing {
+    let mut s = if learning {
+        Standing::Learning
+    } else {
+        Standing::InControl
+    };
+    for a in alerts.filter(|a| a.status != Status::Cleared) {
+        let this = if a.severity == Severity::Stop && a.status == Status::Open {
+            Standing::Stopped
+        } else {
+            Standing::Warning
+        };
+        s = s.max(this);
+    }
+    s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn v(rule: &str, severity: Severity) -> Violation {
+        Violation {
+            rule: rule.into(),
+            severity,
+            message: format!("{rule} fired"),
+            points: vec![PointRef {
+                number: 1,
+                time_ms: 0,
+                value: 12.01,
+            }],
+            statistic: 12.01,
+            limit: 12.006,
+            side: None,
+        }
+    }
+
+    fn replay(events: &[Event]) -> Book {
+        let mut b = Book::default();
+        for e in events {
+            b.apply(&e.alert_id, &e.characteristic, &e.event);
+        }
+        b
+    }
+
+    #[test]
+    fn a_stop_alert_latches_until_acknowledged_and_gone() {
+        let p = Policies::default();
+        let mut b = Book::default();
+        let mut log = Vec::new();
+        let stop = v("beyond-limits", Severity::Stop);
+        log.extend(b.fired(
+            "bore",
+            &stop,
+            Level::Subgroup,
+            "7",
+            Some("check the insert"),
+            1000,
+        ));
+        let id = "bore-7-beyond-limits";
+        assert_eq!(b.get(id).unwrap().status, Status::Open);
+        log.extend(b.fired("bore", &stop, Level::Subgroup, "8", None, 2000));
+        assert_eq!(b.active().count(), 1, "a repeat is not a new alert");
+        assert_eq!(b.get(id).unwrap().count, 2);
+        log.extend(b.checked("bore", Level::Subgroup, &[], &p, 3000));
+        let a = b.get(id).unwrap();
+        assert!(a.gone && a.status == Status::Open, "latched: {a:?}");
+        assert_eq!(standing(b.all(), false), Standing::Stopped);
+        log.extend(
+            b.acknowledge("bore", "R. Tech", Some("insert changed"), 4000)
+                .unwrap(),
+        );
+        let a = b.get(id).unwrap();
+        assert_eq!(a.status, Status::Cleared, "acknowledged and gone: cleared");
+        assert_eq!(
+            a.ack.as_ref().unwrap().note.as_deref(),
+            Some("insert changed")
+        );
+        assert_eq!(standing(b.all(), false), Standing::InControl);
+        assert_eq!(replay(&log), b, "the archive rebuilds the same book");
+        assert_eq!(
+            b.acknowledge(id, "R. Tech", None, 5000),
+            Err(AckError::Cleared(id.into()))
+        );
+    }
+
+    #[test]
+    fn acknowledged_while_still_there_clears_when_gone() {
+        let p = Policies::default();
+        let mut b = Book::default();
+        b.fired(
+            "bore",
+            &v("one-side-run", Severity::Stop),
+            Level::Subgroup,
+            "9",
+            None,
+            0,
+        );
+        b.acknowledge("bore-9-one-side-run", "R. Tech", None, 10)
+            .unwrap();
+        assert_eq!(standing(b.all(), false), Standing::Warning);
+        assert!(matches!(
+            b.acknowledge("bore-9-one-side-run", "K. Lead", None, 11),
+            Err(AckError::Already { .. })
+        ));
+        b.fired(
+            "bore",
+            &v("one-side-run", Severity::Stop),
+            Level::Subgroup,
+            "10",
+            None,
+            20,
+        );
+        assert!(
+            b.checked("bore", Level::Subgroup, &["one-side-run"], &p, 20)
+                .is_empty()
+        );
+        let e = b.checked("bore", Level::Subgroup, &[], &p, 30);
+        assert!(matches!(e[0].event, AlertEvent::Cleared { .. }));
+        // A new firing after clearing is a new alert.
+        b.fired(
+            "bore",
+            &v("one-side-run", Severity::Stop),
+            Level::Subgroup,
+            "15",
+            None,
+            40,
+        );
+        assert_eq!(b.active().next().unwrap().id, "bore-15-one-side-run");
+    }
+
+    #[test]
+    fn warnings_clear_by_themselves_and_levels_stay_apart() {
+        let p = Policies::default();
+        let mut b = Book::default();
+        b.fired(
+            "bore",
+            &v("cluster", Severity::Warn),
+            Level::Subgroup,
+            "3",
+            None,
+            0,
+        );
+        b.fired(
+            "bore",
+            &v("outside-spec", Severity::Warn),
+            Level::Reading,
+            "r44",
+            None,
+            0,
+        );
+        // A reading passing clears the reading alert only.
+        b.checked("bore", Level::Reading, &[], &p, 5);
+        assert_eq!(
+            b.active().map(|a| a.rule.as_str()).collect::<Vec<_>>(),
+            ["cluster"]
+        );
+        b.checked("bore", Level::Subgroup, &[], &p, 6);
+        assert_eq!(b.active().count(), 0);
+    }
+
+    #[test]
+    fn escalation_happens_once_and_only_unacknowledged() {
+        let p = Policies::default();
+        let mut b = Book::default();
+        b.fired(
+            "bore",
+            &v("beyond-limits", Severity::Stop),
+            Level::Subgroup,
+            "1",
+            None,
+            0,
+        );
+        b.fired(
+            "face",
+            &v("beyond-limits", Severity::Stop),
+            Level::Subgroup,
+            "1",
+            None,
+            0,
+        );
+        b.acknowledge("face", "R. Tech", None, 60_000).unwrap();
+        assert!(b.tick(&p, 899_999).is_empty());
+        let e = b.tick(&p, 900_000);
+        assert_eq!(e.len(), 1);
+        assert_eq!(e[0].alert_id, "bore-1-beyond-limits");
+        assert!(b.tick(&p, 1_000_000).is_empty());
+    }
+
+    #[test]
+    fn acknowledgement_needs_a_name_and_a_known_target() {
+        let mut b = Book::default();
+        assert_eq!(b.acknowledge("x", "", None, 0), Err(AckError::NoName));
+        assert_eq!(
+            b.acknowledge("x", "R", None, 0),
+            Err(AckError::Unknown("x".into()))
+        );
+        b.fired(
+            "bore",
+            &v("cluster", Severity::Warn),
+            Level::Subgroup,
+            "1",
+            None,
+            0,
+        );
+        b.acknowledge("bore", "R", None, 1).unwrap();
+        assert_eq!(
+            b.acknowledge("bore", "R", None, 2),
+            Err(AckError::NothingOpen("bore".into()))
+        );
+    }
+
+    #[test]
+    fn deliveries_are_remembered_and_cleared_alerts_are_bounded() {
+        let p = Policies::default();
+        let mut b = Book::default();
+        for i in 0..(KEEP_CLEARED + 10) {
+            b.fired(
+                "bore",
+                &v("cluster", Severity::Warn),
+                Level::Subgroup,
+                &i.to_string(),
+                None,
+                0,
+            );
+            b.checked("bore", Level::Subgroup, &[], &p, 1);
+        }
+        assert_eq!(b.all().count(), KEEP_CLEARED);
+        let id = b.all().last().unwrap().id.clone();
+        assert!(b.delivered("hmi", &id, 3).is_some());
+        assert!(
+            b.delivered("hmi", &id, 2).is_none(),
+            "older versions are already covered"
+        );
+        assert_eq!(b.get(&id).unwrap().delivered["hmi"], 3);
+    }
+}

@@ -1,0 +1,265 @@
+//! The MQTT output, under the configured prefix (default `linewarden`):
+//!
+//! * `<prefix>/alerts/<characteristic>/<alert id>` — every alert event (QoS 1): the alert as
+//!   it now stands, with `version` and `event` (raised, repeated, condition-gone,
+//!   acknowledged, cleared, escalated). A version is published once; a restart publishes
+//!   again only what the archive does not record as delivered (the broker's PUBACK).
+//! * `<prefix>/characteristics/<id>/state` — retained: in-control / warning / stopped /
+//!   learning, the last subgroup, the active alerts.
+//! * `<prefix>/status` — retained: online, then stopped; "offline" as the last will.
+//! * `<prefix>/command/ack` — acknowledgements from an HMI: `{"alert": "<id or
+//!   characteristic>", "by": "<name>", "note": "..."}`; the answer goes to
+//!   `<prefix>/command/result`.
+
+use std::collections::{HashMap, VecDeque};
+use std::time::Duration;
+
+use rumqttc::{AsyncClient, Event, LastWill, Outgoing, Packet, QoS};
+use serde::Deserialize;
+use tokio::sync::{mpsc, oneshot};
+
+use super::{Feeds, Ledger};
+use crate::config::{Broker, Output};
+use crate::daemon::hub::Request;
+use crate::daemon::now_ms;
+
+/// What the event loop task tells the output loop.
+enum Heard {
+    Connected,
+    Lost(String),
+    Sent(u16),
+    Acked(u16),
+    Command(Vec<u8>),
+}
+
+#[derive(Deserialize)]
+struct AckCommand {
+    alert: String,
+    by: String,
+    #[serde(default)]
+    note: Option<String>,
+}
+
+/// An alert as published: everything but the delivery bookkeeping.
+pub fn alert_payload(a: &crate::alerts::Alert) -> String {
+    let mut v = serde_json::to_value(a).unwrap_or_default();
+    if let Some(m) = v.as_object_mut() {
+        m.remove("delivered");
+        m.insert("alert_id".into(), serde_json::Value::String(a.id.clone()));
+        m.remove("id");
+        m.insert(
+            "event".into(),
+            serde_json::Value::String(a.last_event.clone()),
+        );
+        m.remove("last_event");
+    }
+    v.to_string()
+}
+
+pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
+    let mut opts = match crate::daemon::mqtt::options(&broker, false) {
+        Ok(o) => o,
+        Err(e) => {
+            tracing::error!("cannot set up the connection to {}: {e}", broker.url());
+            return;
+        }
+    };
+    let status_topic = format!("{prefix}/status");
+    let command_topic = format!("{prefix}/command/ack");
+    let result_topic = format!("{prefix}/command/result");
+    opts.set_last_will(LastWill::new(
+        &status_topic,
+        r#"{"state":"offline"}"#,
+        QoS::AtLeastOnce,
+        true,
+    ));
+    let (client, mut eventloop) = AsyncClient::new(opts, 1024);
+    let (heard_tx, mut heard) = mpsc::unbounded_channel::<Heard>();
+    let cmd = command_topic.clone();
+    let poller = tokio::spawn(async move {
+        let mut backoff = Duration::from_millis(250);
+        loop {
+            match eventloop.poll().await {
+                Ok(Event::Incoming(Packet::ConnAck(_))) => {
+                    backoff = Duration::from_millis(250);
+                    if heard_tx.send(Heard::Connected).is_err() {
+                        break;
+                    }
+                }
+                Ok(Event::Incoming(Packet::PubAck(a))) => {
+                    let _ = heard_tx.send(Heard::Acked(a.pkid));
+                }
+                Ok(Event::Incoming(Packet::Publish(p))) if p.topic == cmd => {
+                    let _ = heard_tx.send(Heard::Command(p.payload.to_vec()));
+                }
+                Ok(Event::Outgoing(Outgoing::Publish(pkid))) => {
+                    let _ = heard_tx.send(Heard::Sent(pkid));
+                }
+                Ok(Event::Outgoing(Outgoing::Disconnect)) => break,
+                Ok(_) => {}
+                Err(e) => {
+                    if heard_tx.send(Heard::Lost(e.to_string())).is_err() {
+                        break;
+                    }
+                    tokio::time::sleep(backoff).await;
+                    backoff = (backoff * 2).min(Duration::from_secs(30));
+                }
+            }
+        }
+    });
+    let mut ledger = Ledger::new(&o.id);
+    // In publish order: the alert and version each QoS 1 publish carries (None: a state).
+    let mut tokens: VecDeque<Option<(String, u32)>> = VecDeque::new();
+    let mut inflight: HashMap<u16, Option<(String, u32)>> = HashMap::new();
+    // The latest version handed to the client per alert (not yet acknowledged, perhaps).
+    let mut handed: HashMap<String, u32> = HashMap::new();
+    let mut published_states: HashMap<String, String> = HashMap::new();
+    let mut connected = false;
+    let mut down_since: Option<tokio::time::Instant> = None;
+    let started = now_ms();
+    tracing::info!("connecting to {} as {}", broker.url(), broker.client_id);
+    let mut alerts_due = true;
+    let mut states_due = true;
+    loop {
+        if alerts_due {
+            alerts_due = false;
+            let view = f.alerts.borrow_and_update().clone();
+            for a in view.for_output(o.min_severity, o.escalation) {
+                if ledger.delivered(a) >= a.version
+                    || handed.get(&a.id).is_some_and(|v| *v >= a.version)
+                {
+                    continue;
+                }
+                let topic = format!("{prefix}/alerts/{}/{}", a.characteristic, a.id);
+                if client
+                    .publish(topic, QoS::AtLeastOnce, false, alert_payload(a))
+                    .await
+                    .is_err()
+                {
+                    break;
+                }
+                tokens.push_back(Some((a.id.clone(), a.version)));
+                handed.insert(a.id.clone(), a.version);
+            }
+        }
+        if states_due {
+            states_due = false;
+            let states = f.states.borrow_and_update().clone();
+            for (id, s) in states.iter() {
+                let text = serde_json::to_string(s).unwrap_or_default();
+                if published_states.get(id) == Some(&text) {
+                    continue;
+                }
+                let topic = format!("{prefix}/characteristics/{id}/state");
+                if client
+                    .publish(topic, QoS::AtLeastOnce, true, text.clone())
+                    .await
+                    .is_err()
+                {
+                    break;
+                }
+                tokens.push_back(None);
+                published_states.insert(id.clone(), text);
+            }
+        }
+        tokio::select! {
+            h = heard.recv() => match h {
+                Some(Heard::Connected) => {
+                    match down_since.take() {
+                        Some(t) => tracing::warn!("connected to {} again after {:.1} s; undelivered alerts go out now", broker.url(), t.elapsed().as_secs_f64()),
+                        None => tracing::info!("connected to {}", broker.url()),
+                    }
+                    connected = true;
+                    let status = serde_json::json!({"state": "online", "version": env!("CARGO_PKG_VERSION"), "since_ms": started});
+                    if client.try_publish(&status_topic, QoS::AtLeastOnce, true, status.to_string()).is_ok() {
+                        tokens.push_back(None);
+                    }
+                    let _ = client.try_subscribe(&command_topic, QoS::AtLeastOnce);
+                    // A broker that lost its retained messages gets them again.
+                    published_states.clear();
+                    states_due = true;
+                }
+                Some(Heard::Lost(e)) => {
+                    if connected || down_since.is_none() {
+                        tracing::warn!("lost the broker {}: {e}; alerts wait and go out when it is back", broker.url());
+                        down_since.get_or_insert_with(tokio::time::Instant::now);
+                    }
+                    connected = false;
+                }
+                Some(Heard::Sent(pkid)) => {
+                    // A retransmission keeps its packet id; a new publish takes the next token.
+                    if pkid != 0
+                        && !inflight.contains_key(&pkid)
+                        && let Some(t) = tokens.pop_front()
+                    {
+                        inflight.insert(pkid, t);
+                    }
+                }
+                Some(Heard::Acked(pkid)) => {
+                    if let Some(Some((id, version))) = inflight.remove(&pkid) {
+                        ledger.mark(&id, version, &f.delivered).await;
+                    }
+                }
+                Some(Heard::Command(payload)) => {
+                    let client = client.clone();
+                    let requests = f.requests.clone();
+                    let result_topic = result_topic.clone();
+                    tokio::spawn(async move {
+                        let answer = match serde_json::from_slice::<AckCommand>(&payload) {
+                            Ok(c) => {
+                                let (tx, rx) = oneshot::channel();
+                                let req = Request::Ack { target: c.alert.clone(), by: c.by, note: c.note, via: "MQTT".into(), reply: tx };
+                                if requests.send(req).await.is_err() {
+                                    serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"})
+                                } else {
+                                    match rx.await {
+                                        Ok(r) => {
+                                            let mut v = crate::daemon::control::ack_json(&r);
+                                            v["alert"] = serde_json::Value::String(c.alert);
+                                            v
+                                        }
+                                        Err(_) => serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"}),
+                                    }
+                                }
+                            }
+                            Err(e) => serde_json::json!({"ok": false, "error": format!("not an acknowledgement ({e}); send {{\"alert\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}")}),
+                        };
+                        let _ = client.publish(result_topic, QoS::AtLeastOnce, false, answer.to_string()).await;
+                    });
+                }
+                None => break,
+            },
+            r = f.alerts.changed() => { if r.is_err() { break } alerts_due = true; }
+            r = f.states.changed() => { if r.is_err() { break } states_due = true; }
+            _ = f.shutdown.changed() => break,
+        }
+    }
+    let _ = tokio::time::timeout(Duration::from_secs(2), async {
+        let status = serde_json::json!({"state": "stopped", "since_ms": now_ms()});
+        let _ = client
+            .publish(&status_topic, QoS::AtLeastOnce, true, status.to_string())
+            .await;
+        tokens.push_back(None);
+        // Acknowledgements that arrive now are still archived as deliveries.
+        let deadline = tokio::time::Instant::now() + Duration::from_millis(1500);
+        while !inflight.is_empty() || !tokens.is_empty() {
+            match tokio::time::timeout_at(deadline, heard.recv()).await {
+                Ok(Some(Heard::Sent(pkid))) if pkid != 0 && !inflight.contains_key(&pkid) => {
+                    if let Some(t) = tokens.pop_front() {
+                        inflight.insert(pkid, t);
+                    }
+                }
+                Ok(Some(Heard::Acked(pkid))) => {
+                    if let Some(Some((id, version))) = inflight.remove(&pkid) {
+                        ledger.mark(&id, version, &f.delivered).await;
+                    }
+                }
+                Ok(Some(_)) => {}
+                _ => break,
+            }
+        }
+        let _ = client.disconnect().await;
+        let _ = poller.await;
+    })
+    .await;
+}
