@@ -16,6 +16,9 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
     let mut cfg = config::load(&root.join("config/demo.toml")).unwrap();
     let dir = tempfile::tempdir().unwrap();
     cfg.archive_dir = dir.path().join("archive");
+    if let Some(c) = &mut cfg.control {
+        c.socket = dir.path().join("control.sock");
+    }
     for c in &mut cfg.characteristics {
         // The characteristics that learn write under target/demo; an earlier demo run may have
         // left learned limits there. Start them afresh in the temporary directory.

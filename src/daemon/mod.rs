@@ -757,7 +757,7 @@ fn log_alert(
                 severity = severity.name(),
                 "ALERT {} {id}: {message} (recent values: {values}).{}{}",
                 severity.name().to_uppercase(),
-                reaction_plan.as_ref().map(|p| format!(" Reaction plan: {p}.")).unwrap_or_default(),
+                reaction_plan.as_ref().map(|p| format!(" Reaction plan: {}.", p.trim_end_matches('.'))).unwrap_or_default(),
                 if latch(*severity) {
                     format!(" Acknowledge with: linewarden ack {id} --by NAME")
                 } else {
