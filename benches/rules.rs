@@ -103,5 +103,11 @@ fn bench(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, bench);
+// Plots off: criterion's charts would need fonts registered with plotters, which this crate
+// builds with ab_glyph for its own alert charts.
+criterion_group! {
+    name = benches;
+    config = Criterion::default().without_plots();
+    targets = bench
+}
 criterion_main!(benches);

@@ -17,7 +17,7 @@ use crate::archive::record::AlertEvent;
 use crate::rules::{PointRef, Severity, Violation};
 
 /// Cleared alerts kept per characteristic (for status and for deliveries still pending).
-pub const KEEP_CLEARED: usize = 50;
+pub const KEEP_CLEARED: usize = 10;
 
 /// Where an alert is in its life.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

@@ -355,69 +355,85 @@ pub async fn run(
         progress.store(now_ms(), std::sync::atomic::Ordering::Relaxed);
         let mut health_changed = false;
         tokio::select! {
-            ev = rx.recv() => match ev {
-                Some(SourceEvent::Reading(inc)) => match engine.check(&inc) {
-                    Ok(()) => {
-                        let seq = archive.append_seq(vec![inc.record()]).await?;
-                        summary.accepted += 1;
-                        if let Some(h) = health.get_mut(&inc.source) {
-                            h.readings += 1;
-                            h.last_reading_ms = Some(inc.arrival_ms);
+            ev = rx.recv() => {
+                let Some(first) = ev else { break "every source has stopped".to_string() };
+                // Take what else is waiting (up to BATCH events) and archive consecutive
+                // accepted readings with one append: one round trip to the writer per batch.
+                let mut batch = vec![first];
+                while batch.len() < BATCH {
+                    match rx.try_recv() {
+                        Ok(e) => batch.push(e),
+                        Err(_) => break,
+                    }
+                }
+                let mut accepted: Vec<Incoming> = Vec::new();
+                let mut stop: Option<String> = None;
+                for ev in batch {
+                    if let SourceEvent::Reading(inc) = &ev
+                        && engine.check(inc).is_ok()
+                    {
+                        let SourceEvent::Reading(inc) = ev else { unreachable!() };
+                        accepted.push(inc);
+                        continue;
+                    }
+                    take_readings(&archive, &cfg, &mut engine, &mut accepted, &mut health, &mut summary, &mut fx).await?;
+                    match ev {
+                        SourceEvent::Reading(inc) => {
+                            let reason = engine.check(&inc).err().unwrap_or_default();
+                            summary.rejected += 1;
+                            if let Some(h) = health.get_mut(&inc.source) {
+                                h.rejected += 1;
+                            }
+                            reject(&mut rejected_logged, &inc.source, &inc.value.to_string(), &reason);
+                            archive.append(vec![Record::ReadingRejected {
+                                source: inc.source.clone(),
+                                characteristic: Some(inc.characteristic.clone()),
+                                raw: inc.value.to_string(),
+                                reason,
+                                arrival_ms: inc.arrival_ms,
+                            }]).await?;
                         }
-                        let out = engine.accept(seq, &inc);
-                        carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
-                    }
-                    Err(reason) => {
-                        summary.rejected += 1;
-                        if let Some(h) = health.get_mut(&inc.source) {
-                            h.rejected += 1;
+                        SourceEvent::Unreadable { source, characteristic, raw, reason } => {
+                            summary.rejected += 1;
+                            if let Some(h) = health.get_mut(&source) {
+                                h.rejected += 1;
+                            }
+                            reject(&mut rejected_logged, &source, &raw, &reason);
+                            archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms() }]).await?;
                         }
-                        reject(&mut rejected_logged, &inc.source, &inc.value.to_string(), &reason);
-                        archive.append(vec![Record::ReadingRejected {
-                            source: inc.source.clone(),
-                            characteristic: Some(inc.characteristic.clone()),
-                            raw: inc.value.to_string(),
-                            reason,
-                            arrival_ms: inc.arrival_ms,
-                        }]).await?;
-                    }
-                },
-                Some(SourceEvent::Unreadable { source, characteristic, raw, reason }) => {
-                    summary.rejected += 1;
-                    if let Some(h) = health.get_mut(&source) {
-                        h.rejected += 1;
-                    }
-                    reject(&mut rejected_logged, &source, &raw, &reason);
-                    archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms() }]).await?;
-                }
-                Some(SourceEvent::Barrier(done)) => {
-                    archive.flush().await?;
-                    let _ = done.send(());
-                }
-                Some(SourceEvent::Health { source, up, detail }) => {
-                    if let Some(h) = health.get_mut(&source) {
-                        let state = if up { "up" } else { "down" };
-                        if h.state != state {
-                            h.state = state.into();
-                            h.since_ms = now_ms();
-                            health_changed = true;
+                        SourceEvent::Barrier(done) => {
+                            archive.flush().await?;
+                            let _ = done.send(());
                         }
-                        h.detail = detail;
+                        SourceEvent::Health { source, up, detail } => {
+                            if let Some(h) = health.get_mut(&source) {
+                                let state = if up { "up" } else { "down" };
+                                if h.state != state {
+                                    h.state = state.into();
+                                    h.since_ms = now_ms();
+                                    health_changed = true;
+                                }
+                                h.detail = detail;
+                            }
+                        }
+                        SourceEvent::Ended { source } => {
+                            ended += 1;
+                            if let Some(h) = health.get_mut(&source) {
+                                h.state = "ended".into();
+                                h.since_ms = now_ms();
+                                health_changed = true;
+                            }
+                            tracing::info!(component = "daemon", "source {source} has ended");
+                            if ended == sources {
+                                stop = Some("every source has ended".to_string());
+                            }
+                        }
                     }
                 }
-                Some(SourceEvent::Ended { source }) => {
-                    ended += 1;
-                    if let Some(h) = health.get_mut(&source) {
-                        h.state = "ended".into();
-                        h.since_ms = now_ms();
-                        health_changed = true;
-                    }
-                    tracing::info!(component = "daemon", "source {source} has ended");
-                    if ended == sources {
-                        break "every source has ended".to_string();
-                    }
+                take_readings(&archive, &cfg, &mut engine, &mut accepted, &mut health, &mut summary, &mut fx).await?;
+                if let Some(reason) = stop {
+                    break reason;
                 }
-                None => break "every source has stopped".to_string(),
             },
             Some(req) = req_rx.recv() => match req {
                 hub::Request::Ack { target, by, note, via, reply } => {
@@ -567,6 +583,38 @@ pub async fn run(
         Err(_) => return Err(DaemonError::LateWriter(deadline)),
     }
     Ok(summary)
+}
+
+/// Events taken from the source queue in one turn of the engine loop at most.
+const BATCH: usize = 512;
+
+/// Archives `accepted` readings with one append, then hands each to the engine with its
+/// sequence number and carries out what it decides.
+async fn take_readings(
+    archive: &ArchiveHandle,
+    cfg: &Config,
+    engine: &mut Engine,
+    accepted: &mut Vec<Incoming>,
+    health: &mut std::collections::BTreeMap<String, hub::SourceHealth>,
+    summary: &mut Summary,
+    fx: &mut Effects,
+) -> Result<(), DaemonError> {
+    if accepted.is_empty() {
+        return Ok(());
+    }
+    let records = accepted.iter().map(Incoming::record).collect();
+    let last = archive.append_seq(records).await?;
+    let first = last + 1 - accepted.len() as u64;
+    let mut out = Vec::new();
+    for (k, inc) in accepted.drain(..).enumerate() {
+        summary.accepted += 1;
+        if let Some(h) = health.get_mut(&inc.source) {
+            h.readings += 1;
+            h.last_reading_ms = Some(inc.arrival_ms);
+        }
+        out.extend(engine.accept(first + k as u64, &inc));
+    }
+    carry_out(archive, cfg, out, summary, fx).await
 }
 
 /// Source keys the archive already holds for reports left in `processing/` by a crash (their

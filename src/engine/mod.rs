@@ -108,7 +108,11 @@ fn alert_record(e: crate::alerts::Event) -> Output {
 }
 
 /// Subgroups between saved engine states (and at every learning subgroup).
-pub const SAVE_EVERY: u64 = 10;
+/// A restart replays the subgroups after the last saved state from the archive's tail, so this
+/// must stay within the tail's 30 subgroups; the state is a JSON value, the costliest thing the
+/// engine does per subgroup, so it is not saved more often than needed.
+pub const SAVE_EVERY: u64 = 25;
+const _: () = assert!(SAVE_EVERY < 30);
 
 /// What one characteristic saves in the archive to resume after a restart.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

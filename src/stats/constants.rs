@@ -80,6 +80,15 @@ pub fn factors(n: usize) -> Result<&'static Factors, StatsError> {
     Ok(CACHE[n].get_or_init(|| compute(n)))
 }
 
+/// The factors for subgroup size `n`, computed afresh (no cache): what the first use of each
+/// size costs.
+pub fn factors_uncached(n: usize) -> Result<Factors, StatsError> {
+    if !(MIN_SIZE..=MAX_SIZE).contains(&n) {
+        return Err(StatsError::SubgroupSizeOutOfRange { n });
+    }
+    Ok(compute(n))
+}
+
 fn compute(n: usize) -> Factors {
     let (d2, d3) = range_moments(n);
     let c4 = c4(n);

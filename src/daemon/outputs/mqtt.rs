@@ -40,17 +40,21 @@ struct AckCommand {
     note: Option<String>,
 }
 
-/// An alert as published: everything but the delivery bookkeeping.
-pub fn alert_payload(a: &crate::alerts::Alert) -> String {
+/// An alert as published: everything but the delivery bookkeeping. `first` says this is the
+/// first this subscriber hears of it: the event is then "raised" whatever happened since (a
+/// repeat in the same subgroup, say), with the count telling the rest.
+pub fn alert_payload(a: &crate::alerts::Alert, first: bool) -> String {
     let mut v = serde_json::to_value(a).unwrap_or_default();
     if let Some(m) = v.as_object_mut() {
         m.remove("delivered");
         m.insert("alert_id".into(), serde_json::Value::String(a.id.clone()));
         m.remove("id");
-        m.insert(
-            "event".into(),
-            serde_json::Value::String(a.last_event.clone()),
-        );
+        let event = if first && a.status != crate::alerts::Status::Cleared {
+            "raised".to_string()
+        } else {
+            a.last_event.clone()
+        };
+        m.insert("event".into(), serde_json::Value::String(event));
         m.remove("last_event");
     }
     v.to_string()
@@ -131,8 +135,9 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
                     continue;
                 }
                 let topic = format!("{prefix}/alerts/{}/{}", a.characteristic, a.id);
+                let first = ledger.delivered(a) == 0 && !handed.contains_key(&a.id);
                 if client
-                    .publish(topic, QoS::AtLeastOnce, false, alert_payload(a))
+                    .publish(topic, QoS::AtLeastOnce, false, alert_payload(a, first))
                     .await
                     .is_err()
                 {
