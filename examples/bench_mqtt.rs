@@ -151,7 +151,7 @@ async fn main() {
                 let n = counts.entry(ch).or_insert(0);
                 *n += 1;
                 // Skip the first subgroups of a characteristic, then one in 50 is far out.
-                let bad = *n > 10 && *n % 50 == 0;
+                let bad = *n > 10 && (*n).is_multiple_of(50);
                 let v = if bad { 10.2 } else { value(i) };
                 let payload = format!(r#"{{"v": {v:.5}, "part": "p{i}"}}"#);
                 if bad {
