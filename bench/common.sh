@@ -32,7 +32,7 @@ start_daemon() {
 }
 # The readings the running daemon has taken from the bench source.
 readings() {
-    "$LW" status --socket "$WORK/cell/control.sock" --json 2>/dev/null \
+    "$LW" status --brief --socket "$WORK/cell/control.sock" --json 2>/dev/null \
         | python3 -c 'import json,sys; d=json.load(sys.stdin); print(sum(s["readings"] for s in d["sources"]))' 2>/dev/null || echo 0
 }
 now() { date +%s.%N; }

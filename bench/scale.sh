@@ -6,7 +6,7 @@ source "$(dirname "$0")/common.sh"
 N="${1:-200000}"
 start_broker
 echo "machine: $(nproc) cores, $(uname -r); $N readings, nelson + EWMA + CUSUM, subgroups of 5"
-for C in 100 1000 10000; do
+for C in ${CHARS:-100 1000 10000}; do
     rm -rf "$WORK/cell"; python3 bench/make_cell.py "$WORK/cell" "$C" "$PORT" --rules nelson --size 5
     start_daemon
     idle=$(awk '/VmRSS/ {print $2}' /proc/$DAEMON/status)

@@ -176,13 +176,15 @@ pub enum AckError {
 /// Every alert of a cell, by characteristic.
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
 pub struct Book {
-    pub by_characteristic: BTreeMap<String, Vec<Alert>>,
+    /// Shared lists: a snapshot of the book for the outputs copies pointers, and a list is
+    /// copied only when it changes while a snapshot holds it.
+    pub by_characteristic: BTreeMap<String, std::sync::Arc<Vec<Alert>>>,
 }
 
 impl Book {
     /// Every alert, cleared ones included.
     pub fn all(&self) -> impl Iterator<Item = &Alert> {
-        self.by_characteristic.values().flatten()
+        self.by_characteristic.values().flat_map(|l| l.iter())
     }
 
     /// Alerts not yet cleared.
@@ -200,7 +202,12 @@ impl Book {
             .by_characteristic
             .entry(characteristic.to_string())
             .or_default();
-        apply(list, alert_id, characteristic, event);
+        apply(
+            std::sync::Arc::make_mut(list),
+            alert_id,
+            characteristic,
+            event,
+        );
     }
 
     /// A rule fired. Returns the events to archive (a raise or a repeat).
@@ -213,10 +220,11 @@ impl Book {
         reaction_plan: Option<&str>,
         now_ms: i64,
     ) -> Vec<Event> {
-        let list = self
-            .by_characteristic
-            .entry(characteristic.to_string())
-            .or_default();
+        let list = std::sync::Arc::make_mut(
+            self.by_characteristic
+                .entry(characteristic.to_string())
+                .or_default(),
+        );
         let event = match list
             .iter()
             .find(|a| a.rule == v.rule && a.status != Status::Cleared)
@@ -285,10 +293,13 @@ impl Book {
                 event: ev,
             });
         }
-        for e in &events {
-            apply(list, &e.alert_id, characteristic, &e.event);
+        if !events.is_empty() {
+            let list = std::sync::Arc::make_mut(list);
+            for e in &events {
+                apply(list, &e.alert_id, characteristic, &e.event);
+            }
+            prune(list);
         }
-        prune(list);
         events
     }
 

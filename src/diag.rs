@@ -46,19 +46,26 @@ impl fmt::Display for Problems {
 /// Finds the text position of TOML paths in one document.
 pub struct Locator<'a> {
     text: &'a str,
-    root: Option<DeTable<'a>>,
+    /// The document with spans, parsed only when a problem has to be located (a valid file,
+    /// the usual case, is parsed once, by serde).
+    root: std::cell::OnceCell<Option<DeTable<'a>>>,
 }
 
 impl<'a> Locator<'a> {
     /// Indexes `text`. A document that does not parse still gives positions (of line 1).
     pub fn new(text: &'a str) -> Self {
-        let root = DeTable::parse(text).ok().map(|t| t.into_inner());
-        Locator { text, root }
+        Locator {
+            text,
+            root: std::cell::OnceCell::new(),
+        }
     }
 
     /// The byte span of `path`, or of its deepest ancestor present in the text.
     pub fn span(&self, path: &str) -> Range<usize> {
-        let Some(root) = &self.root else {
+        let root = self
+            .root
+            .get_or_init(|| DeTable::parse(self.text).ok().map(|t| t.into_inner()));
+        let Some(root) = root else {
             return 0..0;
         };
         let mut best = 0..0;

@@ -57,6 +57,9 @@ enum Command {
         /// Print the daemon's JSON answer.
         #[arg(long)]
         json: bool,
+        /// Only the light, the archive, the sources and the alerts, not every characteristic.
+        #[arg(long)]
+        brief: bool,
     },
     /// Acknowledge an alert (or every unacknowledged alert of a characteristic).
     Ack {
@@ -297,7 +300,7 @@ fn main() -> ExitCode {
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),
         Command::Run { config } => run_cmd(&config),
-        Command::Status { to, json } => status_cmd(&to, json),
+        Command::Status { to, json, brief } => status_cmd(&to, json, brief),
         Command::Ack {
             alert,
             by,
@@ -927,9 +930,9 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
     Ok(())
 }
 
-fn status_cmd(to: &DaemonArgs, json: bool) -> Result<()> {
+fn status_cmd(to: &DaemonArgs, json: bool, brief: bool) -> Result<()> {
     use linewarden::daemon::control::{ClientRequest, ask};
-    let v = ask(&to.socket()?, &ClientRequest::Status).map_err(anyhow::Error::msg)?;
+    let v = ask(&to.socket()?, &ClientRequest::Status { brief }).map_err(anyhow::Error::msg)?;
     if json {
         println!("{}", serde_json::to_string_pretty(&v)?);
         return Ok(());

@@ -259,6 +259,19 @@ fn mqtt_alerts_survive_a_broker_outage_and_are_acknowledged_from_the_hmi() {
     assert_eq!(a["reaction_plan"], "Check the boring insert for wear");
     let (ok, _, err) = cli(&["ack", ALERT, "--by", "K. Lead", "--socket", &sock(d)]);
     assert!(!ok && err.contains("already cleared"), "{err}");
+    wait_until(
+        "the retained state back in control",
+        Duration::from_secs(10),
+        || {
+            inbox
+                .lock()
+                .unwrap()
+                .iter()
+                .rev()
+                .find(|(t, _, _)| t == "cell4/linewarden/characteristics/bore/state")
+                .is_some_and(|(_, p, _)| json(p)["state"] == "in-control")
+        },
+    );
     daemon.stop();
     wait_until("the stopped status", Duration::from_secs(10), || {
         inbox

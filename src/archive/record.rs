@@ -77,6 +77,39 @@ pub enum AlertEvent {
     },
 }
 
+/// A characteristic's saved engine state, kept as JSON text (a parsed JSON tree would take
+/// several times the memory, for every characteristic, in every tail and checkpoint). Stored
+/// as a string; a record that holds the state as a JSON object reads as well.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StateText(pub String);
+
+impl Serialize for StateText {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&self.0)
+    }
+}
+
+impl<'de> Deserialize<'de> for StateText {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        Ok(match serde_json::Value::deserialize(d)? {
+            serde_json::Value::String(s) => StateText(s),
+            other => StateText(other.to_string()),
+        })
+    }
+}
+
+impl StateText {
+    /// The state of `value`, as JSON text.
+    pub fn of<T: Serialize>(value: &T) -> Self {
+        StateText(serde_json::to_string(value).unwrap_or_else(|_| "null".into()))
+    }
+
+    /// The state read back.
+    pub fn read<T: serde::de::DeserializeOwned>(&self) -> Option<T> {
+        serde_json::from_str(&self.0).ok()
+    }
+}
+
 /// One subgroup as it was plotted, in brief: enough to redraw a chart and rebuild rules.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct SubgroupSummary {
@@ -108,7 +141,7 @@ pub struct CharacteristicTail {
     pub pending: std::collections::VecDeque<PendingReading>,
     /// The engine's last saved state and the sequence number it was saved at.
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub engine: Option<(u64, serde_json::Value)>,
+    pub engine: Option<(u64, StateText)>,
     /// The characteristic's alerts that are not cleared, and the last few cleared ones.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub alerts: Vec<crate::alerts::Alert>,
@@ -199,7 +232,7 @@ pub enum Record {
     /// The engine's state for one characteristic, saved so a restart resumes its rules.
     EngineState {
         characteristic: String,
-        state: serde_json::Value,
+        state: StateText,
     },
     /// Written by the archive itself at the start of every segment: the recent state of every
     /// characteristic, so a restart reads back only from the newest checkpoint.

@@ -17,7 +17,11 @@ use crate::config::Control;
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "request", rename_all = "kebab-case")]
 pub enum ClientRequest {
-    Status,
+    Status {
+        /// Sources, the light and the alerts, without every characteristic.
+        #[serde(default)]
+        brief: bool,
+    },
     Ack {
         alert: String,
         by: String,
@@ -119,9 +123,13 @@ async fn answer(stream: tokio::net::UnixStream, requests: mpsc::Sender<Request>)
 async fn handle(req: ClientRequest, requests: &mpsc::Sender<Request>) -> serde_json::Value {
     let gone = || serde_json::json!({"ok": false, "error": "the daemon is stopping"});
     match req {
-        ClientRequest::Status => {
+        ClientRequest::Status { brief } => {
             let (tx, rx) = oneshot::channel();
-            if requests.send(Request::Status(tx)).await.is_err() {
+            if requests
+                .send(Request::Status { brief, reply: tx })
+                .await
+                .is_err()
+            {
                 return gone();
             }
             match rx.await {

@@ -34,7 +34,7 @@ pub struct SourceHealth {
 pub struct AlertsView {
     pub book: Book,
     /// The characteristics that have alerts, as they stood when the alerts last changed.
-    pub characteristics: BTreeMap<String, CharView>,
+    pub characteristics: BTreeMap<String, Arc<CharView>>,
     /// Bumped every time; outputs compare it.
     pub generation: u64,
 }
@@ -74,7 +74,7 @@ impl StateView {
                 .by_characteristic
                 .get(&c.id)
                 .into_iter()
-                .flatten()
+                .flat_map(|l| l.iter())
                 .filter(|a| a.status != Status::Cleared)
                 .map(|a| a.id.clone())
                 .collect(),
@@ -144,7 +144,11 @@ pub struct Delivery {
 /// A question for the engine task, with where the answer goes.
 #[derive(Debug)]
 pub enum Request {
-    Status(oneshot::Sender<StatusReport>),
+    /// `brief`: leave out the characteristics (a cell of 10,000 has a big answer).
+    Status {
+        brief: bool,
+        reply: oneshot::Sender<StatusReport>,
+    },
     Ack {
         target: String,
         by: String,

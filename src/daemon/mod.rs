@@ -101,6 +101,8 @@ struct Effects {
     alerts_changed: bool,
     /// Characteristics whose retained state may have changed.
     dirty: std::collections::BTreeSet<String>,
+    /// Characteristics whose alerts changed.
+    alert_chars: std::collections::BTreeSet<String>,
 }
 
 /// Runs the daemon until `shutdown` turns true or every source has ended. Each message on
@@ -147,6 +149,8 @@ pub async fn run(
         .await?;
     let mut fx = Effects::default();
     carry_out(&archive, &cfg, engine.restore(&tail), &mut summary, &mut fx).await?;
+    drop(tail);
+    crate::fsutil::release_memory();
 
     let progress = std::sync::Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
     // The outputs and the control socket: they outlive the sources, so that the last light
@@ -319,21 +323,41 @@ pub async fn run(
         h.values().all(|s| s.state == "up" || s.state == "ended")
     };
     let mut generation = 0u64;
-    let publish_alerts = |engine: &Engine, generation: &mut u64| {
+    // The characteristics that have alerts, as they stood when their alerts last changed
+    // (for the charts in emails); refreshed only for the ones that changed.
+    let mut alert_views: std::collections::BTreeMap<
+        String,
+        std::sync::Arc<crate::engine::CharView>,
+    > = Default::default();
+    let mut publish_alerts = |engine: &Engine,
+                              generation: &mut u64,
+                              changed: &mut std::collections::BTreeSet<String>,
+                              all: bool| {
         *generation += 1;
         let book = engine.alerts().clone();
-        let characteristics = book
-            .by_characteristic
-            .keys()
-            .filter_map(|c| engine.view_of(c).map(|v| (c.clone(), v)))
-            .collect();
+        let ids: Vec<String> = if all {
+            book.by_characteristic.keys().cloned().collect()
+        } else {
+            std::mem::take(changed).into_iter().collect()
+        };
+        changed.clear();
+        for c in ids {
+            if let Some(v) = engine.view_of(&c) {
+                alert_views.insert(c, std::sync::Arc::new(v));
+            }
+        }
         std::sync::Arc::new(hub::AlertsView {
             book,
-            characteristics,
+            characteristics: alert_views.clone(),
             generation: *generation,
         })
     };
-    alerts_tx.send_replace(publish_alerts(&engine, &mut generation));
+    alerts_tx.send_replace(publish_alerts(
+        &engine,
+        &mut generation,
+        &mut fx.alert_chars,
+        true,
+    ));
     light_tx.send_replace(hub::light(
         engine.alerts(),
         healthy(&health),
@@ -350,6 +374,7 @@ pub async fn run(
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     let mut ended = 0;
+    let mut ticks = 0u64;
     let mut rejected_logged = 0u64;
     let reason = loop {
         progress.store(now_ms(), std::sync::atomic::Ordering::Relaxed);
@@ -450,7 +475,7 @@ pub async fn run(
                     };
                     let _ = reply.send(answer);
                 }
-                hub::Request::Status(reply) => {
+                hub::Request::Status { brief, reply } => {
                     let st = archive_status.borrow().clone();
                     let report = hub::StatusReport {
                         version: env!("CARGO_PKG_VERSION").to_string(),
@@ -469,7 +494,11 @@ pub async fn run(
                             },
                         },
                         sources: health.values().cloned().collect(),
-                        characteristics: engine.view().iter().map(hub::CharStatus::of).collect(),
+                        characteristics: if brief {
+                            Vec::new()
+                        } else {
+                            engine.view().iter().map(hub::CharStatus::of).collect()
+                        },
                         alerts: engine.alerts().all().cloned().collect(),
                     };
                     let _ = reply.send(report);
@@ -510,6 +539,7 @@ pub async fn run(
                         cfg = new;
                         (cfg.archive_dir, cfg.sources, cfg.outputs, cfg.control) = keep;
                         fx.alerts_changed = true;
+                        crate::fsutil::release_memory();
                         tracing::info!(component = "daemon", "reloaded {}", cfg.path.display());
                     }
                     Ok(Err(e)) => tracing::error!(component = "daemon", "reload rejected, the running configuration stays:\n{e}"),
@@ -517,6 +547,12 @@ pub async fn run(
                 }
             }
             _ = tick.tick() => {
+                ticks += 1;
+                if ticks.is_multiple_of(10) {
+                    // Readings churn through short-lived buffers on several threads; hand the
+                    // freed pages back so the resident size stays what the cell needs.
+                    crate::fsutil::release_memory();
+                }
                 let out = engine.tick(now_ms());
                 carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
                 // Retained states at most once a second, only the ones that changed.
@@ -533,7 +569,12 @@ pub async fn run(
         }
         if fx.alerts_changed {
             fx.alerts_changed = false;
-            alerts_tx.send_replace(publish_alerts(&engine, &mut generation));
+            alerts_tx.send_replace(publish_alerts(
+                &engine,
+                &mut generation,
+                &mut fx.alert_chars,
+                true,
+            ));
             health_changed = true;
         }
         if health_changed {
@@ -548,6 +589,15 @@ pub async fn run(
     tracing::info!(component = "daemon", "stopping: {reason}");
     notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
     light_tx.send_replace(hub::Light::Off);
+    // The last retained states go out before the outputs stop.
+    if !fx.dirty.is_empty() {
+        for id in std::mem::take(&mut fx.dirty) {
+            if let Some(v) = engine.view_of(&id) {
+                states.insert(id, hub::StateView::of(&v, engine.alerts()));
+            }
+        }
+        states_tx.send_replace(std::sync::Arc::new(states.clone()));
+    }
     let mut last = engine.snapshot();
     last.push(Record::DaemonStopped { reason });
     summary.last_seq = archive.append_seq(last).await?;
@@ -699,6 +749,7 @@ async fn carry_out(
                     if !matches!(event, crate::archive::record::AlertEvent::Delivered { .. }) {
                         fx.alerts_changed = true;
                         fx.dirty.insert(characteristic.clone());
+                        fx.alert_chars.insert(characteristic.clone());
                     }
                 }
                 records.push(r)

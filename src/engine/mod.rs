@@ -480,7 +480,7 @@ impl Engine {
             if !t.alerts.is_empty() {
                 self.alerts
                     .by_characteristic
-                    .insert(id.clone(), t.alerts.clone());
+                    .insert(id.clone(), std::sync::Arc::new(t.alerts.clone()));
             }
         }
         let open = self.alerts.active().count();
@@ -799,7 +799,7 @@ impl CharEngine {
     fn saved_record(&self) -> Record {
         Record::EngineState {
             characteristic: self.cfg.id.clone(),
-            state: serde_json::to_value(self.saved()).unwrap_or(serde_json::Value::Null),
+            state: crate::archive::record::StateText::of(&self.saved()),
         }
     }
 
@@ -807,10 +807,7 @@ impl CharEngine {
         let mut out = Vec::new();
         self.asm.restore(t.pending.iter().cloned());
         self.recent = t.recent.iter().rev().take(RECENT).rev().copied().collect();
-        let saved: Option<Saved> = t
-            .engine
-            .as_ref()
-            .and_then(|(_, v)| serde_json::from_value(v.clone()).ok());
+        let saved: Option<Saved> = t.engine.as_ref().and_then(|(_, v)| v.read());
         let mut replay_from = 0;
         if let Some(s) = saved {
             self.number = s.number;

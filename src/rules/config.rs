@@ -496,15 +496,15 @@ fn build(raw: &RawRule, here: &str, loc: &Locator) -> Result<Rule, Vec<Problem>>
     }
 }
 
-struct Checker<'a> {
+struct Checker<'a, 't> {
     raw: &'a RawRule,
     here: &'a str,
-    loc: &'a Locator<'a>,
+    loc: &'a Locator<'t>,
     problems: Vec<Problem>,
     used: Vec<&'static str>,
 }
 
-impl Checker<'_> {
+impl Checker<'_, '_> {
     fn bad(&mut self, key: &str, message: String) {
         let path = if key.is_empty() {
             self.here.to_string()

@@ -139,7 +139,7 @@ pub fn compose(
                 .copied()
                 .filter(|x| x.characteristic == c.id)
                 .collect();
-            match super::chart::png(c, &on_it) {
+            match super::chart::png(c.as_ref(), &on_it) {
                 Ok(png) => {
                     let cid = format!("chart-{}@linewarden", c.id);
                     html.push_str(&format!(
