@@ -733,6 +733,81 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
     }
 }
 
+/// The password named by `password_file` or `password_env` (never both), read now so that a
+/// missing file or variable is reported with the rest of the config's problems.
+pub(crate) fn read_password(
+    file: Option<&String>,
+    env: Option<&String>,
+    at: &str,
+    resolve: &impl Fn(&str) -> PathBuf,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<Secret> {
+    match (file, env) {
+        (Some(_), Some(_)) => {
+            p.push(loc.problem(
+                &format!("{at}.password_env"),
+                "give password_file or password_env, not both",
+            ));
+            None
+        }
+        (Some(f), None) => {
+            let f = resolve(f);
+            match std::fs::read_to_string(&f) {
+                Ok(t) => Some(Secret(t.trim_end_matches(['\r', '\n']).to_string())),
+                Err(e) => {
+                    p.push(loc.problem(
+                        &format!("{at}.password_file"),
+                        format!("cannot read {}: {e}", f.display()),
+                    ));
+                    None
+                }
+            }
+        }
+        (None, Some(var)) => match std::env::var(var) {
+            Ok(v) => Some(Secret(v)),
+            Err(_) => {
+                p.push(loc.problem(
+                    &format!("{at}.password_env"),
+                    format!("the environment variable {var} is not set"),
+                ));
+                None
+            }
+        },
+        (None, None) => None,
+    }
+}
+
+/// `host[:port]` of an address whose scheme is already taken off, or a located problem.
+pub(crate) fn host_port(
+    rest: &str,
+    default_port: u16,
+    url: &str,
+    key: &str,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<(String, u16)> {
+    let rest = rest.trim_end_matches('/');
+    let (host, port) = match rest.rsplit_once(':') {
+        Some((h, n)) => match n.parse::<u16>() {
+            Ok(n) if n > 0 => (h.to_string(), n),
+            _ => {
+                p.push(loc.problem(key, format!("\"{n}\" in \"{url}\" is not a port number")));
+                return None;
+            }
+        },
+        None => (rest.to_string(), default_port),
+    };
+    if host.is_empty() || host.contains('/') || host.contains('@') {
+        p.push(loc.problem(
+            key,
+            format!("\"{url}\" does not name a host (credentials go in username and password_file, not the address)"),
+        ));
+        return None;
+    }
+    Some((host, port))
+}
+
 /// Reads a broker's connection settings (shared by the MQTT source and the MQTT output).
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn build_broker(
@@ -767,27 +842,14 @@ pub(crate) fn build_broker(
         ));
         return None;
     };
-    let rest = rest.trim_end_matches('/');
-    let (host, port) = match rest.rsplit_once(':') {
-        Some((h, port)) => match port.parse::<u16>() {
-            Ok(n) if n > 0 => (h.to_string(), n),
-            _ => {
-                p.push(loc.problem(
-                    &format!("{at}.broker"),
-                    format!("\"{port}\" in \"{url}\" is not a port number"),
-                ));
-                return None;
-            }
-        },
-        None => (rest.to_string(), if tls { 8883 } else { 1883 }),
-    };
-    if host.is_empty() || host.contains('/') || host.contains('@') {
-        p.push(loc.problem(
-            &format!("{at}.broker"),
-            format!("\"{url}\" does not name a host (credentials go in username and password_file, not the address)"),
-        ));
-        return None;
-    }
+    let (host, port) = host_port(
+        rest,
+        if tls { 8883 } else { 1883 },
+        url,
+        &format!("{at}.broker"),
+        loc,
+        p,
+    )?;
     let client_id = client_id.unwrap_or(default_client_id).to_string();
     if client_id.is_empty() || client_id.len() > 64 {
         p.push(loc.problem(
@@ -796,39 +858,7 @@ pub(crate) fn build_broker(
         ));
     }
     let (username, password_file, password_env) = creds;
-    let password = match (password_file, password_env) {
-        (Some(_), Some(_)) => {
-            p.push(loc.problem(
-                &format!("{at}.password_env"),
-                "give password_file or password_env, not both",
-            ));
-            None
-        }
-        (Some(f), None) => {
-            let f = resolve(f);
-            match std::fs::read_to_string(&f) {
-                Ok(t) => Some(Secret(t.trim_end_matches(['\r', '\n']).to_string())),
-                Err(e) => {
-                    p.push(loc.problem(
-                        &format!("{at}.password_file"),
-                        format!("cannot read {}: {e}", f.display()),
-                    ));
-                    None
-                }
-            }
-        }
-        (None, Some(var)) => match std::env::var(var) {
-            Ok(v) => Some(Secret(v)),
-            Err(_) => {
-                p.push(loc.problem(
-                    &format!("{at}.password_env"),
-                    format!("the environment variable {var} is not set"),
-                ));
-                None
-            }
-        },
-        (None, None) => None,
-    };
+    let password = read_password(password_file, password_env, at, resolve, loc, p);
     if password.is_some() && username.is_none() {
         p.push(loc.problem(at, "a password needs a username"));
     }

@@ -7,7 +7,7 @@ use std::path::PathBuf;
 
 use serde::{Deserialize, Serialize};
 
-use super::{Broker, Secret, build_broker};
+use super::{Broker, Secret, build_broker, host_port, read_password};
 use crate::alerts::{Policies, Policy};
 use crate::diag::{Locator, Problem};
 use crate::limits_file::valid_id;
@@ -455,28 +455,7 @@ fn build_email(
         ));
         return None;
     };
-    let rest = rest.trim_end_matches('/');
-    let (host, port) = match rest.rsplit_once(':') {
-        Some((h, n)) => match n.parse::<u16>() {
-            Ok(n) if n > 0 => (h.to_string(), n),
-            _ => {
-                p.push(loc.problem(
-                    &format!("{at}.smtp"),
-                    format!("\"{n}\" in \"{url}\" is not a port number"),
-                ));
-                return None;
-            }
-        },
-        None => (rest.to_string(), default_port),
-    };
-    if host.is_empty() || host.contains('@') {
-        p.push(loc.problem(
-            &format!("{at}.smtp"),
-            format!(
-                "\"{url}\" does not name a host (credentials go in username and password_file)"
-            ),
-        ));
-    }
+    let (host, port) = host_port(rest, default_port, url, &format!("{at}.smtp"), loc, p)?;
     let mailbox = |s: &str| s.parse::<lettre::message::Mailbox>().is_ok();
     let from = o.from.clone().unwrap_or_default();
     if !mailbox(&from) {
@@ -500,39 +479,14 @@ fn build_email(
             ));
         }
     }
-    let password = match (&o.password_file, &o.password_env) {
-        (Some(_), Some(_)) => {
-            p.push(loc.problem(
-                &format!("{at}.password_env"),
-                "give password_file or password_env, not both",
-            ));
-            None
-        }
-        (Some(f), None) => {
-            let f = resolve(f);
-            match std::fs::read_to_string(&f) {
-                Ok(t) => Some(Secret(t.trim_end_matches(['\r', '\n']).to_string())),
-                Err(e) => {
-                    p.push(loc.problem(
-                        &format!("{at}.password_file"),
-                        format!("cannot read {}: {e}", f.display()),
-                    ));
-                    None
-                }
-            }
-        }
-        (None, Some(v)) => match std::env::var(v) {
-            Ok(s) => Some(Secret(s)),
-            Err(_) => {
-                p.push(loc.problem(
-                    &format!("{at}.password_env"),
-                    format!("the environment variable {v} is not set"),
-                ));
-                None
-            }
-        },
-        (None, None) => None,
-    };
+    let password = read_password(
+        o.password_file.as_ref(),
+        o.password_env.as_ref(),
+        at,
+        resolve,
+        loc,
+        p,
+    );
     if password.is_some() && o.username.is_none() {
         p.push(loc.problem(at, "a password needs a username"));
     }
@@ -618,19 +572,7 @@ fn build_light(o: &RawOutput, at: &str, loc: &Locator, p: &mut Vec<Problem>) -> 
                 ));
                 return None;
             };
-            let (host, port) = match rest.rsplit_once(':') {
-                Some((h, n)) => match n.parse::<u16>() {
-                    Ok(n) if n > 0 => (h.to_string(), n),
-                    _ => {
-                        p.push(loc.problem(
-                            &format!("{at}.modbus"),
-                            format!("\"{n}\" in \"{url}\" is not a port number"),
-                        ));
-                        return None;
-                    }
-                },
-                None => (rest.to_string(), 502),
-            };
+            let (host, port) = host_port(rest, 502, url, &format!("{at}.modbus"), loc, p)?;
             if o.port.is_some() {
                 p.push(loc.problem(
                     &format!("{at}.port"),

@@ -205,6 +205,7 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
     };
     'outer: loop {
         let view = f.alerts.borrow_and_update().clone();
+        ledger.forget_gone(&view);
         if due_ids(&view, &ledger).is_empty() {
             tokio::select! {
                 r = f.alerts.changed() => if r.is_err() { break },

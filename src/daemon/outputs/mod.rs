@@ -70,6 +70,16 @@ impl Ledger {
         here.max(a.delivered.get(&self.output).copied().unwrap_or(0))
     }
 
+    /// Forgets alerts the book no longer holds (cleared long ago), so the ledger stays the
+    /// size of the book over months of running.
+    pub fn forget_gone(&mut self, view: &AlertsView) {
+        if self.done.len() > 2 * view.book.all().count() + 64 {
+            let ids: std::collections::HashSet<&str> =
+                view.book.all().map(|a| a.id.as_str()).collect();
+            self.done.retain(|id, _| ids.contains(id.as_str()));
+        }
+    }
+
     /// Notes a delivery and reports it for the archive.
     pub async fn mark(&mut self, a: &str, version: u32, tx: &mpsc::Sender<Delivery>) {
         let v = self.done.entry(a.to_string()).or_insert(0);
@@ -133,6 +143,7 @@ async fn log_output(o: Output, mut f: Feeds) {
     let mut ledger = Ledger::new(&o.id);
     loop {
         let view = f.alerts.borrow_and_update().clone();
+        ledger.forget_gone(&view);
         for a in view.for_output(o.min_severity, o.escalation) {
             let have = ledger.delivered(a);
             if have >= a.version {

@@ -128,6 +128,12 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
         if alerts_due {
             alerts_due = false;
             let view = f.alerts.borrow_and_update().clone();
+            ledger.forget_gone(&view);
+            if handed.len() > 2 * view.book.all().count() + 64 {
+                let ids: std::collections::HashSet<&str> =
+                    view.book.all().map(|a| a.id.as_str()).collect();
+                handed.retain(|id, _| ids.contains(id.as_str()));
+            }
             for a in view.for_output(o.min_severity, o.escalation) {
                 if ledger.delivered(a) >= a.version
                     || handed.get(&a.id).is_some_and(|v| *v >= a.version)
