@@ -478,6 +478,11 @@ impl Writer {
             o.checkpoint_offset = Some(c);
         }
         self.buf.clear();
+        // A checkpoint of many characteristics makes the buffer big once per segment; do not
+        // keep that much memory for the small writes that follow.
+        if self.buf.capacity() > 1 << 20 {
+            self.buf.shrink_to(256 << 10);
+        }
         self.buf_records = 0;
         self.written_seq = self.next_seq - 1;
         let o = self.open.as_ref().expect("checked above");
