@@ -739,3 +739,52 @@ fn a_stack_light_on_a_pymodbus_server() {
     light_follows_the_alerts(dir.path(), port, &rt);
     let _ = server.kill();
 }
+
+#[test]
+fn an_unacknowledged_alert_escalates_once_to_the_escalation_outputs() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    feed(&d.join("feed.jsonl"), &MEANS, 0, 20);
+    let cfg = cell(
+        d,
+        Some("feed.jsonl"),
+        "[alerts]\nstop = { escalate_after = \"10 s\" }\nescalate_to = [\"lead\"]\n\n[[output]]\nid = \"console\"\nkind = \"log\"\n\n[[output]]\nid = \"lead\"\nkind = \"log\"\n",
+    );
+    let daemon = Daemon::start(&cfg, &d.join("daemon.log"));
+    daemon.wait_log(
+        "ALERT STOP bore-4-beyond-limits",
+        1,
+        Duration::from_secs(20),
+    );
+    daemon.wait_log(
+        &format!("alert {ALERT} escalated"),
+        1,
+        Duration::from_secs(30),
+    );
+    std::thread::sleep(Duration::from_millis(500));
+    daemon.stop();
+    let events = alert_events(&d.join("archive"));
+    let at = |pred: &dyn Fn(&AlertEvent) -> bool| {
+        events
+            .iter()
+            .position(|(id, e)| id == ALERT && pred(e))
+            .unwrap_or_else(|| panic!("missing event in {events:?}"))
+    };
+    let escalated = at(&|e| matches!(e, AlertEvent::Escalated { .. }));
+    let to_console =
+        at(&|e| matches!(e, AlertEvent::Delivered { output, .. } if output == "console"));
+    let to_lead = at(&|e| matches!(e, AlertEvent::Delivered { output, .. } if output == "lead"));
+    assert!(
+        to_console < escalated,
+        "the console hears of the alert when it is raised"
+    );
+    assert!(
+        escalated < to_lead,
+        "the escalation output hears of it only once escalated"
+    );
+    let n = events
+        .iter()
+        .filter(|(id, e)| id == ALERT && matches!(e, AlertEvent::Escalated { .. }))
+        .count();
+    assert_eq!(n, 1, "escalated once");
+}
