@@ -662,7 +662,6 @@ fn read_coils(rt: &tokio::runtime::Runtime, port: u16) -> Option<[bool; 4]> {
 }
 
 const RED: [bool; 4] = [true, false, false, true];
-const YELLOW: [bool; 4] = [false, true, false, false];
 const GREEN: [bool; 4] = [false, false, true, false];
 const OFF: [bool; 4] = [false; 4];
 
@@ -708,7 +707,6 @@ fn light_follows_the_alerts(d: &Path, port: u16, rt: &tokio::runtime::Runtime) {
     );
     daemon.stop();
     coils_are(OFF, "after shutdown: not monitoring");
-    let _ = YELLOW;
 }
 
 #[test]

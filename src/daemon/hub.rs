@@ -35,8 +35,6 @@ pub struct AlertsView {
     pub book: Book,
     /// The characteristics that have alerts, as they stood when the alerts last changed.
     pub characteristics: BTreeMap<String, Arc<CharView>>,
-    /// Bumped every time; outputs compare it.
-    pub generation: u64,
 }
 
 impl AlertsView {

@@ -322,42 +322,32 @@ pub async fn run(
     let healthy = |h: &std::collections::BTreeMap<String, hub::SourceHealth>| {
         h.values().all(|s| s.state == "up" || s.state == "ended")
     };
-    let mut generation = 0u64;
     // The characteristics that have alerts, as they stood when their alerts last changed
     // (for the charts in emails); refreshed only for the ones that changed.
     let mut alert_views: std::collections::BTreeMap<
         String,
         std::sync::Arc<crate::engine::CharView>,
     > = Default::default();
-    let mut publish_alerts = |engine: &Engine,
-                              generation: &mut u64,
-                              changed: &mut std::collections::BTreeSet<String>,
-                              all: bool| {
-        *generation += 1;
-        let book = engine.alerts().clone();
-        let ids: Vec<String> = if all {
-            book.by_characteristic.keys().cloned().collect()
-        } else {
-            std::mem::take(changed).into_iter().collect()
-        };
-        changed.clear();
-        for c in ids {
-            if let Some(v) = engine.view_of(&c) {
-                alert_views.insert(c, std::sync::Arc::new(v));
+    let mut publish_alerts =
+        |engine: &Engine, changed: &mut std::collections::BTreeSet<String>, all: bool| {
+            let book = engine.alerts().clone();
+            let ids: Vec<String> = if all {
+                book.by_characteristic.keys().cloned().collect()
+            } else {
+                std::mem::take(changed).into_iter().collect()
+            };
+            changed.clear();
+            for c in ids {
+                if let Some(v) = engine.view_of(&c) {
+                    alert_views.insert(c, std::sync::Arc::new(v));
+                }
             }
-        }
-        std::sync::Arc::new(hub::AlertsView {
-            book,
-            characteristics: alert_views.clone(),
-            generation: *generation,
-        })
-    };
-    alerts_tx.send_replace(publish_alerts(
-        &engine,
-        &mut generation,
-        &mut fx.alert_chars,
-        true,
-    ));
+            std::sync::Arc::new(hub::AlertsView {
+                book,
+                characteristics: alert_views.clone(),
+            })
+        };
+    alerts_tx.send_replace(publish_alerts(&engine, &mut fx.alert_chars, true));
     light_tx.send_replace(hub::light(
         engine.alerts(),
         healthy(&health),
@@ -569,12 +559,7 @@ pub async fn run(
         }
         if fx.alerts_changed {
             fx.alerts_changed = false;
-            alerts_tx.send_replace(publish_alerts(
-                &engine,
-                &mut generation,
-                &mut fx.alert_chars,
-                true,
-            ));
+            alerts_tx.send_replace(publish_alerts(&engine, &mut fx.alert_chars, true));
             health_changed = true;
         }
         if health_changed {

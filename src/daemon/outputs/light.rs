@@ -84,8 +84,7 @@ async fn show(ctx: &mut Context, s: &StackLight, state: Light) -> Result<(), Str
     Ok(())
 }
 
-pub async fn run(o: Output, s: StackLight, mut f: Feeds) {
-    let _ = o;
+pub async fn run(_o: Output, s: StackLight, mut f: Feeds) {
     let mut attempt = 0;
     let mut down_since: Option<tokio::time::Instant> = None;
     'connect: loop {
