@@ -22,6 +22,7 @@ fn record(i: u64) -> Record {
         value: 12.0 + (i % 97) as f64 * 1e-4,
         unit: Some("mm".into()),
         source_time_ms: Some(1_796_112_000_000 + i as i64),
+        source_time_ignored: false,
         arrival_ms: 1_796_112_000_000 + i as i64,
         part: None,
         source_key: Some(format!("cell4/gauges/{i}")),

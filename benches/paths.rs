@@ -9,9 +9,7 @@ use criterion::{BatchSize, Criterion, Throughput, criterion_group, criterion_mai
 use linewarden::archive::Record;
 use linewarden::archive::record::PendingReading;
 use linewarden::archive::writer::{Writer, WriterConfig};
-use linewarden::config::{
-    Broker, Duplicates, Grouping, MqttSource, OnTimeout, Payload, TopicFilter,
-};
+use linewarden::config::{Grouping, MqttSource, OnTimeout, Payload};
 use linewarden::engine::assembly::Assembler;
 use linewarden::stats::constants::{factors, factors_uncached};
 
@@ -70,30 +68,7 @@ fn assembly(c: &mut Criterion) {
 }
 
 fn source(payload: Payload) -> MqttSource {
-    MqttSource {
-        id: "bench".into(),
-        broker: Broker {
-            host: "localhost".into(),
-            port: 1883,
-            tls: false,
-            client_id: "bench".into(),
-            username: None,
-            password: None,
-            ca_file: None,
-            client_cert_file: None,
-            client_key_file: None,
-            keep_alive_s: 30,
-        },
-        topics: vec![TopicFilter {
-            template: "cell4/{characteristic}/measure".into(),
-            filter: "cell4/+/measure".into(),
-            characteristic_level: Some(1),
-        }],
-        qos: 1,
-        payload,
-        characteristic: None,
-        duplicates: Duplicates::PacketId,
-    }
+    MqttSource::on_localhost(payload, "cell4/{characteristic}/measure", None)
 }
 
 fn payloads(c: &mut Criterion) {
@@ -143,6 +118,7 @@ fn archive_append(c: &mut Criterion) {
         value: 12.0031,
         unit: None,
         source_time_ms: Some(1_796_198_400_000),
+        source_time_ignored: false,
         arrival_ms: 1_796_198_400_003,
         part: Some("VB00417".into()),
         source_key: Some("mqtt:513:5d41402abc4b2a76".into()),
@@ -210,6 +186,7 @@ fn engine(c: &mut Criterion) {
                     value: values[seq as usize % values.len()],
                     unit: None,
                     source_time_ms: None,
+                    source_time_ignored: false,
                     arrival_ms: seq as i64,
                     part: None,
                     source_key: None,

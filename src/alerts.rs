@@ -171,6 +171,44 @@ pub enum AckError {
     Cleared(String),
     #[error("say who acknowledges (a name or badge number)")]
     NoName,
+    /// A name or note that could forge a log line or flood the record.
+    #[error("{0}")]
+    BadText(String),
+}
+
+/// The longest name of a person who acknowledges, in characters.
+pub const MAX_NAME_CHARS: usize = 80;
+/// The longest note with an acknowledgement, in characters.
+pub const MAX_NOTE_CHARS: usize = 2000;
+
+/// Checks the name and note of an acknowledgement before anything is logged or archived: no
+/// control characters (a line break in a name would write a genuine-looking line into the
+/// journal; an escape sequence would repaint a terminal), and bounded lengths. Every path that
+/// acknowledges (the control socket, MQTT, the command line) goes through this.
+pub fn check_ack_text(by: &str, note: Option<&str>) -> Result<(), AckError> {
+    fn check(what: &str, text: &str, max: usize) -> Result<(), AckError> {
+        if let Some(c) = text.chars().find(|c| c.is_control()) {
+            return Err(AckError::BadText(format!(
+                "the {what} contains a control character ({}); use plain text on one line",
+                c.escape_default()
+            )));
+        }
+        let n = text.chars().count();
+        if n > max {
+            return Err(AckError::BadText(format!(
+                "the {what} is {n} characters long; at most {max} are taken"
+            )));
+        }
+        Ok(())
+    }
+    if by.trim().is_empty() {
+        return Err(AckError::NoName);
+    }
+    check("name", by, MAX_NAME_CHARS)?;
+    if let Some(n) = note {
+        check("note", n, MAX_NOTE_CHARS)?;
+    }
+    Ok(())
 }
 
 /// Every alert of a cell, by characteristic.
@@ -312,9 +350,7 @@ impl Book {
         note: Option<&str>,
         now_ms: i64,
     ) -> Result<Vec<Event>, AckError> {
-        if by.trim().is_empty() {
-            return Err(AckError::NoName);
-        }
+        check_ack_text(by, note)?;
         let mut chosen: Vec<(String, String, bool)> = Vec::new();
         if let Some(a) = self.get(target) {
             match a.status {

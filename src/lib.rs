@@ -19,7 +19,10 @@
 //! * [`report`] — the readable text of a study and of a capability analysis.
 //! * [`fsutil`] — durable file writes (temp file, fsync, rename, fsync of the directory).
 //! * [`diag`] — problems in a TOML file, located by TOML path and line:column.
-//! * [`format`] — number formatting shared by reports and files.
+//! * [`format`] — number and time formatting shared by reports and files, and the RFC 3339
+//!   reader for times that come from outside.
+//! * [`fuzz_checks`] — the bodies of the fuzz targets for every parser of outside input,
+//!   shared with the property tests that run them in `cargo test`.
 //!
 //! The binary (`src/main.rs`) is a thin command-line shell over these modules.
 
@@ -31,6 +34,7 @@ pub mod diag;
 pub mod engine;
 pub mod format;
 pub mod fsutil;
+pub mod fuzz_checks;
 pub mod input;
 pub mod limits_file;
 pub mod report;

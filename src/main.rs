@@ -132,6 +132,11 @@ enum ArchiveCommand {
         /// Only records of these kinds (reading-accepted, subgroup-result, alert, ...).
         #[arg(long, value_delimiter = ',')]
         kind: Vec<String>,
+        /// Print what is readable of a damaged archive (a segment missing, repeated or out of
+        /// order, a damaged record), saying on standard error what is left out. Without it, any
+        /// gap, repeat or reversal in the sequence numbers stops the export with an error.
+        #[arg(long)]
+        allow_gaps: bool,
     },
     /// Count segments, records by kind and by characteristic.
     Stats {
@@ -711,6 +716,7 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
             since,
             until,
             kind,
+            allow_gaps,
         } => {
             let filter = Filter {
                 from_seq: None,
@@ -726,15 +732,27 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
                 kinds: kind,
             };
             let r = Reader::open(&dir)?;
+            // With --allow-gaps each problem is said on standard error and the export goes on;
+            // without it the first problem ends the export with an error (exit status 1).
+            let left_out = std::cell::Cell::new(0usize);
+            let records = r.iter(&filter).filter_map(|e| match e {
+                Err(err) if allow_gaps => {
+                    eprintln!("linewarden: not exported: {err}");
+                    left_out.set(left_out.get() + 1);
+                    None
+                }
+                other => Some(other),
+            });
             let stdout = std::io::stdout();
             let mut out = std::io::BufWriter::new(stdout.lock());
             use std::io::Write;
             match format {
                 ExportFormat::Jsonl => {
-                    for e in r.iter(&filter) {
+                    for e in records {
                         serde_json::to_writer(&mut out, &e?)?;
                         out.write_all(b"\n")?;
                     }
+                    out.flush()?;
                 }
                 ExportFormat::Csv => {
                     let mut w = csv::Writer::from_writer(out);
@@ -749,7 +767,7 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
                         "part",
                         "detail",
                     ])?;
-                    for e in r.iter(&filter) {
+                    for e in records {
                         let e = e?;
                         let row = csv_row(&e);
                         w.write_record([
@@ -765,10 +783,14 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
                         ])?;
                     }
                     w.flush()?;
-                    return Ok(());
                 }
             }
-            out.flush()?;
+            if left_out.get() > 0 {
+                eprintln!(
+                    "linewarden: the archive has {} problem(s); what could be read was exported (--allow-gaps)",
+                    left_out.get()
+                );
+            }
             Ok(())
         }
         ArchiveCommand::Stats { dir, json } => {
@@ -953,6 +975,8 @@ fn ack_cmd(
     json: bool,
 ) -> Result<()> {
     use linewarden::daemon::control::{ClientRequest, ask};
+    // Said here first, so a mistake is answered without a round trip; the daemon checks again.
+    linewarden::alerts::check_ack_text(&by, note.as_deref())?;
     let v =
         ask(&to.socket()?, &ClientRequest::Ack { alert, by, note }).map_err(anyhow::Error::msg)?;
     if json {

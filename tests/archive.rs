@@ -19,6 +19,7 @@ fn reading(c: &str, v: f64, i: i64) -> Record {
         value: v,
         unit: Some("mm".into()),
         source_time_ms: None,
+        source_time_ignored: false,
         arrival_ms: T0 + i,
         part: None,
         source_key: None,

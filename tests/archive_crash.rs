@@ -61,6 +61,7 @@ fn child_appender() {
                 value: (next + i) as f64,
                 unit: None,
                 source_time_ms: None,
+                source_time_ignored: false,
                 arrival_ms: 0,
                 part: None,
                 source_key: Some(format!("k{}", next + i)),

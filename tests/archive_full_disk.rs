@@ -2,8 +2,6 @@
 //! resumes when space is freed. Runs on a small tmpfs the test mounts (as root) or that CI
 //! provides in LINEWARDEN_SMALL_FS.
 
-use std::path::{Path, PathBuf};
-use std::process::Command;
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::time::{Duration, Instant};
@@ -12,30 +10,8 @@ use linewarden::archive::reader::{self, Filter, Reader};
 use linewarden::archive::record::Record;
 use linewarden::archive::writer::{self, Writer, WriterConfig, WriterState};
 
-struct Mount(PathBuf);
-
-impl Drop for Mount {
-    fn drop(&mut self) {
-        let _ = Command::new("umount").arg("-l").arg(&self.0).status();
-    }
-}
-
-/// A directory on a filesystem of `size` bytes, or None when none can be had.
-fn small_fs(base: &Path, size: &str) -> Option<(PathBuf, Option<Mount>)> {
-    if let Ok(p) = std::env::var("LINEWARDEN_SMALL_FS") {
-        let dir = PathBuf::from(p).join(format!("t{}", std::process::id()));
-        std::fs::create_dir_all(&dir).ok()?;
-        return Some((dir, None));
-    }
-    let mnt = base.join("fs");
-    std::fs::create_dir_all(&mnt).ok()?;
-    let ok = Command::new("mount")
-        .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
-        .arg(&mnt)
-        .status()
-        .is_ok_and(|s| s.success());
-    ok.then(|| (mnt.clone(), Some(Mount(mnt))))
-}
+mod common;
+use common::small_fs;
 
 fn reading(n: u64) -> Record {
     Record::ReadingAccepted {
@@ -44,6 +20,7 @@ fn reading(n: u64) -> Record {
         value: n as f64,
         unit: Some("mm".into()),
         source_time_ms: None,
+        source_time_ignored: false,
         arrival_ms: 0,
         part: Some(format!("part-{n:08}")),
         source_key: Some(format!("key-{n}")),

@@ -433,6 +433,7 @@ fn small_archive(dir: &Path) {
                 value: 12.0 + i as f64 / 1000.0,
                 unit: Some("mm".into()),
                 source_time_ms: None,
+                source_time_ignored: false,
                 arrival_ms: t0 + i * 60_000,
                 part: Some(format!("p{i}")),
                 source_key: None,
@@ -448,6 +449,7 @@ fn small_archive(dir: &Path) {
             raw: "12,0O4".into(),
             reason: "not a number".into(),
             arrival_ms: t0,
+            source_key: None,
         },
         t0 + 40 * 60_000,
     )

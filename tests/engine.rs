@@ -48,6 +48,7 @@ fn feed(engine: &mut Engine, log: &mut Log, c: &str, v: f64, t: i64) -> Vec<Stri
         value: v,
         unit: Some("mm".into()),
         source_time_ms: Some(t),
+        source_time_ignored: false,
         arrival_ms: t,
         part: None,
         source_key: None,
@@ -59,6 +60,7 @@ fn feed(engine: &mut Engine, log: &mut Log, c: &str, v: f64, t: i64) -> Vec<Stri
             raw: v.to_string(),
             reason,
             arrival_ms: t,
+            source_key: None,
         });
         return vec!["rejected".into()];
     }
@@ -201,6 +203,7 @@ preset = "nelson"
             value: 5.0 + x * 0.01,
             unit: None,
             source_time_ms: Some(T0 + i),
+            source_time_ignored: false,
             arrival_ms: T0 + i,
             part: None,
             source_key: None,

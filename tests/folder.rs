@@ -145,3 +145,180 @@ fn reports_are_read_archived_and_moved_and_never_twice() {
     let keys: std::collections::HashSet<_> = got.iter().map(|(_, k)| k.clone()).collect();
     assert_eq!(keys.len(), 16, "no reading archived twice");
 }
+
+fn rejected_reasons(archive: &Path) -> Vec<String> {
+    let r = Reader::open(archive).unwrap();
+    r.iter(&Filter {
+        kinds: vec!["reading-rejected".into()],
+        ..Filter::default()
+    })
+    .filter_map(|e| match e.unwrap().record {
+        Record::ReadingRejected { reason, .. } => Some(reason),
+        _ => None,
+    })
+    .collect()
+}
+
+/// The regression: a per-part row with one field more than the header (a decimal comma,
+/// `VB3,12,003,38.2,21.45` under four columns) was read by position, every value shifted one
+/// column. Swept over every field count from 1 to 8 under a four-column header: only rows of
+/// exactly four fields give readings; every other row is rejected whole with its file and line,
+/// and no value from it reaches a characteristic.
+#[test]
+fn a_row_whose_field_count_differs_from_the_header_is_never_read_by_position() {
+    use linewarden::config::ReportRows;
+    use linewarden::daemon::folder::parse;
+    let rows = ReportRows::PerPart {
+        columns: vec![
+            ("Bore".into(), "bore".into()),
+            ("Face".into(), "face".into()),
+            ("Port".into(), "port".into()),
+        ],
+    };
+    for fields in 1..=8usize {
+        let cells: Vec<String> = (0..fields)
+            .map(|i| {
+                if i == 0 {
+                    "VB3".into()
+                } else {
+                    format!("{}", 10 + i)
+                }
+            })
+            .collect();
+        let text = format!(
+            "Serial,Bore,Face,Port\nVB1,12.001,38.2,21.45\n{}\n",
+            cells.join(",")
+        );
+        let (readings, bad) = parse(&text, "r.csv", &rows, Some("Serial")).unwrap();
+        let from_row3: Vec<_> = readings.iter().filter(|r| r.0.starts_with("3:")).collect();
+        if fields == 4 {
+            assert_eq!(from_row3.len(), 3, "{fields} fields");
+            assert!(bad.is_empty());
+        } else {
+            assert!(from_row3.is_empty(), "{fields} fields: read {from_row3:?}");
+            assert_eq!(bad.len(), 1, "{fields} fields");
+            let reason = &bad[0].2;
+            assert!(
+                reason.contains(&format!(
+                    "r.csv:3: the row has {fields} field(s) where the header has 4"
+                )),
+                "{reason}"
+            );
+        }
+        // The good row is read whatever the bad one holds.
+        assert_eq!(readings.iter().filter(|r| r.0.starts_with("2:")).count(), 3);
+    }
+    // The example from the field, and its hint.
+    let (readings, bad) = parse(
+        "Serial,Bore,Face,Port\nVB3,12,003,38.2,21.45\n",
+        "r.csv",
+        &rows,
+        Some("Serial"),
+    )
+    .unwrap();
+    assert!(readings.is_empty());
+    assert!(bad[0].2.contains("decimal comma"), "{}", bad[0].2);
+    // A semicolon file says so; a lone decimal-comma cell says so.
+    let e = parse(
+        "Serial;Bore;Face;Port\nVB3;12,003;38,2;21,45\n",
+        "s.csv",
+        &rows,
+        Some("Serial"),
+    )
+    .unwrap_err();
+    assert!(e.contains("separated by ';'"), "{e}");
+    let (_, bad) = parse(
+        "Serial,Bore,Face,Port\nVB3,\"12,003\",38.2,21.45\n",
+        "q.csv",
+        &rows,
+        Some("Serial"),
+    )
+    .unwrap();
+    assert!(
+        bad[0].2.contains("q.csv:2:2") && bad[0].2.contains("decimal comma"),
+        "{bad:?}"
+    );
+    // The last row cut short while the file was written: rejected, and said so.
+    let (readings, bad) = parse(
+        "Serial,Bore,Face,Port\nVB1,12.001,38.2,21.45\nVB2,12.00",
+        "w.csv",
+        &rows,
+        Some("Serial"),
+    )
+    .unwrap();
+    assert_eq!(readings.len(), 3);
+    assert!(bad[0].2.contains("still being written"), "{bad:?}");
+    // A whole last row without a line ending is read (many machines write files that way).
+    let (readings, bad) = parse(
+        "Serial,Bore,Face,Port\nVB1,12.001,38.2,21.45",
+        "n.csv",
+        &rows,
+        Some("Serial"),
+    )
+    .unwrap();
+    assert_eq!((readings.len(), bad.len()), (3, 0));
+    // Per-reading rows: a row with the value missing is rejected, not skipped.
+    let per = ReportRows::PerReading {
+        characteristic_column: "Feature".into(),
+        value_column: "Value".into(),
+    };
+    let (readings, bad) = parse(
+        "Serial,Feature,Value\nVB1,bore,12.001\nVB2,bore\nVB3,bore,\n",
+        "p.csv",
+        &per,
+        Some("Serial"),
+    )
+    .unwrap();
+    assert_eq!(readings.len(), 1);
+    assert_eq!(bad.len(), 2, "{bad:?}");
+}
+
+/// The same daemon, end to end: the misformatted rows are archived as rejected with file, line
+/// and hint, no shifted value is archived, and the same report dropped again under another
+/// name (and under a third, while the first is still waiting) is recognised by its content and
+/// archived once.
+#[test]
+fn bad_rows_are_archived_as_rejected_and_a_copied_report_is_archived_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let cfg = cell(d);
+    let inbox = d.join("inbox");
+    let text =
+        "Serial,Bore,Face,Operator\nVB1,12.001,38.2,night\nVB3,12,003,38.2,night\nVB4,12.002\n";
+    std::fs::write(inbox.join("a.csv"), text).unwrap();
+    run_until(&cfg, || inbox.join("done/a.csv").exists());
+    let got = readings(&d.join("archive"));
+    assert_eq!(got.len(), 2, "only VB1's bore and face: {got:?}");
+    let reasons = rejected_reasons(&d.join("archive"));
+    assert_eq!(reasons.len(), 2, "{reasons:?}");
+    assert!(
+        reasons[0].contains("a.csv:3: the row has 5 field(s)")
+            && reasons[0].contains("decimal comma")
+    );
+    assert!(
+        reasons[1].contains("a.csv:4: the row has 2 field(s)"),
+        "{reasons:?}"
+    );
+
+    // The same bytes under two new names, one of them after a restart.
+    std::fs::write(inbox.join("a-copy.csv"), text).unwrap();
+    run_until(&cfg, || inbox.join("rejected/a-copy.csv").exists());
+    std::fs::write(inbox.join("again.csv"), text).unwrap();
+    run_until(&cfg, || inbox.join("rejected/again.csv").exists());
+    let why = std::fs::read_to_string(inbox.join("rejected/again.csv.error")).unwrap();
+    assert!(
+        why.contains("same content") && why.contains("a.csv"),
+        "{why}"
+    );
+    assert_eq!(
+        readings(&d.join("archive")).len(),
+        2,
+        "nothing archived twice"
+    );
+    let reasons = rejected_reasons(&d.join("archive"));
+    assert_eq!(
+        reasons.len(),
+        4,
+        "the two copies are on record: {reasons:?}"
+    );
+}

@@ -32,7 +32,7 @@ listen = "127.0.0.1:{port}"
 next_connection_delay_ms = 1
 [v4.1.connections]
 connection_timeout_ms = 60000
-max_payload_size = 20480
+max_payload_size = 4194304
 max_inflight_count = 100
 dynamic_filters = true
 "#
@@ -154,6 +154,8 @@ fn runtime() -> tokio::runtime::Runtime {
 fn publisher(rt: &tokio::runtime::Runtime, port: u16, id: &str) -> rumqttc::AsyncClient {
     let mut o = rumqttc::MqttOptions::new(id, "127.0.0.1", port);
     o.set_keep_alive(Duration::from_secs(30));
+    // The oversized-message test sends up to 3 MiB.
+    o.set_max_packet_size(8 << 20, 8 << 20);
     let (client, mut ev) = rumqttc::AsyncClient::new(o, 10_000);
     rt.spawn(async move {
         loop {
@@ -271,6 +273,20 @@ fn survives_kill9(port: u16, dir: &Path, dedupe: &str) {
                     )
                     .await
                     .unwrap();
+                    // Messages that are not readings, among the readings: each must be archived
+                    // once as rejected, and must not end the recognition of a redelivered
+                    // backlog (they once did, and every reading after one was stored twice).
+                    if i % 25 == 7 {
+                        let poison = format!(r#"{{"v": "n/a", "part": "P{i}"}}"#);
+                        c.publish(
+                            "cell4/bore/measure",
+                            rumqttc::QoS::AtLeastOnce,
+                            false,
+                            poison,
+                        )
+                        .await
+                        .unwrap();
+                    }
                     i += 1;
                     tokio::time::sleep(Duration::from_millis(2)).await;
                 }
@@ -292,7 +308,16 @@ fn survives_kill9(port: u16, dir: &Path, dedupe: &str) {
     });
     std::thread::sleep(Duration::from_millis(300));
     d.stop();
-    let (parts, _) = archived(&archive, "mqtt:cell");
+    let (parts, rejected) = archived(&archive, "mqtt:cell");
+    let poisons: Vec<String> = (0..total)
+        .filter(|i| i % 25 == 7)
+        .map(|i| format!("\"P{i}\""))
+        .collect();
+    for p in &poisons {
+        let n = rejected.iter().filter(|r| r.contains(p.as_str())).count();
+        assert_eq!(n, 1, "the rejected message {p} archived {n} times");
+    }
+    assert_eq!(rejected.len(), poisons.len());
     let text = std::fs::read_to_string(&log).unwrap();
     eprintln!(
         "redeliveries recognised: {} log line(s)",
@@ -352,4 +377,154 @@ fn mosquitto_kill9_loses_nothing_and_stores_nothing_twice() {
         return;
     };
     survives_kill9(port, dir.path(), "packet-id");
+}
+
+/// The regression: one message of about 80 kB stopped its source for good (the client failed
+/// to decode it, reconnected, was sent it again, for ever). Messages of 80 kB, 1 MiB and 3 MiB,
+/// above `max_payload_bytes`, are archived as rejected with their size, acknowledged (a restart
+/// does not receive them again), and the readings behind them arrive.
+fn oversized_messages_do_not_stall_the_source(port: u16, dir: &Path, dedupe: &str) {
+    let cfg = cell(dir, port, dedupe);
+    let log = dir.join("daemon.log");
+    let d = Daemon::start(&cfg, &log);
+    d.wait_subscribed(2);
+    let rt = runtime();
+    let c = publisher(&rt, port, "pub-big");
+    rt.block_on(async {
+        for (i, size) in [80_000usize, 1 << 20, 3 << 20].into_iter().enumerate() {
+            let pad = "x".repeat(size);
+            let payload = format!(r#"{{"v": 12.0, "part": "BIG{i}", "pad": "{pad}"}}"#);
+            c.publish(
+                "cell4/bore/measure",
+                rumqttc::QoS::AtLeastOnce,
+                false,
+                payload,
+            )
+            .await
+            .unwrap();
+            for k in 0..4 {
+                let payload = format!(r#"{{"v": 12.00{k}, "part": "S{i}-{k}"}}"#);
+                c.publish(
+                    "cell4/bore/measure",
+                    rumqttc::QoS::AtLeastOnce,
+                    false,
+                    payload,
+                )
+                .await
+                .unwrap();
+            }
+        }
+    });
+    let archive = dir.join("archive");
+    wait_until(
+        "the readings behind the big messages",
+        Duration::from_secs(30),
+        || count_accepted(&archive, "mqtt:cell") == 12,
+    );
+    std::thread::sleep(Duration::from_millis(300));
+    d.stop();
+    let d = Daemon::start(&cfg, &log);
+    d.wait_subscribed(4);
+    std::thread::sleep(Duration::from_millis(800));
+    d.stop();
+    let (parts, _) = archived(&archive, "mqtt:cell");
+    assert_eq!(parts.len(), 12);
+    let r = Reader::open(&archive).unwrap();
+    let reasons: Vec<String> = r
+        .iter(&Filter::default())
+        .flatten()
+        .filter_map(|e| match e.record {
+            Record::ReadingRejected {
+                source,
+                reason,
+                raw,
+                ..
+            } if source == "mqtt:cell" => {
+                assert!(
+                    raw.starts_with("cell4/bore/measure: {\"v\": 12.0, \"part\": \"BIG"),
+                    "{raw}"
+                );
+                assert!(raw.len() < 400, "only the first bytes are kept");
+                Some(reason)
+            }
+            _ => None,
+        })
+        .collect();
+    assert_eq!(reasons.len(), 3, "each big message once: {reasons:?}");
+    for (r, size) in reasons.iter().zip([80_000usize, 1 << 20, 3 << 20]) {
+        assert!(r.contains("more than max_payload_bytes = 65536"), "{r}");
+        let sent = format!(
+            r#"{{"v": 12.0, "part": "BIG0", "pad": "{}"}}"#,
+            "x".repeat(size)
+        )
+        .len();
+        assert!(r.contains(&format!("is {sent} bytes")), "{r}");
+    }
+    let text = std::fs::read_to_string(&log).unwrap();
+    assert!(
+        !text.contains("lost the broker"),
+        "the connection never dropped"
+    );
+}
+
+#[test]
+fn rumqttd_oversized_messages_are_rejected_and_the_source_goes_on() {
+    let dir = tempfile::tempdir().unwrap();
+    let port = free_port();
+    let _b = start_rumqttd(port);
+    oversized_messages_do_not_stall_the_source(port, dir.path(), "content");
+}
+
+#[test]
+fn mosquitto_oversized_messages_are_rejected_and_the_source_goes_on() {
+    let dir = tempfile::tempdir().unwrap();
+    let port = free_port();
+    let Some(_b) = start_mosquitto(dir.path(), port) else {
+        return;
+    };
+    oversized_messages_do_not_stall_the_source(port, dir.path(), "packet-id");
+}
+
+/// What a restart remembers: the keys of rejected messages come back from the archive with the
+/// accepted ones (they once did not, so a rejected message redelivered after a kill -9 was
+/// archived again, and in content mode it ended the recognition of the backlog).
+#[test]
+fn recent_keys_include_rejected_messages() {
+    use linewarden::archive::writer::{Writer, WriterConfig};
+    use linewarden::daemon::mqtt::{message_key, recent_keys};
+    let dir = tempfile::tempdir().unwrap();
+    let (mut w, _) = Writer::open(WriterConfig::new(dir.path())).unwrap();
+    let a = message_key(1, "cell4/bore/measure", b"12.001");
+    let r = message_key(2, "cell4/bore/measure", b"n/a");
+    w.append(
+        &Record::ReadingAccepted {
+            source: "mqtt:cell".into(),
+            characteristic: "bore".into(),
+            value: 12.001,
+            unit: None,
+            source_time_ms: None,
+            source_time_ignored: false,
+            arrival_ms: 0,
+            part: None,
+            source_key: Some(a.clone()),
+        },
+        0,
+    )
+    .unwrap();
+    w.append(
+        &Record::ReadingRejected {
+            source: "mqtt:cell".into(),
+            characteristic: Some("bore".into()),
+            raw: "cell4/bore/measure: n/a".into(),
+            reason: "not a number".into(),
+            arrival_ms: 0,
+            source_key: Some(r.clone()),
+        },
+        0,
+    )
+    .unwrap();
+    w.flush().unwrap();
+    drop(w);
+    assert_eq!(recent_keys(dir.path(), "mqtt:cell"), [a, r]);
+    assert!(recent_keys(dir.path(), "mqtt:other").is_empty());
 }

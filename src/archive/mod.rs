@@ -49,6 +49,9 @@ pub enum ArchiveError {
         offset: u64,
         problem: String,
     },
+    /// Records missing, repeated or out of order between segments.
+    #[error("archive {path}: {problem}")]
+    Sequence { path: PathBuf, problem: String },
     #[error("archive: the writer has stopped after an earlier error: {0}")]
     Stopped(String),
 }

@@ -116,25 +116,47 @@ impl Reader {
                 }
                 Ok(f) if f.kind == TYPE_SEAL => break,
                 Ok(_) => return Err(corrupt(offset, "an unexpected frame type".into())),
-                Err(_) if newest && info.seal.is_none() && torn_tail(&buf, offset) => break,
-                Err(b) => return Err(corrupt(offset, b.words().to_string())),
+                Err(_) if newest && info.seal.is_none() && segment::is_torn_tail(&buf, offset) => {
+                    break;
+                }
+                Err(b) => {
+                    return Err(corrupt(offset, damage_words(&buf, offset, b)));
+                }
             }
         }
         Ok(out)
     }
 
-    /// Every record that passes `filter`, in sequence order, segment by segment.
-    pub fn iter<'a>(
-        &'a self,
-        filter: &'a Filter,
-    ) -> impl Iterator<Item = Result<Envelope, ArchiveError>> + 'a {
+    /// Every record that passes `filter`, in sequence order, segment by segment, checking as
+    /// it goes that the sequence numbers run on without a gap, a repeat or a reversal (a
+    /// segment missing, copied or renamed) and that each segment's header matches its file
+    /// name.
+    ///
+    /// A problem is yielded as an `Err` item; iteration then goes on past it (the rest of the
+    /// segment, or the next segment after a damaged one), skipping records that would repeat or
+    /// go back. A caller that must not give partial data stops at the first `Err`; one that was
+    /// told to read what it can (`export --allow-gaps`) reports each and carries on.
+    pub fn iter<'a>(&'a self, filter: &'a Filter) -> Records<'a> {
         let start = self.first_segment_for(filter);
-        (start..self.segments.len())
-            .flat_map(move |i| match self.read_segment(i, None) {
-                Ok(v) => v.into_iter().map(Ok).collect::<Vec<_>>(),
-                Err(e) => vec![Err(e)],
-            })
-            .filter(move |r| r.as_ref().map_or(true, |e| filter.accepts(e)))
+        let expected = match self.segments.get(start) {
+            Some(_) if start == 0 => 1,
+            Some(s) => s.first_seq,
+            None => 1,
+        };
+        Records {
+            reader: self,
+            filter,
+            next_segment: start,
+            expected_index: self
+                .segments
+                .get(start)
+                .map_or(0, |s| if start == 0 { 0 } else { s.index }),
+            expected_seq: expected,
+            current: Vec::new().into_iter(),
+            current_path: PathBuf::new(),
+            pending: std::collections::VecDeque::new(),
+            held: None,
+        }
     }
 
     /// The first segment that can hold records the filter wants.
@@ -204,13 +226,170 @@ impl Reader {
     }
 }
 
-/// Whether the bytes from `offset` are a torn tail: a frame cut short, or a damaged frame with
-/// nothing valid after it.
-fn torn_tail(buf: &[u8], offset: usize) -> bool {
-    match segment::decode(buf, offset) {
-        Err(segment::Bad::Incomplete) | Err(segment::Bad::BadLength) => true,
-        Err(segment::Bad::BadCrc) => !segment::good_frame_follows(buf, offset),
-        Ok(_) => false,
+/// The records of an archive in order, with continuity checks: see [`Reader::iter`].
+pub struct Records<'a> {
+    reader: &'a Reader,
+    filter: &'a Filter,
+    next_segment: usize,
+    expected_index: u64,
+    expected_seq: u64,
+    current: std::vec::IntoIter<Envelope>,
+    current_path: PathBuf,
+    pending: std::collections::VecDeque<ArchiveError>,
+    held: Option<Envelope>,
+}
+
+impl Records<'_> {
+    fn gap(&self, path: &Path, problem: String) -> ArchiveError {
+        ArchiveError::Sequence {
+            path: path.to_path_buf(),
+            problem,
+        }
+    }
+
+    /// Opens the next segment; false when there is none.
+    fn open_next(&mut self) -> bool {
+        let Some(info) = self.reader.segments.get(self.next_segment) else {
+            return false;
+        };
+        let i = self.next_segment;
+        self.next_segment += 1;
+        self.current_path = info.path.clone();
+        let name = file_name(&info.path);
+        if info.index != self.expected_index {
+            let missing = if info.index > self.expected_index {
+                if info.index - self.expected_index == 1 {
+                    format!("segment {} is missing", self.expected_index)
+                } else {
+                    format!(
+                        "segments {} to {} are missing",
+                        self.expected_index,
+                        info.index - 1
+                    )
+                }
+            } else {
+                format!(
+                    "segment {} appears twice (a copy under another name?)",
+                    info.index
+                )
+            };
+            self.pending
+                .push_back(self.gap(&info.path, format!("{missing} before {name}")));
+        }
+        self.expected_index = info.index + 1;
+        match segment::read_header(&info.path) {
+            Ok(Some(h)) if h.segment != info.index || h.first_seq != info.first_seq => {
+                self.pending.push_back(self.gap(
+                    &info.path,
+                    format!(
+                        "its header says segment {} from sequence {}, unlike its file name {name} (renamed or copied?)",
+                        h.segment, h.first_seq
+                    ),
+                ));
+            }
+            _ => {}
+        }
+        match self.reader.read_segment(i, None) {
+            Ok(v) => self.current = v.into_iter(),
+            Err(e) => {
+                self.current = Vec::new().into_iter();
+                self.pending.push_back(e);
+            }
+        }
+        true
+    }
+}
+
+fn file_name(path: &Path) -> String {
+    path.file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| path.display().to_string())
+}
+
+impl Iterator for Records<'_> {
+    type Item = Result<Envelope, ArchiveError>;
+
+    fn next(&mut self) -> Option<Self::Item> {
+        loop {
+            if let Some(e) = self.pending.pop_front() {
+                return Some(Err(e));
+            }
+            let Some(e) = self.held.take().or_else(|| self.current.next()) else {
+                if self.open_next() {
+                    continue;
+                }
+                return None;
+            };
+            let seq = e.seq;
+            if seq < self.expected_seq {
+                // A repeat or a step back: never give the same number twice, nor go back.
+                let last = self.expected_seq - 1;
+                let err = self.gap(
+                    &self.current_path.clone(),
+                    format!(
+                        "record {seq} in {} comes after record {last}: records repeated or out of order (a segment copied or renamed?)",
+                        file_name(&self.current_path)
+                    ),
+                );
+                // Say it once per run of such records, not once per record.
+                let mut skipped = 1u64;
+                while let Some(next) = self.current.as_slice().first() {
+                    if next.seq >= self.expected_seq {
+                        break;
+                    }
+                    self.current.next();
+                    skipped += 1;
+                }
+                let err = match err {
+                    ArchiveError::Sequence { path, problem } => ArchiveError::Sequence {
+                        path,
+                        problem: format!("{problem}; {skipped} such record(s) left out"),
+                    },
+                    other => other,
+                };
+                return Some(Err(err));
+            }
+            if seq > self.expected_seq {
+                let err = self.gap(
+                    &self.current_path.clone(),
+                    if seq - self.expected_seq == 1 {
+                        format!(
+                            "record {} is missing before record {seq} in {}",
+                            self.expected_seq,
+                            file_name(&self.current_path)
+                        )
+                    } else {
+                        format!(
+                            "records {} to {} are missing before record {seq} in {}",
+                            self.expected_seq,
+                            seq - 1,
+                            file_name(&self.current_path)
+                        )
+                    },
+                );
+                self.pending.push_back(err);
+                // The record itself is good: it comes right after the error.
+                self.expected_seq = seq;
+                self.held = Some(e);
+                continue;
+            }
+            self.expected_seq = seq + 1;
+            if self.filter.accepts(&e) {
+                return Some(Ok(e));
+            }
+        }
+    }
+}
+
+/// Words for damage at `offset`: what is wrong, and whether intact records follow (which makes
+/// it corruption inside the segment rather than a write cut short).
+pub fn damage_words(buf: &[u8], offset: usize, bad: segment::Bad) -> String {
+    match segment::intact_frame_after(buf, offset) {
+        Some(next) => format!(
+            "{}, and intact records follow at byte {next}: damage inside the segment, not a write cut short by a crash",
+            bad.words()
+        ),
+        None => bad.words().to_string(),
     }
 }
 
@@ -271,10 +450,17 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
                     .push(format!("{name} at byte 0: the first frame is not a header"));
                 None
             }
+            Err(b) if newest && segment::intact_frame_after(&buf, 0).is_none() => {
+                r.notes.push(format!(
+                    "{name}: the newest segment has no intact header ({}): it was being created at a crash; the writer sets it aside on its next start",
+                    b.words()
+                ));
+                None
+            }
             Err(b) => {
                 r.problems.push(format!(
                     "{name} at byte 0: the header is damaged: {}",
-                    b.words()
+                    damage_words(&buf, 0, b)
                 ));
                 None
             }
@@ -343,7 +529,11 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
                     ok = false;
                     break;
                 }
-                Err(b) if newest && torn_tail(&buf, offset) && segment::seal_of(&buf).is_none() => {
+                Err(b)
+                    if newest
+                        && segment::is_torn_tail(&buf, offset)
+                        && segment::seal_of(&buf).is_none() =>
+                {
                     r.notes.push(format!(
                         "{name} at byte {offset}: the open segment ends with {} damaged bytes ({}); the writer cuts them on its next start",
                         buf.len() - offset,
@@ -352,8 +542,10 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
                     break;
                 }
                 Err(b) => {
-                    r.problems
-                        .push(format!("{name} at byte {offset}: {}", b.words()));
+                    r.problems.push(format!(
+                        "{name} at byte {offset}: {}",
+                        damage_words(&buf, offset, b)
+                    ));
                     ok = false;
                     break;
                 }

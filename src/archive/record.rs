@@ -160,6 +160,11 @@ pub enum Record {
         /// When the gauge or source says it measured, if it says.
         #[serde(default, skip_serializing_if = "Option::is_none")]
         source_time_ms: Option<i64>,
+        /// The source's time was too far from the arrival time to be trusted (a gauge clock
+        /// that is wrong, or seconds sent for milliseconds): it is kept here as sent, and the
+        /// arrival time orders the reading.
+        #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+        source_time_ignored: bool,
         /// When linewarden received it.
         arrival_ms: i64,
         #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -176,6 +181,10 @@ pub enum Record {
         raw: String,
         reason: String,
         arrival_ms: i64,
+        /// The key of the message at its source, as for accepted readings, so that a rejected
+        /// message the source delivers again is recognised and not archived twice.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        source_key: Option<String>,
     },
     SubgroupResult {
         characteristic: String,
@@ -321,10 +330,15 @@ impl Tail {
                 characteristic,
                 value,
                 source_time_ms,
+                source_time_ignored,
                 arrival_ms,
                 part,
                 ..
             } => {
+                let time_ms = match source_time_ms {
+                    Some(t) if !source_time_ignored => *t,
+                    _ => *arrival_ms,
+                };
                 let t = self.entry(characteristic);
                 if t.pending.len() >= MAX_PENDING {
                     t.pending.pop_front();
@@ -332,7 +346,7 @@ impl Tail {
                 t.pending.push_back(PendingReading {
                     seq,
                     value: *value,
-                    time_ms: source_time_ms.unwrap_or(*arrival_ms),
+                    time_ms,
                     part: part.clone(),
                 });
             }

@@ -132,16 +132,36 @@ pub fn decode(buf: &[u8], offset: usize) -> Result<Frame<'_>, Bad> {
     })
 }
 
-/// Whether, after a damaged frame at `offset`, a good frame follows where its length says the
-/// next frame starts. A damaged frame followed by a good one is corruption in the middle of a
-/// segment, not a torn tail, and must not be cut.
-pub fn good_frame_follows(buf: &[u8], offset: usize) -> bool {
-    let Some(len) = buf.get(offset..offset + 4) else {
-        return false;
-    };
-    let len = u32::from_le_bytes([len[0], len[1], len[2], len[3]]) as usize;
-    let next = offset + FRAME_PREFIX + len;
-    next < buf.len() && decode(buf, next).is_ok()
+/// The offset of the first intact frame that starts after `offset`, searching every byte
+/// position to the end of `buf`.
+///
+/// A damaged frame is a torn tail only when nothing intact follows it anywhere: a crash can
+/// leave a frame cut short at the very end, but never good frames after bad bytes. Damage
+/// followed by an intact frame (a zeroed or overwritten range in the middle) is corruption, and
+/// cutting there would throw away records that were confirmed durable. Each candidate position
+/// is checked cheaply first (a plausible length that fits, a known frame type) before its
+/// CRC-32C is computed, so the search stays linear in practice even on garbage.
+pub fn intact_frame_after(buf: &[u8], offset: usize) -> Option<usize> {
+    let start = offset.checked_add(1)?;
+    (start..buf.len()).find(|&at| {
+        let rest = &buf[at..];
+        if rest.len() < FRAME_PREFIX + 1 {
+            return false;
+        }
+        let len = u32::from_le_bytes([rest[0], rest[1], rest[2], rest[3]]) as usize;
+        len != 0
+            && len <= MAX_FRAME
+            && FRAME_PREFIX + len <= rest.len()
+            && matches!(rest[FRAME_PREFIX], TYPE_HEADER | TYPE_RECORD | TYPE_SEAL)
+            && decode(buf, at).is_ok()
+    })
+}
+
+/// Whether the bytes from `offset` on are a torn tail that may be cut: no intact frame
+/// stands at `offset`, and none follows it anywhere.
+pub fn is_torn_tail(buf: &[u8], offset: usize) -> bool {
+    offset >= buf.len()
+        || (decode(buf, offset).is_err() && intact_frame_after(buf, offset).is_none())
 }
 
 /// Lowercase hex of bytes.

@@ -196,6 +196,15 @@ impl Writer {
             Ok(f) if f.kind == TYPE_HEADER => f,
             Ok(_) => return Err(corrupt(0, "the first frame is not a segment header".into())),
             Err(bad) => {
+                if segment::intact_frame_after(buf, 0).is_some() {
+                    return Err(corrupt(
+                        0,
+                        format!(
+                            "the segment header is damaged ({}) and intact records follow it: this is corruption, not a segment cut short while being created; {REFUSE}",
+                            bad.words()
+                        ),
+                    ));
+                }
                 if !buf.is_empty() {
                     quarantined.push(quarantine(path, buf, 0, bad.words())?);
                 }
@@ -287,13 +296,15 @@ impl Writer {
                     ));
                 }
                 Err(bad) => {
-                    // A damaged frame followed by a good one is corruption in the middle, not a
-                    // torn tail: refuse rather than cut good records.
-                    if bad == segment::Bad::BadCrc && segment::good_frame_follows(buf, offset) {
+                    // Damage with any intact frame after it is corruption inside the segment,
+                    // not a write cut short by a crash: cutting there would throw away records
+                    // that were confirmed durable (and hand out their sequence numbers again).
+                    // Refuse, whatever the kind of damage (a bad CRC, a zeroed length, garbage).
+                    if let Some(next) = segment::intact_frame_after(buf, offset) {
                         return Err(corrupt(
                             offset,
                             format!(
-                                "{} and good records follow; run `linewarden archive verify`",
+                                "{}, and intact records follow at byte {next}: this is damage inside the segment, not a write cut short by a crash, so nothing was cut; {REFUSE}",
                                 bad.words()
                             ),
                         ));
@@ -364,6 +375,11 @@ impl Writer {
         self.open.as_ref().map(|o| o.index)
     }
 
+    /// Bytes of encoded records waiting to be written.
+    pub fn buffered_bytes(&self) -> usize {
+        self.buf.len()
+    }
+
     /// Whether records are waiting for [`Writer::flush`].
     pub fn has_unflushed(&self) -> bool {
         !self.buf.is_empty()
@@ -429,8 +445,13 @@ impl Writer {
             let own = u64::from(o.checkpoint_offset.is_some() || self.buf_checkpoint.is_some());
             let has_data = o.records + self.buf_records > own;
             if (full || new_day) && has_data {
-                self.flush()?;
-                self.seal(now_ms)?;
+                match self.flush().and_then(|_| self.seal(now_ms)) {
+                    Ok(()) => {}
+                    // No room to finish this segment: keep adding to it, and rotate once the
+                    // disk has room again (the next record tries).
+                    Err(ArchiveError::DiskFull { .. }) if self.open.is_some() => {}
+                    Err(e) => return Err(e),
+                }
             }
         }
         if self.open.is_none() {
@@ -634,6 +655,9 @@ impl Writer {
     }
 }
 
+/// What to do when the writer refuses a damaged archive.
+const REFUSE: &str = "linewarden will not write to this archive until it is dealt with: run `linewarden archive verify` on it and see \"A damaged archive\" in the README";
+
 fn trailer_bytes(seal_frame_len: usize) -> Vec<u8> {
     let mut t = (seal_frame_len as u32).to_le_bytes().to_vec();
     t.extend_from_slice(TRAILER_MAGIC);
@@ -834,6 +858,11 @@ pub fn spawn(
     )
 }
 
+/// While the disk is full the writer goes on taking appends into memory (so producers get
+/// their sequence numbers and are not blocked) until this many bytes wait to be written; then
+/// it stops reading its queue, and producers wait.
+pub const MAX_BUFFERED_WHILE_FULL: usize = 1 << 20;
+
 async fn run(
     mut w: Writer,
     mut rx: mpsc::Receiver<Command>,
@@ -857,9 +886,16 @@ async fn run(
         })
         .map_err(|e| ArchiveError::Stopped(format!("cannot start the sync thread: {e}")))?;
     let mut in_flight = false;
-    // Records received but not yet appended (the disk was full), with their reply.
+    // Records received but not yet appended, with their reply.
     let mut stalled: Waiting = VecDeque::new();
+    // Flush requests that wait for the disk to have room again (a full disk delays a flush; it
+    // never fails it, so a source waiting on one simply holds back).
+    let mut flushes: Vec<Reply> = Vec::new();
     let mut deadline: Option<tokio::time::Instant> = None;
+    // While the disk is full: when to try appending (opening a segment failed) or writing again.
+    let mut append_retry: Option<tokio::time::Instant> = None;
+    let mut write_retry: Option<tokio::time::Instant> = None;
+    let mut full = DiskFullLog::default();
     let mut closed = false;
     let publish = |w: &Writer, state: WriterState| {
         status.send_replace(Status {
@@ -869,27 +905,30 @@ async fn run(
         });
     };
     loop {
+        let now = tokio::time::Instant::now();
+        if append_retry.is_some_and(|t| t <= now) {
+            append_retry = None;
+        }
+        if write_retry.is_some_and(|t| t <= now) {
+            write_retry = None;
+        }
         // 1. Append what is waiting, in order.
-        while let Some((record, reply, last)) = stalled.pop_front() {
+        while append_retry.is_none()
+            && let Some((record, reply, last)) = stalled.pop_front()
+        {
             match w.append(&record, clock()) {
                 Ok(seq) => {
-                    if interval.is_zero() {
-                        if let Err(e) = w.flush() {
-                            return finish_error(&w, e, &publish);
-                        }
-                        publish(&w, WriterState::Running);
-                    } else if deadline.is_none() {
-                        deadline = Some(tokio::time::Instant::now() + interval);
+                    if deadline.is_none() {
+                        deadline = Some(now + interval);
                     }
                     if last && let Some(r) = reply {
                         let _ = r.send(Ok(seq));
                     }
                 }
                 Err(e @ ArchiveError::DiskFull { .. }) => {
-                    disk_full(&w, &e, &publish);
+                    full.report(&w, &e, &publish);
                     stalled.push_front((record, reply, last));
-                    tokio::time::sleep(retry).await;
-                    break;
+                    append_retry = Some(now + retry);
                 }
                 Err(e) => {
                     if let Some(r) = reply {
@@ -899,13 +938,33 @@ async fn run(
                 }
             }
         }
-        if !stalled.is_empty() {
-            continue;
+        // 2. Flush requests: once everything before them is appended, write and sync at once.
+        if !flushes.is_empty() && stalled.is_empty() && write_retry.is_none() && !in_flight {
+            match w.flush() {
+                Ok(seq) => {
+                    full.resolved(&w, &publish);
+                    for r in flushes.drain(..) {
+                        let _ = r.send(Ok(seq));
+                    }
+                    deadline = None;
+                }
+                Err(e @ ArchiveError::DiskFull { .. }) => {
+                    full.report(&w, &e, &publish);
+                    write_retry = Some(now + retry);
+                }
+                Err(e) => {
+                    for r in flushes.drain(..) {
+                        let _ = r.send(Err(e.to_string()));
+                    }
+                    return finish_error(&w, e, &publish);
+                }
+            }
         }
-        // 2. Write out and start a sync when due (or when the input has closed).
-        let due = deadline.is_some_and(|d| d <= tokio::time::Instant::now())
+        // 3. Write out and start a sync when due (or when the input has closed).
+        let due = interval.is_zero()
+            || deadline.is_some_and(|d| d <= now)
             || (closed && w.has_unflushed());
-        if due && !in_flight {
+        if due && !in_flight && write_retry.is_none() {
             match w.write_out() {
                 Ok(Some(p)) => {
                     if sync_tx.send(p).is_err() {
@@ -917,24 +976,29 @@ async fn run(
                 }
                 Ok(None) => deadline = None,
                 Err(e @ ArchiveError::DiskFull { .. }) => {
-                    disk_full(&w, &e, &publish);
-                    tokio::time::sleep(retry).await;
-                    continue;
+                    full.report(&w, &e, &publish);
+                    write_retry = Some(now + retry);
                 }
                 Err(e) => return finish_error(&w, e, &publish),
             }
         }
-        if closed && !in_flight && !w.has_unflushed() {
+        if closed && stalled.is_empty() && flushes.is_empty() && !in_flight && !w.has_unflushed() {
             drop(sync_tx);
             let _ = syncer.join();
             publish(&w, WriterState::Stopped);
             return Ok(());
         }
-        // 3. Wait for input, a finished sync, or the flush deadline.
-        let sleep_to =
-            deadline.unwrap_or_else(|| tokio::time::Instant::now() + Duration::from_secs(3600));
+        // 4. Wait for input, a finished sync, the flush deadline or the next try on a full
+        // disk. While the disk is full, appends are still taken into memory up to a bound, so
+        // that producers get their sequence numbers; past it the queue fills and they wait.
+        let room = w.buffered_bytes() < MAX_BUFFERED_WHILE_FULL
+            && stalled.len() < MAX_BUFFERED_WHILE_FULL / 64;
+        let wake = [deadline.filter(|_| !in_flight), append_retry, write_retry]
+            .into_iter()
+            .flatten()
+            .min();
         tokio::select! {
-            cmd = rx.recv(), if !closed => {
+            cmd = rx.recv(), if !closed && room => {
                 let Some(cmd) = cmd else {
                     closed = true;
                     continue;
@@ -953,7 +1017,11 @@ async fn run(
                             let n = records.len();
                             if n == 0 {
                                 if let Some(r) = reply {
-                                    let _ = r.send(Ok(w.next_seq() - 1));
+                                    if stalled.is_empty() {
+                                        let _ = r.send(Ok(w.next_seq() - 1));
+                                    } else {
+                                        flushes.push(r);
+                                    }
                                 }
                                 continue;
                             }
@@ -963,12 +1031,7 @@ async fn run(
                                 stalled.push_back((r, if last { reply.take() } else { None }, last));
                             }
                         }
-                        Command::Flush(reply) => {
-                            if let Err(e) = flush_now(&mut w, &mut stalled, &clock, reply, &publish) {
-                                return finish_error(&w, e, &publish);
-                            }
-                            deadline = None;
-                        }
+                        Command::Flush(reply) => flushes.push(reply),
                     }
                 }
             }
@@ -977,6 +1040,7 @@ async fn run(
                 match done {
                     Some(Ok(seq)) => {
                         w.mark_durable(seq);
+                        full.resolved(&w, &publish);
                         publish(&w, WriterState::Running);
                     }
                     Some(Err(e)) => return finish_error(&w, e, &publish),
@@ -986,67 +1050,58 @@ async fn run(
                     }
                 }
             }
-            _ = tokio::time::sleep_until(sleep_to), if deadline.is_some() && !in_flight => {}
+            _ = tokio::time::sleep_until(wake.unwrap_or(now)), if wake.is_some() => {}
             else => {}
         }
     }
 }
 
-/// Appends what is waiting, then writes and fdatasyncs at once (a `flush` command). A full disk
-/// is reported to the caller and leaves the rest waiting; other errors are returned.
-fn flush_now(
-    w: &mut Writer,
-    stalled: &mut Waiting,
-    clock: &impl Fn() -> i64,
-    reply: oneshot::Sender<Result<u64, String>>,
-    publish: &impl Fn(&Writer, WriterState),
-) -> Result<(), ArchiveError> {
-    while let Some((record, r, last)) = stalled.pop_front() {
-        match w.append(&record, clock()) {
-            Ok(seq) => {
-                if last && let Some(r) = r {
-                    let _ = r.send(Ok(seq));
-                }
-            }
-            Err(e @ ArchiveError::DiskFull { .. }) => {
-                stalled.push_front((record, r, last));
-                disk_full(w, &e, publish);
-                let _ = reply.send(Err(e.to_string()));
-                return Ok(());
-            }
-            Err(e) => {
-                let _ = reply.send(Err(e.to_string()));
-                return Err(e);
-            }
-        }
-    }
-    match w.flush() {
-        Ok(seq) => {
-            publish(w, WriterState::Running);
-            let _ = reply.send(Ok(seq));
-            Ok(())
-        }
-        Err(e @ ArchiveError::DiskFull { .. }) => {
-            disk_full(w, &e, publish);
-            let _ = reply.send(Err(e.to_string()));
-            Ok(())
-        }
-        Err(e) => {
-            let _ = reply.send(Err(e.to_string()));
-            Err(e)
-        }
-    }
+/// A full disk is reported once when it starts (logged, and published so the daemon holds its
+/// sources back and shows it), again every minute while it lasts, and once when it is over.
+#[derive(Default)]
+struct DiskFullLog {
+    since: Option<std::time::Instant>,
+    last_logged: Option<std::time::Instant>,
 }
 
-/// Reports a full disk: logged, and published so the daemon can raise it.
-fn disk_full(w: &Writer, e: &ArchiveError, publish: &impl Fn(&Writer, WriterState)) {
-    tracing::error!(component = "archive", "{e}");
-    publish(
-        w,
-        WriterState::DiskFull {
-            message: e.to_string(),
-        },
-    );
+impl DiskFullLog {
+    fn report(&mut self, w: &Writer, e: &ArchiveError, publish: &impl Fn(&Writer, WriterState)) {
+        let now = std::time::Instant::now();
+        let since = *self.since.get_or_insert(now);
+        if self
+            .last_logged
+            .is_none_or(|t| now.duration_since(t) >= Duration::from_secs(60))
+        {
+            self.last_logged = Some(now);
+            if since == now {
+                tracing::error!(component = "archive", "{e}");
+            } else {
+                tracing::error!(
+                    component = "archive",
+                    "{e} (full for {:.0} s now)",
+                    now.duration_since(since).as_secs_f64()
+                );
+            }
+        }
+        publish(
+            w,
+            WriterState::DiskFull {
+                message: e.to_string(),
+            },
+        );
+    }
+
+    fn resolved(&mut self, w: &Writer, publish: &impl Fn(&Writer, WriterState)) {
+        if let Some(since) = self.since.take() {
+            self.last_logged = None;
+            tracing::warn!(
+                component = "archive",
+                "the disk has room again after {:.0} s; writing resumes",
+                since.elapsed().as_secs_f64()
+            );
+            publish(w, WriterState::Running);
+        }
+    }
 }
 
 fn finish_error(

@@ -217,6 +217,12 @@ pub struct RawSource {
     /// messages archived, while the backlog arrives after connecting).
     pub duplicates: Option<String>,
     pub redelivery_window: Option<usize>,
+    /// mqtt: the largest payload taken as a reading (default 65536 bytes); a larger message is
+    /// archived as rejected (its size, topic and first bytes), acknowledged, and passed over.
+    pub max_payload_bytes: Option<usize>,
+    /// mqtt: a source time further than this from the arrival time (default 86400 s) is kept
+    /// in the record with a warning, and the arrival time orders the reading.
+    pub max_clock_skew_s: Option<u64>,
 }
 
 /// How readings form subgroups.
@@ -347,6 +353,44 @@ pub struct MqttSource {
     /// The characteristic when neither the topic nor the payload names it.
     pub characteristic: Option<String>,
     pub duplicates: Duplicates,
+    /// Larger payloads are rejected (archived as rejected and acknowledged).
+    pub max_payload_bytes: usize,
+    /// A source time further than this from the arrival is not trusted for ordering.
+    pub max_clock_skew_ms: i64,
+}
+
+impl MqttSource {
+    /// A source on a broker at localhost:1883 with every default, taking `payload` on the one
+    /// topic `template` (where a level `{characteristic}` names the characteristic), for the
+    /// tests, benchmarks and fuzz targets that exercise message parsing without a config file.
+    pub fn on_localhost(payload: Payload, template: &str, characteristic: Option<&str>) -> Self {
+        MqttSource {
+            id: "local".into(),
+            broker: Broker {
+                host: "localhost".into(),
+                port: 1883,
+                tls: false,
+                client_id: "linewarden-local".into(),
+                username: None,
+                password: None,
+                ca_file: None,
+                client_cert_file: None,
+                client_key_file: None,
+                keep_alive_s: 30,
+            },
+            topics: vec![TopicFilter {
+                template: template.into(),
+                filter: template.replace("{characteristic}", "+"),
+                characteristic_level: template.split('/').position(|l| l == "{characteristic}"),
+            }],
+            qos: 1,
+            payload,
+            characteristic: characteristic.map(str::to_string),
+            duplicates: Duplicates::PacketId,
+            max_payload_bytes: 64 * 1024,
+            max_clock_skew_ms: 86_400_000,
+        }
+    }
 }
 
 /// How an MQTT source recognises a redelivered message.
@@ -1101,6 +1145,23 @@ fn build_mqtt(
             "redelivery_window is for duplicates = \"content\"",
         ));
     }
+    let max_payload_bytes = s.max_payload_bytes.unwrap_or(64 * 1024);
+    if !(16..=crate::daemon::mqtt::MAX_PACKET).contains(&max_payload_bytes) {
+        p.push(loc.problem(
+            &format!("{at}.max_payload_bytes"),
+            format!(
+                "{max_payload_bytes} is out of range; use 16 to {} (the largest MQTT packet)",
+                crate::daemon::mqtt::MAX_PACKET
+            ),
+        ));
+    }
+    let skew = s.max_clock_skew_s.unwrap_or(86_400);
+    if !(1..=10 * 365 * 86_400).contains(&skew) {
+        p.push(loc.problem(
+            &format!("{at}.max_clock_skew_s"),
+            format!("{skew} is out of range; use 1 to 315360000 (ten years)"),
+        ));
+    }
     Some(MqttSource {
         id: s.id.clone(),
         broker: broker?,
@@ -1109,6 +1170,8 @@ fn build_mqtt(
         payload,
         characteristic: s.characteristic.clone(),
         duplicates,
+        max_payload_bytes,
+        max_clock_skew_ms: skew.min(10 * 365 * 86_400) as i64 * 1000,
     })
 }
 

@@ -106,14 +106,22 @@ pub async fn serve(
 async fn answer(stream: tokio::net::UnixStream, requests: mpsc::Sender<Request>) {
     let (r, mut w) = stream.into_split();
     let mut line = String::new();
-    let mut reader = tokio::io::BufReader::new(r.take(MAX_LINE as u64));
+    // One byte past the limit tells a request that is too long from one that fits exactly.
+    let mut reader = tokio::io::BufReader::new(r.take(MAX_LINE as u64 + 1));
     let read = tokio::time::timeout(Duration::from_secs(5), reader.read_line(&mut line)).await;
     let reply = match read {
+        Ok(Ok(n)) if n > MAX_LINE => serde_json::json!({
+            "ok": false,
+            "error": format!("the request is longer than {MAX_LINE} bytes; a name or note that long is not taken")
+        }),
         Ok(Ok(_)) => match serde_json::from_str::<ClientRequest>(line.trim()) {
             Ok(req) => handle(req, &requests).await,
             Err(e) => serde_json::json!({"ok": false, "error": format!("not a request: {e}")}),
         },
-        _ => return,
+        Ok(Err(e)) => {
+            serde_json::json!({"ok": false, "error": format!("the request cannot be read: {e}")})
+        }
+        Err(_) => return,
     };
     let mut text = reply.to_string();
     text.push('\n');

@@ -8,6 +8,13 @@
 //! Files found in `processing/` at start were cut short by a crash: they are read again, and
 //! readings the archive already holds (by content hash and row, in their source key) are
 //! skipped, so nothing is archived twice.
+//!
+//! A row whose field count differs from the header's is rejected whole (archived as rejected
+//! with the file, line and a hint at the cause), never read by position; so is a row missing a
+//! field, including a last row cut short while the file was still being written. A report whose
+//! content was read before (the same file dropped again under another name) is recognised by
+//! its SHA-256 in the ledger kept beside `done/` and moved to `rejected/` without archiving
+//! its readings again.
 
 use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
@@ -50,9 +57,10 @@ pub async fn run(
     }
     tracing::info!("watching {} for CSV reports", src.path.display());
     // Files cut short by a crash first.
+    let mut ledger = read_ledger(&src.path);
     let leftovers = list_csv(&processing_dir(&src.path));
     for f in leftovers {
-        if !process(&src, &name, &f, &tx).await {
+        if !process(&src, &name, &f, &tx, &mut ledger, true).await {
             return;
         }
     }
@@ -90,7 +98,7 @@ pub async fn run(
                 tracing::error!("cannot move {} into processing/: {e}", f.display());
                 continue;
             }
-            if !process(&src, &name, &taken, &tx).await {
+            if !process(&src, &name, &taken, &tx, &mut ledger, false).await {
                 return;
             }
         }
@@ -116,13 +124,70 @@ fn list_csv(dir: &Path) -> Vec<PathBuf> {
     v
 }
 
-/// Reads one report from `processing/`, sends its readings, waits until the archive holds them
-/// durably, and moves the file on. False when the engine has gone.
+/// The ledger of reports read: one line per report, `sha256 file-name time`, appended once the
+/// report's readings are durable and before it moves to `done/`. A report whose content is in
+/// the ledger is a copy (the same report dropped again under another name) and is not archived
+/// a second time.
+pub const LEDGER: &str = ".linewarden-reports";
+
+/// Content hashes of the reports already read, with the name each was read under.
+pub fn read_ledger(path: &Path) -> HashMap<String, String> {
+    std::fs::read_to_string(path.join(LEDGER))
+        .unwrap_or_default()
+        .lines()
+        .filter_map(|l| {
+            let mut it = l.splitn(3, ' ');
+            let (sha, name) = (it.next()?, it.next()?);
+            (sha.len() == 64).then(|| (sha.to_string(), name.to_string()))
+        })
+        .collect()
+}
+
+fn append_ledger(path: &Path, sha: &str, report: &str) -> std::io::Result<()> {
+    use std::io::Write;
+    let mut f = std::fs::OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(path.join(LEDGER))?;
+    // Names with spaces or line breaks are written with those replaced: the ledger is read by
+    // the hash, the name is only for people.
+    let name: String = report
+        .chars()
+        .map(|c| {
+            if c.is_whitespace() || c.is_control() {
+                '_'
+            } else {
+                c
+            }
+        })
+        .collect();
+    writeln!(f, "{sha} {name} {}", crate::format::utc_ms(now_ms()))?;
+    f.sync_data()
+}
+
+/// Moves a report that will not be read into `rejected/` with a `.error` file saying why.
+fn reject_file(src: &FolderSource, file: &Path, report: &str, reason: &str) {
+    tracing::warn!("rejected report {report}: {reason}");
+    let to = src.path.join("rejected").join(report);
+    let error = src.path.join("rejected").join(format!("{report}.error"));
+    if let Err(e) = crate::fsutil::write_atomic(&error, format!("{reason}\n").as_bytes()) {
+        tracing::error!("cannot write {}: {e}", error.display());
+    }
+    if let Err(e) = std::fs::rename(file, &to) {
+        tracing::error!("cannot move {report} to rejected/: {e}");
+    }
+    let _ = crate::fsutil::sync_dir(&src.path.join("rejected"));
+}
+
+/// Reads one report from `processing/`, sends its readings and its bad rows, waits until the
+/// archive holds them durably, and moves the file on. False when the engine has gone.
 async fn process(
     src: &FolderSource,
     name: &str,
     file: &Path,
     tx: &mpsc::Sender<SourceEvent>,
+    ledger: &mut HashMap<String, String>,
+    leftover: bool,
 ) -> bool {
     let report = file
         .file_name()
@@ -136,17 +201,40 @@ async fn process(
         }
     };
     let sha = crate::archive::segment::sha256_hex(&bytes);
+    if leftover && ledger.contains_key(&sha) {
+        // Read and archived before a crash cut the move to done/ short: finish the move.
+        let to = src.path.join("done").join(&report);
+        match std::fs::rename(file, &to)
+            .and_then(|_| crate::fsutil::sync_dir(&src.path.join("done")))
+        {
+            Ok(()) => tracing::info!("{report} was read before the restart; moved to done/"),
+            Err(e) => tracing::error!("cannot move {report} to done/: {e}"),
+        }
+        return true;
+    }
+    if let Some(first) = ledger.get(&sha) {
+        let reason = format!(
+            "{report} has the same content (SHA-256 {sha}) as the report read before as {first}; its readings are already archived and are not archived again"
+        );
+        let ev = SourceEvent::Unreadable {
+            source: name.to_string(),
+            characteristic: None,
+            raw: report.clone(),
+            reason: reason.clone(),
+            source_key: None,
+        };
+        if tx.send(ev).await.is_err() {
+            return false;
+        }
+        reject_file(src, file, &report, &reason);
+        return true;
+    }
     let text = String::from_utf8_lossy(&bytes);
     let parsed = parse(&text, &report, &src.rows, src.part_column.as_deref());
     let (readings, bad) = match parsed {
         Ok(x) => x,
         Err(reason) => {
-            tracing::warn!("rejected report {report}: {reason}");
-            let to = src.path.join("rejected").join(&report);
-            let error = src.path.join("rejected").join(format!("{report}.error"));
-            let _ = crate::fsutil::write_atomic(&error, format!("{reason}\n").as_bytes());
-            let _ = std::fs::rename(file, &to);
-            let _ = crate::fsutil::sync_dir(&src.path.join("rejected"));
+            reject_file(src, file, &report, &reason);
             return true;
         }
     };
@@ -163,6 +251,7 @@ async fn process(
             value,
             unit: None,
             source_time_ms: None,
+            source_time_ignored: false,
             arrival_ms: arrival,
             part,
             source_key: Some(source_key),
@@ -172,12 +261,18 @@ async fn process(
         }
         sent += 1;
     }
-    for (raw, reason) in bad {
+    let bad_rows = bad.len();
+    for (key, raw, reason) in bad {
+        let source_key = format!("{sha}:{key}");
+        if src.already.contains(&source_key) {
+            continue;
+        }
         let ev = SourceEvent::Unreadable {
             source: name.to_string(),
             characteristic: None,
             raw,
             reason,
+            source_key: Some(source_key),
         };
         if tx.send(ev).await.is_err() {
             return false;
@@ -191,21 +286,40 @@ async fn process(
     if done_rx.await.is_err() {
         return false;
     }
+    if let Err(e) = append_ledger(&src.path, &sha, &report) {
+        tracing::error!(
+            "cannot add {report} to the ledger {}: {e}; a copy of it would be archived again",
+            src.path.join(LEDGER).display()
+        );
+    }
+    ledger.insert(sha, report.clone());
     let to = src.path.join("done").join(&report);
     match std::fs::rename(file, &to).and_then(|_| crate::fsutil::sync_dir(&src.path.join("done"))) {
+        Ok(()) if bad_rows > 0 => tracing::warn!(
+            "read {report}: {sent} readings archived, {bad_rows} row(s) or cell(s) rejected (see the archive); moved to done/"
+        ),
         Ok(()) => tracing::info!("read {report}: {sent} readings archived; moved to done/"),
         Err(e) => tracing::error!("read {report} but cannot move it to done/: {e}"),
     }
     true
 }
 
-type Parsed = (
-    Vec<(String, String, f64, Option<String>)>,
-    Vec<(String, String)>,
-);
+/// A reading found in a report: (row:column key, characteristic, value, part).
+pub type Found = (String, String, f64, Option<String>);
 
-/// Readings of a report as (row:column key, characteristic, value, part), and bad cells as
-/// (raw, reason). An error when the file is not a report of the configured layout.
+/// A row or cell that is not a reading: (key, raw text, reason with file:line[:column]).
+pub type Bad = (String, String, String);
+
+/// What a report holds: its readings, and the rows and cells that are not readings.
+pub type Parsed = (Vec<Found>, Vec<Bad>);
+
+/// Readings of a report, and its bad rows and cells with the reason for each. An error when
+/// the file is not a report of the configured layout at all (no header, a missing column).
+///
+/// A row is never read by position when its field count differs from the header's: every
+/// value would land in the wrong column. Such a row is rejected whole, with a hint at the
+/// usual causes (a decimal comma, another delimiter, a row cut short while being written). An
+/// empty cell in a row of the right length is a feature not measured on that part.
 pub fn parse(
     text: &str,
     file: &str,
@@ -224,21 +338,39 @@ pub fn parse(
         .collect();
     let col = |name: &str| {
         header.iter().position(|h| h == name).ok_or_else(|| {
+            let hint = match header.as_slice() {
+                [only] if only.contains(';') => {
+                    " (the fields look separated by ';': reports must use ',')".to_string()
+                }
+                [only] if only.contains('\t') => {
+                    " (the fields look separated by tabs: reports must use ',')".to_string()
+                }
+                _ => String::new(),
+            };
             format!(
-                "{file}: no column \"{name}\" (the header has: {})",
+                "{file}: no column \"{name}\" (the header has: {}){hint}",
                 header.join(", ")
             )
         })
     };
     let part_at = part_column.map(col).transpose()?;
     let mut readings = Vec::new();
-    let mut bad = Vec::new();
-    let number = |raw: &str, line: u64, column: usize| -> Result<f64, (String, String)> {
+    let mut bad: Vec<Bad> = Vec::new();
+    let number = |raw: &str, line: u64, column: usize| -> Result<f64, Bad> {
         match raw.parse::<f64>() {
             Ok(v) if v.is_finite() => Ok(v),
             _ => Err((
+                format!("{line}:{}", column + 1),
                 raw.to_string(),
-                format!("{file}:{line}:{}: \"{raw}\" is not a reading", column + 1),
+                format!(
+                    "{file}:{line}:{}: \"{raw}\" is not a reading{}",
+                    column + 1,
+                    if looks_decimal_comma(raw) {
+                        " (a decimal comma? reports must use a decimal point)"
+                    } else {
+                        ""
+                    }
+                ),
             )),
         }
     };
@@ -256,22 +388,59 @@ pub fn parse(
         } => Some((col(characteristic_column)?, col(value_column)?)),
         ReportRows::PerPart { .. } => None,
     };
-    for rec in r.records() {
-        let rec = rec.map_err(|e| format!("{file}: {e}"))?;
+    let unterminated = !text.is_empty() && !text.ends_with('\n') && !text.ends_with('\r');
+    let mut records = r.records().peekable();
+    while let Some(rec) = records.next() {
+        let last = records.peek().is_none();
+        let rec = match rec {
+            Ok(rec) => rec,
+            Err(e) => {
+                let line = e.position().map_or(0, |p| p.line());
+                bad.push((
+                    format!("{line}:row"),
+                    String::new(),
+                    format!("{file}:{line}: the row cannot be read: {e}"),
+                ));
+                continue;
+            }
+        };
         let line = rec.position().map_or(0, |p| p.line());
+        if rec.len() != header.len() {
+            let raw = rec.iter().collect::<Vec<_>>().join(",");
+            bad.push((
+                format!("{line}:row"),
+                raw,
+                format!(
+                    "{file}:{line}: the row has {} field(s) where the header has {}; none of its values were read{}",
+                    rec.len(),
+                    header.len(),
+                    field_count_hint(&rec, header.len(), last && unterminated)
+                ),
+            ));
+            continue;
+        }
         let part = part_at
             .and_then(|i| rec.get(i))
             .filter(|s| !s.is_empty())
             .map(str::to_string);
         match per_reading {
             Some((ci, vi)) => {
-                let (Some(c), Some(v)) = (rec.get(ci), rec.get(vi)) else {
+                let (c, v) = (rec.get(ci).unwrap_or(""), rec.get(vi).unwrap_or(""));
+                if c.is_empty() || v.is_empty() {
                     bad.push((
+                        format!("{line}:row"),
                         rec.iter().collect::<Vec<_>>().join(","),
-                        format!("{file}:{line}: the row is short"),
+                        format!(
+                            "{file}:{line}: the {} is empty",
+                            if c.is_empty() {
+                                "characteristic"
+                            } else {
+                                "value"
+                            }
+                        ),
                     ));
                     continue;
-                };
+                }
                 match number(v, line, vi) {
                     Ok(x) => readings.push((format!("{line}:{}", vi + 1), c.to_string(), x, part)),
                     Err(b) => bad.push(b),
@@ -280,7 +449,7 @@ pub fn parse(
             None => {
                 for (i, id) in &mapped {
                     match rec.get(*i) {
-                        // An empty cell: the feature was not measured on this part.
+                        // An empty cell in a whole row: the feature was not measured.
                         None | Some("") => {}
                         Some(v) => match number(v, line, *i) {
                             Ok(x) => readings.push((
@@ -297,4 +466,50 @@ pub fn parse(
         }
     }
     Ok((readings, bad))
+}
+
+/// Whether a cell looks like a number written with a decimal comma ("12,003").
+fn looks_decimal_comma(raw: &str) -> bool {
+    let mut parts = raw.split(',');
+    matches!(
+        (parts.next(), parts.next(), parts.next()),
+        (Some(a), Some(b), None)
+            if !a.is_empty() && !b.is_empty()
+                && a.trim_start_matches('-').bytes().all(|c| c.is_ascii_digit())
+                && b.bytes().all(|c| c.is_ascii_digit())
+    )
+}
+
+/// The likely cause of a row whose field count is not the header's.
+fn field_count_hint(rec: &csv::StringRecord, expected: usize, unterminated_last: bool) -> String {
+    let n = rec.len();
+    if n < expected && unterminated_last {
+        return " (it is the last line and has no line ending: the file was probably still being written when it was taken; send the report again complete)".into();
+    }
+    if n == 1 && rec.get(0).is_some_and(|f| f.contains(';')) {
+        return " (the fields look separated by ';': reports must use ',')".into();
+    }
+    if n == 1 && rec.get(0).is_some_and(|f| f.contains('\t')) {
+        return " (the fields look separated by tabs: reports must use ',')".into();
+    }
+    if n > expected {
+        // Two neighbouring fields of digits, the second not starting a new number, are the
+        // mark of a decimal comma: 12,003 read as "12" and "003".
+        let digits = |s: &str| {
+            !s.is_empty()
+                && s.trim_start_matches('-')
+                    .bytes()
+                    .all(|c| c.is_ascii_digit())
+        };
+        let pair = rec
+            .iter()
+            .zip(rec.iter().skip(1))
+            .any(|(a, b)| digits(a) && digits(b));
+        return if pair {
+            " (a decimal comma such as \"12,003\" splits one value into two fields: reports must use a decimal point)".into()
+        } else {
+            " (a decimal comma or an unquoted ',' inside a field?)".into()
+        };
+    }
+    " (a field is missing)".into()
 }

@@ -25,6 +25,9 @@ pub struct SourceHealth {
     pub last_reading_ms: Option<i64>,
     pub readings: u64,
     pub rejected: u64,
+    /// Readings whose source time was too far from their arrival to order them by.
+    #[serde(default)]
+    pub clock_skewed: u64,
     #[serde(default, skip_serializing_if = "String::is_empty")]
     pub detail: String,
 }

@@ -44,6 +44,8 @@ pub enum SourceEvent {
         characteristic: Option<String>,
         raw: String,
         reason: String,
+        /// The message's key at its source (see `Record::ReadingRejected`), if it has one.
+        source_key: Option<String>,
     },
     /// The source has nothing more to send (a replay that finished).
     Ended {
@@ -274,6 +276,7 @@ pub async fn run(
                 last_reading_ms: None,
                 readings: 0,
                 rejected: 0,
+                clock_skewed: 0,
                 detail: String::new(),
             },
         );
@@ -361,6 +364,8 @@ pub async fn run(
     states_tx.send_replace(std::sync::Arc::new(states.clone()));
     fx = Effects::default();
 
+    let mut archive_watch = archive.status();
+    let mut was_full = false;
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     let mut ended = 0;
@@ -369,8 +374,23 @@ pub async fn run(
     let reason = loop {
         progress.store(now_ms(), std::sync::atomic::Ordering::Relaxed);
         let mut health_changed = false;
+        // While the archive's disk is full, readings are not taken from the sources: they hold
+        // back (MQTT stops acknowledging, the folder stops moving reports, serial gauges count
+        // what they must drop), while status, acknowledgements and the light go on. The 1 s
+        // tick notices when there is room again.
+        let archive_full = matches!(
+            archive_watch.borrow_and_update().state,
+            crate::archive::writer::WriterState::DiskFull { .. }
+        );
+        if archive_full != was_full {
+            was_full = archive_full;
+            health_changed = true;
+        }
         tokio::select! {
-            ev = rx.recv() => {
+            // The writer's status changed (a sync, or the disk filling or freeing): the light
+            // and the gate above follow at once.
+            Ok(()) = archive_watch.changed() => {}
+            ev = rx.recv(), if !archive_full => {
                 let Some(first) = ev else { break "every source has stopped".to_string() };
                 // Take what else is waiting (up to BATCH events) and archive consecutive
                 // accepted readings with one append: one round trip to the writer per batch.
@@ -406,19 +426,28 @@ pub async fn run(
                                 raw: inc.value.to_string(),
                                 reason,
                                 arrival_ms: inc.arrival_ms,
+                                source_key: inc.source_key.clone(),
                             }]).await?;
                         }
-                        SourceEvent::Unreadable { source, characteristic, raw, reason } => {
+                        SourceEvent::Unreadable { source, characteristic, raw, reason, source_key } => {
                             summary.rejected += 1;
                             if let Some(h) = health.get_mut(&source) {
                                 h.rejected += 1;
                             }
                             reject(&mut rejected_logged, &source, &raw, &reason);
-                            archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms() }]).await?;
+                            archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms(), source_key }]).await?;
                         }
                         SourceEvent::Barrier(done) => {
-                            archive.flush().await?;
-                            let _ = done.send(());
+                            // Answered once everything before it is durable. A full disk delays
+                            // the answer (the source waits, and holds back) without holding up
+                            // this loop; a failed archive drops it, and the next append stops
+                            // the daemon with the archive's error.
+                            let archive = archive.clone();
+                            tokio::spawn(async move {
+                                if archive.flush().await.is_ok() {
+                                    let _ = done.send(());
+                                }
+                            });
                         }
                         SourceEvent::Health { source, up, detail } => {
                             if let Some(h) = health.get_mut(&source) {
@@ -646,6 +675,7 @@ async fn take_readings(
         if let Some(h) = health.get_mut(&inc.source) {
             h.readings += 1;
             h.last_reading_ms = Some(inc.arrival_ms);
+            h.clock_skewed += u64::from(inc.source_time_ignored);
         }
         out.extend(engine.accept(first + k as u64, &inc));
     }
@@ -678,11 +708,15 @@ async fn already_archived(
             return keys;
         };
         let filter = crate::archive::reader::Filter {
-            kinds: vec!["reading-accepted".into()],
+            kinds: vec!["reading-accepted".into(), "reading-rejected".into()],
             ..Default::default()
         };
         for e in r.iter(&filter).flatten() {
             if let Record::ReadingAccepted {
+                source_key: Some(k),
+                ..
+            }
+            | Record::ReadingRejected {
                 source_key: Some(k),
                 ..
             } = e.record

@@ -25,8 +25,18 @@ use super::{SourceEvent, now_ms};
 use crate::config::{Broker, Duplicates, MqttSource, Payload, TopicFilter};
 use crate::engine::Incoming;
 
-/// The biggest payload accepted (a reading is a few dozen bytes).
-pub const MAX_PAYLOAD: usize = 64 * 1024;
+/// The largest packet MQTT 3.1.1 can carry (the remaining length field's maximum).
+///
+/// The client takes any packet up to this size. A smaller incoming limit would not protect
+/// anything: MQTT 3.1.1 has no way to tell the broker about it, so a larger message fails to
+/// decode, the connection drops, and the broker sends the same message again on reconnecting,
+/// for ever, with nothing behind it archived. Instead every message is read, and one larger than
+/// the source's `max_payload_bytes` is archived as rejected and acknowledged. To keep huge
+/// messages off the wire altogether, set the broker's own message size limit.
+pub const MAX_PACKET: usize = 268_435_455;
+
+/// The largest packet this client sends (alerts and states are a few kilobytes).
+const MAX_OUTGOING: usize = 1024 * 1024;
 
 /// Connection options for `b`: persistent session, manual acks, TLS when asked.
 pub fn options(b: &Broker, manual_acks: bool) -> Result<MqttOptions, String> {
@@ -34,7 +44,7 @@ pub fn options(b: &Broker, manual_acks: bool) -> Result<MqttOptions, String> {
     o.set_keep_alive(Duration::from_secs(b.keep_alive_s));
     o.set_clean_session(false);
     o.set_manual_acks(manual_acks);
-    o.set_max_packet_size(MAX_PAYLOAD + 1024, MAX_PAYLOAD + 1024);
+    o.set_max_packet_size(MAX_PACKET, MAX_OUTGOING);
     if let (Some(u), Some(p)) = (&b.username, &b.password) {
         o.set_credentials(u.clone(), p.0.clone());
     } else if let Some(u) = &b.username {
@@ -185,7 +195,9 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                 Some(ptr) => match doc.pointer(ptr) {
                     None | Some(serde_json::Value::Null) => None,
                     Some(serde_json::Value::Number(n)) => match n.as_f64() {
-                        Some(ms) if (0.0..1e15).contains(&ms) => Some(ms as i64),
+                        Some(ms) if (0.0..1e15).contains(&ms) && ms.fract() == 0.0 => {
+                            Some(ms as i64)
+                        }
                         _ => {
                             return Err(fail(
                                 c,
@@ -193,13 +205,13 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                             ));
                         }
                     },
-                    Some(serde_json::Value::String(s)) => match humantime::parse_rfc3339_weak(s) {
-                        Ok(t) => t
-                            .duration_since(std::time::UNIX_EPOCH)
-                            .ok()
-                            .map(|d| d.as_millis() as i64),
-                        Err(_) => {
-                            return Err(fail(c, format!("{ptr} = {s:?} is not an RFC 3339 time")));
+                    Some(serde_json::Value::String(s)) => match crate::format::parse_rfc3339(s) {
+                        Ok(ms) => Some(ms),
+                        Err(why) => {
+                            return Err(fail(
+                                c,
+                                format!("{ptr} = {:?} is not an RFC 3339 time: {why}", clip(s)),
+                            ));
                         }
                     },
                     Some(other) => return Err(fail(c, format!("{ptr} is {other}, not a time"))),
@@ -250,7 +262,7 @@ fn key_content(key: &str) -> &str {
     key.rsplit(':').next().unwrap_or(key)
 }
 
-/// The keys source `name` archived, oldest first, from the newest two segments (what the
+/// The keys source `name` archived (accepted or rejected), oldest first, from the newest two segments (what the
 /// broker may still redeliver is never older than the last few acknowledgements).
 pub fn recent_keys(archive: &Path, name: &str) -> Vec<String> {
     let mut keys = Vec::new();
@@ -260,7 +272,14 @@ pub fn recent_keys(archive: &Path, name: &str) -> Vec<String> {
     let n = r.segments().len();
     for i in n.saturating_sub(2)..n {
         for e in r.read_segment(i, None).into_iter().flatten() {
-            if let crate::archive::record::Record::ReadingAccepted {
+            use crate::archive::record::Record;
+            // Rejected messages count too: the broker redelivers them like any other.
+            if let Record::ReadingAccepted {
+                source,
+                source_key: Some(k),
+                ..
+            }
+            | Record::ReadingRejected {
                 source,
                 source_key: Some(k),
                 ..
@@ -299,23 +318,12 @@ pub async fn run(
     } else {
         QoS::AtLeastOnce
     };
-    let window = match src.duplicates {
-        Duplicates::Content { window } => window,
-        Duplicates::PacketId => 0,
-    };
-    let mut last_key: HashMap<u16, String> = HashMap::new();
-    let mut recent: VecDeque<String> = VecDeque::with_capacity(window);
-    for k in known {
-        if let Some(pkid) = key_pkid(&k) {
-            last_key.insert(pkid, k.clone());
-        }
-        remember(&mut recent, window, key_content(&k));
-    }
-    let mut catching_up = false;
+    let mut seen = Redeliveries::new(src.duplicates, known);
     let mut backoff = Duration::from_millis(250);
     let mut down_since: Option<tokio::time::Instant> = None;
     let mut connected = false;
     let mut duplicates = 0u64;
+    let mut skewed = 0u64;
     tracing::info!(
         "connecting to {} as {}, topics {}",
         src.broker.url(),
@@ -334,7 +342,7 @@ pub async fn run(
         match ev {
             Ok(Event::Incoming(Packet::ConnAck(ack))) => {
                 connected = true;
-                catching_up = true;
+                seen.connected();
                 let _ = tx
                     .send(SourceEvent::Health {
                         source: name.clone(),
@@ -378,16 +386,7 @@ pub async fn run(
                 tracing::trace!(pkid = p.pkid, dup = p.dup, topic = %p.topic, "message");
                 let needs_ack = p.qos != QoS::AtMostOnce;
                 let key = needs_ack.then(|| message_key(p.pkid, &p.topic, &p.payload));
-                let duplicate = match (&key, src.duplicates) {
-                    (Some(k), Duplicates::PacketId) => p.dup && last_key.get(&p.pkid) == Some(k),
-                    (Some(k), Duplicates::Content { .. }) if catching_up => {
-                        let c = key_content(k);
-                        let seen = recent.iter().any(|r| r == c);
-                        catching_up = seen;
-                        seen
-                    }
-                    _ => false,
-                };
+                let duplicate = key.as_deref().is_some_and(|k| seen.is_redelivery(p.dup, k));
                 if duplicate {
                     duplicates += 1;
                     if duplicates <= 10 || duplicates.is_multiple_of(1000) {
@@ -398,34 +397,13 @@ pub async fn run(
                         );
                     }
                 } else {
-                    let ev = match parse(&src, &p.topic, &p.payload) {
-                        Ok(r) => {
-                            if let Some(k) = &key {
-                                last_key.insert(p.pkid, k.clone());
-                                remember(&mut recent, window, key_content(k));
-                            }
-                            SourceEvent::Reading(Incoming {
-                                source: name.clone(),
-                                characteristic: r.characteristic,
-                                value: r.value,
-                                unit: None,
-                                source_time_ms: r.time_ms,
-                                arrival_ms: arrival,
-                                part: r.part,
-                                source_key: key,
-                            })
-                        }
-                        Err(u) => SourceEvent::Unreadable {
-                            source: name.clone(),
-                            characteristic: u.characteristic,
-                            raw: format!(
-                                "{}: {}",
-                                p.topic,
-                                clip(&String::from_utf8_lossy(&p.payload))
-                            ),
-                            reason: u.reason,
-                        },
-                    };
+                    // Every message the broker sent is archived once, accepted or rejected, and
+                    // remembered under its key either way: a rejected message that comes again
+                    // is a redelivery like any other.
+                    if let Some(k) = &key {
+                        seen.archived(k);
+                    }
+                    let ev = message_event(&src, &name, &p, key, arrival, &mut skewed);
                     if tx.send(ev).await.is_err() {
                         break;
                     }
@@ -474,15 +452,175 @@ pub async fn run(
     let _ = tx.send(SourceEvent::Ended { source: name }).await;
 }
 
-/// Keeps the last `window` content hashes.
-fn remember(recent: &mut VecDeque<String>, window: usize, content: &str) {
-    if window == 0 {
-        return;
+/// The event for one message: a reading, or why it is not one. `skewed` counts the source
+/// times too far from the arrival to be trusted (logged now and then).
+fn message_event(
+    src: &MqttSource,
+    name: &str,
+    p: &Publish,
+    key: Option<String>,
+    arrival: i64,
+    skewed: &mut u64,
+) -> SourceEvent {
+    let rejected = |characteristic: Option<String>, reason: String, key: Option<String>| {
+        SourceEvent::Unreadable {
+            source: name.to_string(),
+            characteristic,
+            raw: format!(
+                "{}: {}",
+                p.topic,
+                clip(&String::from_utf8_lossy(first_bytes(&p.payload)))
+            ),
+            reason,
+            source_key: key,
+        }
+    };
+    if p.payload.len() > src.max_payload_bytes {
+        return rejected(
+            None,
+            format!(
+                "the message on {} is {} bytes, more than max_payload_bytes = {}; it was not read as a reading",
+                p.topic,
+                p.payload.len(),
+                src.max_payload_bytes
+            ),
+            key,
+        );
     }
-    if recent.len() == window {
-        recent.pop_front();
+    match parse(src, &p.topic, &p.payload) {
+        Ok(r) => {
+            let ignored = r
+                .time_ms
+                .is_some_and(|t| (t - arrival).abs() > src.max_clock_skew_ms);
+            if ignored {
+                *skewed += 1;
+                if *skewed <= 10 || skewed.is_multiple_of(1000) {
+                    tracing::warn!(
+                        "{}",
+                        skew_warning(r.time_ms.unwrap_or(arrival), arrival, src, *skewed)
+                    );
+                }
+            }
+            SourceEvent::Reading(Incoming {
+                source: name.to_string(),
+                characteristic: r.characteristic,
+                value: r.value,
+                unit: None,
+                source_time_ms: r.time_ms,
+                source_time_ignored: ignored,
+                arrival_ms: arrival,
+                part: r.part,
+                source_key: key,
+            })
+        }
+        Err(u) => rejected(u.characteristic, u.reason, key),
     }
-    recent.push_back(content.to_string());
+}
+
+/// The first bytes of a payload, for the record of a rejected message.
+fn first_bytes(payload: &[u8]) -> &[u8] {
+    &payload[..payload.len().min(120)]
+}
+
+/// Words for a source time that is too far from the arrival time.
+pub fn skew_warning(source_ms: i64, arrival_ms: i64, src: &MqttSource, count: u64) -> String {
+    let off_s = (source_ms - arrival_ms) as f64 / 1000.0;
+    let hint = if source_ms
+        .saturating_mul(1000)
+        .saturating_sub(arrival_ms)
+        .abs()
+        <= src.max_clock_skew_ms
+    {
+        " (it looks like seconds since 1970 sent where milliseconds are expected)"
+    } else {
+        ""
+    };
+    format!(
+        "a reading's source time {} is {:.0} s {} its arrival {}, more than max_clock_skew_s = {}{hint}; it is kept in the record, and the arrival time orders the reading ({count} so far from this source)",
+        crate::format::utc_ms(source_ms),
+        off_s.abs(),
+        if off_s < 0.0 { "before" } else { "after" },
+        crate::format::utc_ms(arrival_ms),
+        src.max_clock_skew_ms / 1000
+    )
+}
+
+/// What a source remembers of the messages it archived, to recognise the broker sending one
+/// again (after a reconnect or a kill -9). Pure: the source feeds it keys made by
+/// [`message_key`], the archive's recent keys at start, and each new connection.
+///
+/// Every message archived counts, accepted or rejected: a rejected message comes again like
+/// any other. (Remembering only readings once let a rejected message in the redelivered backlog
+/// end the catch-up, and every reading redelivered after it was stored twice.)
+#[derive(Debug, Clone)]
+pub struct Redeliveries {
+    mode: Duplicates,
+    /// Packet id → key of the last message archived under it (packet-id mode).
+    last_key: HashMap<u16, String>,
+    /// Content hashes of the last `window` messages archived (content mode).
+    recent: VecDeque<String>,
+    window: usize,
+    /// Content mode: the backlog after connecting is still arriving.
+    catching_up: bool,
+}
+
+impl Redeliveries {
+    /// Starts from the keys the archive holds for this source, oldest first.
+    pub fn new(mode: Duplicates, known: Vec<String>) -> Self {
+        let window = match mode {
+            Duplicates::Content { window } => window,
+            Duplicates::PacketId => 0,
+        };
+        let mut r = Redeliveries {
+            mode,
+            last_key: HashMap::new(),
+            recent: VecDeque::with_capacity(window),
+            window,
+            catching_up: false,
+        };
+        for k in &known {
+            r.archived(k);
+        }
+        r
+    }
+
+    /// A connection was made: in content mode the backlog comes first.
+    pub fn connected(&mut self) {
+        self.catching_up = true;
+    }
+
+    /// Whether the message with `key` (and the DUP flag `dup`) is one already archived.
+    pub fn is_redelivery(&mut self, dup: bool, key: &str) -> bool {
+        match self.mode {
+            Duplicates::PacketId => {
+                dup && key_pkid(key)
+                    .is_some_and(|id| self.last_key.get(&id).is_some_and(|k| k == key))
+            }
+            Duplicates::Content { .. } if self.catching_up => {
+                let c = key_content(key);
+                let seen = self.recent.iter().any(|r| r == c);
+                // The first message not archived before ends the backlog: the broker sends what
+                // it holds in order, and everything after it is new.
+                self.catching_up = seen;
+                seen
+            }
+            Duplicates::Content { .. } => false,
+        }
+    }
+
+    /// The message with `key` is being archived (accepted or rejected).
+    pub fn archived(&mut self, key: &str) {
+        if let Some(id) = key_pkid(key) {
+            self.last_key.insert(id, key.to_string());
+        }
+        if self.window == 0 {
+            return;
+        }
+        if self.recent.len() == self.window {
+            self.recent.pop_front();
+        }
+        self.recent.push_back(key_content(key).to_string());
+    }
 }
 
 /// Acknowledges messages in batches once the archive holds them durably: every message handed
@@ -527,31 +665,7 @@ mod tests {
     }
 
     fn source(payload: Payload, topic: &str, characteristic: Option<&str>) -> MqttSource {
-        let levels: Vec<&str> = topic.split('/').collect();
-        MqttSource {
-            id: "t".into(),
-            broker: crate::config::Broker {
-                host: "localhost".into(),
-                port: 1883,
-                tls: false,
-                client_id: "t".into(),
-                username: None,
-                password: None,
-                ca_file: None,
-                client_cert_file: None,
-                client_key_file: None,
-                keep_alive_s: 30,
-            },
-            topics: vec![TopicFilter {
-                template: topic.into(),
-                filter: topic.replace("{characteristic}", "+"),
-                characteristic_level: levels.iter().position(|l| *l == "{characteristic}"),
-            }],
-            qos: 1,
-            payload,
-            characteristic: characteristic.map(str::to_string),
-            duplicates: Duplicates::PacketId,
-        }
+        MqttSource::on_localhost(payload, topic, characteristic)
     }
 
     #[test]
@@ -605,6 +719,124 @@ mod tests {
             let e = parse(&json, "lab/x", payload).unwrap_err();
             assert!(e.reason.contains(why), "{} does not say {why}", e.reason);
         }
+    }
+
+    /// The regression, in both modes: a backlog redelivered after a kill -9 that holds a
+    /// rejected message among readings. Every message already archived is recognised, the
+    /// rejected one included, and the first new one ends the backlog.
+    #[test]
+    fn a_rejected_message_in_the_redelivered_backlog_is_recognised_and_does_not_end_it() {
+        let topic = "cell4/bore/measure";
+        let keys: Vec<String> = [
+            (10, r#"{"v": 12.001, "part": "K1"}"#),
+            (11, r#"{"v": "n/a", "part": "P1"}"#),
+            (12, r#"{"v": 12.002, "part": "K2"}"#),
+        ]
+        .iter()
+        .map(|(id, p)| message_key(*id, topic, p.as_bytes()))
+        .collect();
+        let new = message_key(13, topic, br#"{"v": 12.003, "part": "K3"}"#);
+        // As the archive gives them back at start (accepted and rejected alike).
+        for mode in [Duplicates::PacketId, Duplicates::Content { window: 100 }] {
+            let mut r = Redeliveries::new(mode, keys.clone());
+            r.connected();
+            for k in &keys {
+                assert!(r.is_redelivery(true, k), "{mode:?}: {k} stored twice");
+            }
+            assert!(!r.is_redelivery(false, &new), "{mode:?}");
+        }
+        // And as archived during the run, before the connection dropped.
+        let mut r = Redeliveries::new(Duplicates::Content { window: 100 }, Vec::new());
+        r.connected();
+        for k in &keys {
+            assert!(!r.is_redelivery(false, k));
+            r.archived(k);
+        }
+        r.connected();
+        for k in &keys {
+            assert!(r.is_redelivery(true, k), "{k} stored twice");
+        }
+        // Content mode after rumqttd's way: new packet ids, same content, no DUP.
+        let mut r = Redeliveries::new(Duplicates::Content { window: 100 }, keys.clone());
+        r.connected();
+        assert!(r.is_redelivery(
+            false,
+            &message_key(900, topic, br#"{"v": 12.001, "part": "K1"}"#)
+        ));
+        assert!(r.is_redelivery(
+            false,
+            &message_key(901, topic, br#"{"v": "n/a", "part": "P1"}"#)
+        ));
+        assert!(r.is_redelivery(
+            false,
+            &message_key(902, topic, br#"{"v": 12.002, "part": "K2"}"#)
+        ));
+    }
+
+    /// The regression: RFC 3339 times with a numeric offset were rejected. And a time far from
+    /// the arrival (a wrong gauge clock, or seconds sent for milliseconds) is kept in the
+    /// record, flagged, and the arrival orders the reading.
+    #[test]
+    fn offsets_are_read_and_a_time_far_from_the_arrival_is_kept_but_not_trusted() {
+        let src = source(
+            Payload::Json {
+                value: "/v".into(),
+                time: Some("/t".into()),
+                characteristic: None,
+                part: None,
+            },
+            "cell4/{characteristic}/m",
+            None,
+        );
+        let arrival = 1_796_198_400_000; // 2026-12-02T08:00:00Z
+        let event = |t: &str| {
+            let p = Publish::new(
+                "cell4/bore/m",
+                QoS::AtLeastOnce,
+                format!(r#"{{"v": 12.0, "t": {t}}}"#),
+            );
+            let mut skewed = 0;
+            let ev = message_event(&src, "mqtt:t", &p, None, arrival, &mut skewed);
+            match ev {
+                SourceEvent::Reading(r) => (r, skewed),
+                other => panic!("{t}: {other:?}"),
+            }
+        };
+        for t in [
+            r#""2026-12-02T09:00:00+01:00""#,
+            r#""2026-12-02T03:00:00-05:00""#,
+            r#""2026-12-02T08:00:00Z""#,
+            "1796198400000",
+        ] {
+            let (r, skewed) = event(t);
+            assert_eq!(r.source_time_ms, Some(arrival), "{t}");
+            assert!(!r.source_time_ignored && skewed == 0, "{t}");
+            assert_eq!(r.time_ms(), arrival);
+        }
+        // Seconds for milliseconds (January 1970 as milliseconds), and a clock a year out.
+        for t in ["1796198400", r#""2027-12-02T08:00:00Z""#] {
+            let (r, skewed) = event(t);
+            assert!(r.source_time_ms.is_some(), "{t}: kept");
+            assert!(r.source_time_ignored, "{t}");
+            assert_eq!(skewed, 1);
+            assert_eq!(r.time_ms(), arrival, "{t}: the arrival orders it");
+            assert_eq!(
+                r.record(),
+                crate::archive::Record::ReadingAccepted {
+                    source: "mqtt:t".into(),
+                    characteristic: "bore".into(),
+                    value: 12.0,
+                    unit: None,
+                    source_time_ms: r.source_time_ms,
+                    source_time_ignored: true,
+                    arrival_ms: arrival,
+                    part: None,
+                    source_key: None,
+                }
+            );
+        }
+        let w = skew_warning(1_796_198_400, arrival, &src, 1);
+        assert!(w.contains("looks like seconds since 1970"), "{w}");
     }
 
     #[test]

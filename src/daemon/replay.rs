@@ -72,6 +72,7 @@ pub async fn run(
                     characteristic: None,
                     raw: line.clone(),
                     reason: format!("{}:{line_no}: not a feed line: {e}", file.display()),
+                    source_key: Some(format!("{}:{line_no}", file.display())),
                 };
                 if tx.send(ev).await.is_err() {
                     break;
@@ -96,6 +97,7 @@ pub async fn run(
                 value,
                 unit: None,
                 source_time_ms: None,
+                source_time_ignored: false,
                 arrival_ms: arrival,
                 part: parsed.part,
                 source_key: Some(format!("{}:{line_no}", file.display())),
@@ -105,6 +107,7 @@ pub async fn run(
                 characteristic: Some(parsed.characteristic),
                 raw: raw.unwrap_or_default(),
                 reason: "the gauge output is not a number".into(),
+                source_key: Some(format!("{}:{line_no}", file.display())),
             },
         };
         if tx.send(ev).await.is_err() {

@@ -130,6 +130,74 @@ pub async fn run(
     let _ = tx.send(SourceEvent::Ended { source: name }).await;
 }
 
+/// A gauge cannot be paused: when the engine cannot take a reading at once (its queue is full,
+/// for instance while the archive's disk is full) the reading is dropped and counted, and the
+/// count is archived as a rejected entry as soon as the queue has room again, so the record
+/// says what was lost and when.
+#[derive(Default)]
+struct Dropped {
+    count: u64,
+    since_ms: i64,
+    logged: u64,
+}
+
+impl Dropped {
+    /// Hands `ev` to the engine without waiting; false when the engine has gone.
+    fn offer(
+        &mut self,
+        tx: &mpsc::Sender<SourceEvent>,
+        name: &str,
+        g: &SerialGauge,
+        ev: SourceEvent,
+    ) -> bool {
+        use mpsc::error::TrySendError;
+        if self.count > 0 {
+            let note = SourceEvent::Unreadable {
+                source: name.to_string(),
+                characteristic: g.characteristic.clone(),
+                raw: format!("{} reading(s)", self.count),
+                reason: format!(
+                    "{} reading(s) from {} dropped from {} on: the engine could not take them (is the archive's disk full?)",
+                    self.count,
+                    g.port,
+                    crate::format::utc_ms(self.since_ms)
+                ),
+                source_key: None,
+            };
+            match tx.try_send(note) {
+                Ok(()) => {
+                    tracing::warn!(
+                        "{} reading(s) were dropped while the engine could not take them; archived as rejected",
+                        self.count
+                    );
+                    self.count = 0;
+                }
+                Err(TrySendError::Full(_)) => {}
+                Err(TrySendError::Closed(_)) => return false,
+            }
+        }
+        match tx.try_send(ev) {
+            Ok(()) => true,
+            Err(TrySendError::Full(_)) => {
+                if self.count == 0 {
+                    self.since_ms = now_ms();
+                }
+                self.count += 1;
+                self.logged += 1;
+                if self.logged <= 3 || self.logged.is_multiple_of(100) {
+                    tracing::warn!(
+                        "the engine cannot take readings from {} now; dropped {} so far",
+                        g.port,
+                        self.count
+                    );
+                }
+                true
+            }
+            Err(TrySendError::Closed(_)) => false,
+        }
+    }
+}
+
 async fn read_loop(
     g: &SerialGauge,
     re: &regex::Regex,
@@ -142,6 +210,7 @@ async fn read_loop(
     let mut buf: Vec<u8> = Vec::with_capacity(256);
     let mut chunk = [0u8; 512];
     let mut ask = tokio::time::interval(Duration::from_millis(g.request_interval_ms.max(10)));
+    let mut dropped = Dropped::default();
     loop {
         tokio::select! {
             n = port.read(&mut chunk) => match n {
@@ -151,7 +220,7 @@ async fn read_loop(
                     while let Some(pos) = buf.windows(term.len()).position(|w| w == term) {
                         let frame: Vec<u8> = buf.drain(..pos + term.len()).take(pos).collect();
                         if let Some(ev) = frame_event(g, re, name, &frame)
-                            && tx.send(ev).await.is_err()
+                            && !dropped.offer(tx, name, g, ev)
                         {
                             return Ended::EngineGone;
                         }
@@ -164,6 +233,7 @@ async fn read_loop(
                             characteristic: g.characteristic.clone(),
                             raw,
                             reason: format!("no terminator in {MAX_FRAME} bytes: wrong baud rate or terminator?"),
+                            source_key: None,
                         };
                         if tx.send(ev).await.is_err() {
                             return Ended::EngineGone;
@@ -184,7 +254,9 @@ async fn read_loop(
 }
 
 /// The event for one frame (None for an empty frame).
-fn frame_event(
+/// The event for one frame from a gauge: a reading, why it is not one, or nothing for an empty
+/// frame.
+pub fn frame_event(
     g: &SerialGauge,
     re: &regex::Regex,
     name: &str,
@@ -199,6 +271,7 @@ fn frame_event(
         characteristic: g.characteristic.clone(),
         raw: text.clone(),
         reason,
+        source_key: None,
     };
     let Some(caps) = re.captures(&text) else {
         return Some(bad("the frame does not match the gauge's pattern".into()));
@@ -244,6 +317,7 @@ fn frame_event(
         value,
         unit,
         source_time_ms: None,
+        source_time_ignored: false,
         arrival_ms: now_ms(),
         part: None,
         source_key: None,

@@ -36,15 +36,22 @@ pub struct Incoming {
     pub value: f64,
     pub unit: Option<String>,
     pub source_time_ms: Option<i64>,
+    /// The source's time is too far from the arrival to be trusted: kept in the record, but
+    /// the arrival time orders the reading.
+    pub source_time_ignored: bool,
     pub arrival_ms: i64,
     pub part: Option<String>,
     pub source_key: Option<String>,
 }
 
 impl Incoming {
-    /// When it was measured: the source's time if it gave one, else the arrival.
+    /// When it was measured: the source's time if it gave one it can be trusted with, else the
+    /// arrival.
     pub fn time_ms(&self) -> i64 {
-        self.source_time_ms.unwrap_or(self.arrival_ms)
+        match self.source_time_ms {
+            Some(t) if !self.source_time_ignored => t,
+            _ => self.arrival_ms,
+        }
     }
 
     /// The record that archives it.
@@ -55,6 +62,7 @@ impl Incoming {
             value: self.value,
             unit: self.unit.clone(),
             source_time_ms: self.source_time_ms,
+            source_time_ignored: self.source_time_ignored,
             arrival_ms: self.arrival_ms,
             part: self.part.clone(),
             source_key: self.source_key.clone(),
@@ -406,7 +414,13 @@ impl Engine {
         note: Option<&str>,
         now_ms: i64,
     ) -> Result<(Vec<String>, Vec<Output>), crate::alerts::AckError> {
-        let events = self.alerts.acknowledge(target, by, note, now_ms)?;
+        let events = match self.alerts.acknowledge(target, by, note, now_ms) {
+            // A characteristic that never had an alert is known, just quiet: say that.
+            Err(crate::alerts::AckError::Unknown(t)) if self.chars.contains_key(&t) => {
+                return Err(crate::alerts::AckError::NothingOpen(t));
+            }
+            other => other?,
+        };
         let mut ids: Vec<String> = events.iter().map(|e| e.alert_id.clone()).collect();
         ids.dedup();
         Ok((ids, events.into_iter().map(alert_record).collect()))

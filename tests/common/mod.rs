@@ -43,3 +43,44 @@ pub fn run_daemon(cfg: linewarden::config::Config) -> linewarden::daemon::Summar
     rt.block_on(linewarden::daemon::run(cfg, stop_rx, reload_rx))
         .unwrap()
 }
+
+/// A small filesystem mounted for a test, unmounted when dropped.
+pub struct Mount(std::path::PathBuf);
+
+impl Drop for Mount {
+    fn drop(&mut self) {
+        let _ = std::process::Command::new("umount")
+            .arg("-l")
+            .arg(&self.0)
+            .status();
+    }
+}
+
+/// A directory on a filesystem of `size` bytes (a tmpfs the test mounts as root, or the one CI
+/// names in LINEWARDEN_SMALL_FS), or None when none can be had.
+pub fn small_fs(base: &std::path::Path, size: &str) -> Option<(std::path::PathBuf, Option<Mount>)> {
+    if let Ok(p) = std::env::var("LINEWARDEN_SMALL_FS") {
+        let dir = std::path::PathBuf::from(p).join(format!("t{}", std::process::id()));
+        std::fs::create_dir_all(&dir).ok()?;
+        return Some((dir, None));
+    }
+    let mnt = base.join("fs");
+    std::fs::create_dir_all(&mnt).ok()?;
+    let ok = std::process::Command::new("mount")
+        .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
+        .arg(&mnt)
+        .status()
+        .is_ok_and(|s| s.success());
+    ok.then(|| (mnt.clone(), Some(Mount(mnt))))
+}
+
+/// Fills the filesystem holding `dir` with a ballast file until writing fails; returns it.
+pub fn fill_disk(dir: &std::path::Path) -> std::path::PathBuf {
+    use std::io::Write;
+    let ballast = dir.join("ballast");
+    let mut f = std::fs::File::create(&ballast).unwrap();
+    let chunk = vec![0u8; 4096];
+    while f.write_all(&chunk).is_ok() {}
+    let _ = f.sync_all();
+    ballast
+}

@@ -1,0 +1,236 @@
+//! The bodies of the fuzz targets (`fuzz/fuzz_targets/`), shared with the property tests
+//! (`tests/fuzz_mirror.rs`) so that `cargo test` runs every one of them on random input.
+//!
+//! Each takes arbitrary bytes from outside (a gauge's frames, an MQTT payload, a CSV report, a
+//! config or limits file, a control request, archive bytes), must not panic, and checks what
+//! must hold whatever the input: a verdict is a reading or a reason, never both or neither; a
+//! damaged archive tail is cut only when nothing intact follows it.
+
+use std::path::Path;
+
+use crate::archive::segment;
+
+/// A serial gauge's byte stream, split into frames at the terminator as the source does, each
+/// frame through the gauge's pattern: a reading with a finite value, or a rejection with a
+/// reason.
+pub fn serial_frames(data: &[u8]) {
+    use crate::daemon::SourceEvent;
+    let Some(gauge) = serial_gauge() else {
+        return;
+    };
+    let Ok(re) = regex::Regex::new(&gauge.pattern) else {
+        return;
+    };
+    for frame in data.split(|b| *b == b'\n') {
+        match crate::daemon::serial::frame_event(&gauge, &re, "serial:fuzz", frame) {
+            Some(SourceEvent::Reading(r)) => assert!(r.value.is_finite()),
+            Some(SourceEvent::Unreadable { reason, .. }) => assert!(!reason.is_empty()),
+            Some(_) => panic!("a frame became something other than a reading or a rejection"),
+            None => {}
+        }
+    }
+}
+
+fn serial_gauge() -> Option<crate::config::SerialGauge> {
+    let text = r#"[daemon]
+archive_dir = "a"
+[[characteristic]]
+id = "bore"
+unit = "mm"
+subgroup = { size = 1 }
+[[characteristic]]
+id = "face"
+unit = "mm"
+subgroup = { size = 1 }
+[[source]]
+id = "g"
+kind = "serial"
+port = "/dev/null"
+pattern = '^(?:(?P<channel>[A-Z])\s*)?(?P<value>[-+]?\d+(?:\.\d+)?)\s*(?P<unit>mm|in)?$'
+channels = { A = "bore", B = "face" }
+"#;
+    let cfg = crate::config::parse(text, Path::new("/fuzz/cell.toml")).ok()?;
+    cfg.sources.into_iter().find_map(|s| match s {
+        crate::config::Source::Serial(g) => Some(*g),
+        _ => None,
+    })
+}
+
+/// An MQTT message on a topic, for a plain and a JSON source: a reading or a reason, and for
+/// the JSON source a time string read by the RFC 3339 parser.
+pub fn mqtt_payload(data: &[u8]) {
+    use crate::config::{MqttSource, Payload};
+    let split = data.iter().position(|b| *b == 0).unwrap_or(0);
+    let (topic_bytes, payload) = data.split_at(split);
+    let topic = String::from_utf8_lossy(topic_bytes);
+    let source = |payload: Payload| {
+        MqttSource::on_localhost(payload, "cell/{characteristic}/m", Some("bore"))
+    };
+    let plain = source(Payload::Plain);
+    let json = source(Payload::Json {
+        value: "/v".into(),
+        time: Some("/t".into()),
+        characteristic: Some("/c".into()),
+        part: Some("/p".into()),
+    });
+    for src in [&plain, &json] {
+        for t in [topic.as_ref(), "cell/face/m"] {
+            match crate::daemon::mqtt::parse(src, t, payload) {
+                Ok(r) => assert!(!r.characteristic.is_empty()),
+                Err(u) => assert!(!u.reason.is_empty()),
+            }
+        }
+    }
+    if let Ok(text) = std::str::from_utf8(data) {
+        let _ = crate::format::parse_rfc3339(text);
+    }
+}
+
+/// A CSV report from a measuring machine, per part and per reading: every reading comes from a
+/// row of exactly the header's field count; the rest are reasons with the file name.
+pub fn csv_report(data: &[u8]) {
+    use crate::config::ReportRows;
+    let text = String::from_utf8_lossy(data);
+    let per_part = ReportRows::PerPart {
+        columns: vec![
+            ("Bore".into(), "bore".into()),
+            ("Face".into(), "face".into()),
+        ],
+    };
+    let per_reading = ReportRows::PerReading {
+        characteristic_column: "Feature".into(),
+        value_column: "Value".into(),
+    };
+    for rows in [&per_part, &per_reading] {
+        if let Ok((readings, bad)) =
+            crate::daemon::folder::parse(&text, "fuzz.csv", rows, Some("Serial"))
+        {
+            for r in &readings {
+                assert!(r.2.is_finite());
+            }
+            for b in &bad {
+                assert!(b.2.starts_with("fuzz.csv"), "{}", b.2);
+            }
+        }
+    }
+}
+
+/// CSV input of a baseline study, in each layout.
+pub fn study_input(data: &[u8]) {
+    use crate::input::{InputOptions, Layout, parse};
+    let text = String::from_utf8_lossy(data);
+    for layout in [Layout::Wide, Layout::Long, Layout::Single] {
+        let mut o = InputOptions::new(layout);
+        if layout == Layout::Single {
+            o.subgroup_size = Some(3);
+        }
+        if let Ok(p) = parse(&text, "fuzz.csv", &o) {
+            assert!(p.subgroups.iter().flatten().all(|v| v.is_finite()));
+        }
+    }
+}
+
+/// A daemon config and a limits file: accepted, or rejected with located problems; never a
+/// panic.
+pub fn config_and_limits(data: &[u8]) {
+    let text = String::from_utf8_lossy(data);
+    if let Err(problems) = crate::config::parse(&text, Path::new("/fuzz/cell.toml")) {
+        assert!(!problems.to_string().is_empty());
+    }
+    if let Err(problems) = crate::limits_file::StoredLimits::parse(&text, "fuzz.toml") {
+        assert!(!problems.to_string().is_empty());
+    }
+}
+
+/// A control-socket request line, and the check of the name and note an acknowledgement
+/// carries: whatever is accepted has no control character and bounded lengths.
+pub fn control_request(data: &[u8]) {
+    use crate::daemon::control::ClientRequest;
+    let Ok(text) = std::str::from_utf8(data) else {
+        return;
+    };
+    if let Ok(ClientRequest::Ack { by, note, .. }) = serde_json::from_str::<ClientRequest>(text)
+        && crate::alerts::check_ack_text(&by, note.as_deref()).is_ok()
+    {
+        assert!(!by.chars().any(char::is_control));
+        assert!(by.chars().count() <= crate::alerts::MAX_NAME_CHARS);
+        assert!(note.is_none_or(|n| !n.chars().any(char::is_control)
+            && n.chars().count() <= crate::alerts::MAX_NOTE_CHARS));
+    }
+}
+
+/// Arbitrary bytes as a segment: decoding at every offset never panics, and a tail is judged
+/// torn (and so cut) only when no intact frame follows it.
+pub fn archive_frames(data: &[u8]) {
+    let mut offset = 0;
+    while offset < data.len() {
+        match segment::decode(data, offset) {
+            Ok(f) => {
+                assert!(f.end > offset && f.end <= data.len());
+                offset = f.end;
+            }
+            Err(_) => {
+                if segment::is_torn_tail(data, offset) {
+                    for at in offset + 1..data.len() {
+                        assert!(
+                            segment::decode(data, at).is_err(),
+                            "cut at {offset} with an intact frame at {at}"
+                        );
+                    }
+                }
+                break;
+            }
+        }
+    }
+}
+
+/// Arbitrary bytes after a valid segment header, opened by the writer as the newest segment in
+/// `dir`: it either refuses with a located error or opens; when it cut a tail, nothing intact
+/// stood after the cut, and the records it kept read back in order.
+pub fn archive_recovery(data: &[u8], dir: &Path) {
+    use crate::archive::writer::{Writer, WriterConfig};
+    let _ = std::fs::remove_dir_all(dir);
+    if std::fs::create_dir_all(dir).is_err() {
+        return;
+    }
+    let header = segment::Header {
+        format: 1,
+        segment: 0,
+        first_seq: 1,
+        created_ms: 0,
+        prev_chain: String::new(),
+    };
+    let mut bytes = Vec::new();
+    segment::encode(
+        segment::TYPE_HEADER,
+        &serde_json::to_vec(&header).unwrap_or_default(),
+        &mut bytes,
+    );
+    bytes.extend_from_slice(data);
+    let path = dir.join(segment::file_name(0, 1));
+    if std::fs::write(&path, &bytes).is_err() {
+        return;
+    }
+    let mut cfg = WriterConfig::new(dir);
+    cfg.rotate_daily = false;
+    match Writer::open(cfg) {
+        Ok((w, report)) => {
+            for q in &report.quarantined {
+                assert!(segment::intact_frame_after(&bytes, q.offset as usize).is_none());
+            }
+            let next = w.next_seq();
+            drop(w);
+            if let Ok(r) = crate::archive::reader::Reader::open(dir) {
+                let mut expected = 1;
+                for e in r.iter(&Default::default()).flatten() {
+                    assert_eq!(e.seq, expected);
+                    expected += 1;
+                }
+                if segment::seal_of(&bytes).is_none() {
+                    assert_eq!(expected, next);
+                }
+            }
+        }
+        Err(e) => assert!(!e.to_string().is_empty()),
+    }
+}

@@ -1,0 +1,313 @@
+//! Damage that is not a torn tail: bytes destroyed inside a segment with intact records after
+//! them, and segments missing, copied or swapped. None of it may be taken for a crash's torn
+//! write (which would cut confirmed records and hand their sequence numbers out again), and
+//! none of it may be exported as if the archive were whole.
+
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use linewarden::archive::reader::{self, Filter, Reader};
+use linewarden::archive::record::Record;
+use linewarden::archive::writer::{Writer, WriterConfig};
+use linewarden::archive::{ArchiveError, segment};
+
+mod common;
+
+const T0: i64 = 1_780_000_000_000; // 2026-05-28, a fixed time for tests
+
+fn reading(i: u64) -> Record {
+    Record::ReadingAccepted {
+        source: "test".into(),
+        characteristic: "bore".into(),
+        value: 12.0 + i as f64 * 1e-4,
+        unit: Some("mm".into()),
+        source_time_ms: None,
+        source_time_ignored: false,
+        arrival_ms: T0 + i as i64,
+        part: Some(format!("VB{i:05}")),
+        source_key: None,
+    }
+}
+
+fn cfg(dir: &Path, segment_bytes: u64) -> WriterConfig {
+    let mut c = WriterConfig::new(dir);
+    c.flush_interval_ms = 0;
+    c.max_segment_bytes = segment_bytes;
+    c.rotate_daily = false;
+    c
+}
+
+/// An archive of `n` readings, each flushed (so each is confirmed durable).
+fn fill(dir: &Path, n: u64, segment_bytes: u64) {
+    let (mut w, _) = Writer::open(cfg(dir, segment_bytes)).unwrap();
+    for i in 1..=n {
+        w.append(&reading(i), T0 + i as i64).unwrap();
+        w.flush().unwrap();
+    }
+}
+
+/// Start offsets of every frame in a segment file.
+fn frames(buf: &[u8]) -> Vec<usize> {
+    let mut v = Vec::new();
+    let mut at = 0;
+    while at < buf.len() {
+        let f = segment::decode(buf, at).unwrap();
+        v.push(at);
+        at = f.end;
+    }
+    v
+}
+
+fn quarantined(dir: &Path) -> Vec<PathBuf> {
+    fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.to_string_lossy().contains(".quarantine-"))
+        .collect()
+}
+
+/// The regression: a zeroed range in the middle of the open segment made recovery cut
+/// everything after it (confirmed records) and reuse their sequence numbers. Swept over every
+/// record of the segment, three kinds of damage (zeros, garbage, one flipped bit) and three
+/// sizes: each must be refused by the writer and reported by `verify`, naming the segment and
+/// the offset, with nothing cut and no byte changed.
+#[test]
+fn damage_inside_the_open_segment_is_refused_not_taken_for_a_torn_tail() {
+    let base = tempfile::tempdir().unwrap();
+    let src = base.path().join("src");
+    fill(&src, 30, 64 << 20);
+    let segs = segment::list(&src).unwrap();
+    assert_eq!(segs.len(), 1, "one open segment");
+    let name = segs[0].2.file_name().unwrap().to_owned();
+    let good = fs::read(&segs[0].2).unwrap();
+    let starts = frames(&good);
+    let mut cases = 0;
+    // Every record but the last (damage to the last one, with nothing after it, is a torn tail).
+    for (k, &at) in starts.iter().enumerate().skip(1) {
+        if k + 1 == starts.len() {
+            break;
+        }
+        let frame_len = starts[k + 1] - at;
+        for (kind, size) in [
+            ("zeros", 8usize),
+            ("zeros", frame_len),
+            ("garbage", 16),
+            ("bit", 1),
+        ] {
+            let mut bad = good.clone();
+            let end = (at + size).min(bad.len());
+            match kind {
+                "zeros" => bad[at..end].fill(0),
+                "garbage" => {
+                    for (i, b) in bad[at..end].iter_mut().enumerate() {
+                        *b = (i as u8).wrapping_mul(37).wrapping_add(11);
+                    }
+                }
+                _ => bad[at + 9] ^= 0x20,
+            }
+            let dir = base.path().join(format!("case{cases}"));
+            fs::create_dir(&dir).unwrap();
+            fs::write(dir.join(&name), &bad).unwrap();
+            let what = format!("{kind} ({size} bytes) at byte {at}, record {k}");
+            match Writer::open(cfg(&dir, 64 << 20)) {
+                Err(ArchiveError::Corrupt {
+                    path,
+                    offset,
+                    problem,
+                }) => {
+                    assert_eq!(path, dir.join(&name), "{what}");
+                    assert_eq!(offset as usize, at, "{what}");
+                    assert!(
+                        problem.contains("intact records follow"),
+                        "{what}: {problem}"
+                    );
+                }
+                Err(e) => panic!("{what}: wrong error {e}"),
+                Ok((w, r)) => panic!(
+                    "{what}: opened, next sequence {}, cut {:?}",
+                    w.next_seq(),
+                    r.quarantined
+                ),
+            }
+            assert_eq!(
+                fs::read(dir.join(&name)).unwrap(),
+                bad,
+                "{what}: nothing changed"
+            );
+            assert!(quarantined(&dir).is_empty(), "{what}: nothing cut");
+            let v = reader::verify(&dir).unwrap();
+            assert!(
+                v.problems
+                    .iter()
+                    .any(|p| p.contains(&*name.to_string_lossy())
+                        && p.contains(&format!("at byte {at}"))),
+                "{what}: {:?} / notes {:?}",
+                v.problems,
+                v.notes
+            );
+            // A reader does not quietly stop there either.
+            let r = Reader::open(&dir).unwrap();
+            assert!(
+                r.iter(&Filter::default()).any(|e| e.is_err()),
+                "{what}: read as if whole"
+            );
+            fs::remove_dir_all(&dir).unwrap();
+            cases += 1;
+        }
+    }
+    assert!(cases >= 100, "{cases} cases");
+}
+
+/// The other side of the line: a tail with no intact frame after the damage is still cut on
+/// open (a crash mid-write), keeping every confirmed record and the next sequence number.
+#[test]
+fn a_torn_tail_of_zeros_or_garbage_is_still_cut() {
+    let base = tempfile::tempdir().unwrap();
+    let src = base.path().join("src");
+    fill(&src, 5, 64 << 20);
+    let segs = segment::list(&src).unwrap();
+    let name = segs[0].2.file_name().unwrap().to_owned();
+    let good = fs::read(&segs[0].2).unwrap();
+    for (i, tail) in [
+        vec![0u8; 4096],
+        vec![0xA5; 100],
+        vec![1, 0, 0, 0, 9, 9, 9, 9],
+    ]
+    .into_iter()
+    .enumerate()
+    {
+        let dir = base.path().join(format!("t{i}"));
+        fs::create_dir(&dir).unwrap();
+        let mut bytes = good.clone();
+        bytes.extend_from_slice(&tail);
+        fs::write(dir.join(&name), &bytes).unwrap();
+        let (w, report) = Writer::open(cfg(&dir, 64 << 20)).unwrap();
+        assert_eq!(report.quarantined.len(), 1);
+        assert_eq!(report.quarantined[0].offset as usize, good.len());
+        assert_eq!(w.next_seq(), 6);
+    }
+}
+
+/// A segment whose header is destroyed while records follow it is corruption too, not a
+/// segment that was being created at a crash.
+#[test]
+fn a_damaged_header_with_records_after_it_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    fill(dir.path(), 4, 64 << 20);
+    let path = segment::list(dir.path()).unwrap()[0].2.clone();
+    let mut bytes = fs::read(&path).unwrap();
+    bytes[0..8].fill(0);
+    fs::write(&path, &bytes).unwrap();
+    assert!(matches!(
+        Writer::open(cfg(dir.path(), 64 << 20)),
+        Err(ArchiveError::Corrupt { offset: 0, .. })
+    ));
+    assert!(path.exists(), "the segment is not removed");
+    assert!(!reader::verify(dir.path()).unwrap().problems.is_empty());
+}
+
+/// Several sealed segments and an open one.
+fn segmented(dir: &Path) -> Vec<(u64, u64, PathBuf)> {
+    fill(dir, 60, 2048);
+    let segs = segment::list(dir).unwrap();
+    assert!(segs.len() >= 4, "{} segments", segs.len());
+    segs
+}
+
+fn export(dir: &Path, extra: &[&str]) -> (bool, String, String) {
+    let d = dir.to_str().unwrap();
+    let mut args = vec!["archive", "export", d];
+    args.extend_from_slice(extra);
+    common::peers::cli(&args)
+}
+
+fn seqs(jsonl: &str) -> Vec<u64> {
+    jsonl
+        .lines()
+        .map(|l| {
+            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
+                .as_u64()
+                .unwrap()
+        })
+        .collect()
+}
+
+/// The regression: with the first segment missing, a segment copied, or two swapped, export
+/// printed records silently missing, doubled or out of order and exited 0. Each of the three,
+/// in JSON lines and CSV, must now fail with a message that names the problem; with
+/// --allow-gaps it prints only records in order, once each, and says what it left out.
+#[test]
+fn export_refuses_a_missing_copied_or_swapped_segment() {
+    let base = tempfile::tempdir().unwrap();
+    let whole = base.path().join("whole");
+    let segs = segmented(&whole);
+    let (ok, out, err) = export(&whole, &[]);
+    assert!(ok, "{err}");
+    let all = seqs(&out);
+    assert_eq!(all, (1..=all.len() as u64).collect::<Vec<_>>());
+
+    let copy = |name: &str| {
+        let d = base.path().join(name);
+        fs::create_dir(&d).unwrap();
+        for (_, _, p) in &segs {
+            fs::copy(p, d.join(p.file_name().unwrap())).unwrap();
+        }
+        d
+    };
+    let file = |i: usize| segs[i].2.file_name().unwrap().to_owned();
+
+    // 1. The first segment missing.
+    let missing = copy("missing");
+    fs::remove_file(missing.join(file(0))).unwrap();
+    // 2. A sealed segment copied in again under the next index's name (and the rest shifted up).
+    let doubled = copy("doubled");
+    for i in (1..segs.len()).rev() {
+        let (idx, first, _) = &segs[i];
+        fs::rename(
+            doubled.join(file(i)),
+            doubled.join(segment::file_name(idx + 1, *first)),
+        )
+        .unwrap();
+    }
+    fs::copy(
+        doubled.join(file(0)),
+        doubled.join(segment::file_name(1, segs[0].1)),
+    )
+    .unwrap();
+    // 3. Two sealed segments swapped by name.
+    let swapped = copy("swapped");
+    fs::rename(swapped.join(file(1)), swapped.join("tmp")).unwrap();
+    fs::rename(swapped.join(file(2)), swapped.join(file(1))).unwrap();
+    fs::rename(swapped.join("tmp"), swapped.join(file(2))).unwrap();
+
+    for (dir, says, then) in [
+        (&missing, "segment 0 is missing", "records 1 to"),
+        (&doubled, "unlike its file name", "comes after"),
+        (&swapped, "unlike its file name", "comes after"),
+    ] {
+        for format in ["jsonl", "csv"] {
+            let (ok, _, err) = export(dir, &["--format", format]);
+            assert!(
+                !ok,
+                "{} {format}: exported a damaged archive",
+                dir.display()
+            );
+            assert!(err.contains(says), "{} {format}: {err}", dir.display());
+        }
+        let (ok, out, err) = export(dir, &["--allow-gaps"]);
+        assert!(err.contains(then), "{}: {err}", dir.display());
+        assert!(ok, "{}: {err}", dir.display());
+        let got = seqs(&out);
+        assert!(
+            got.windows(2).all(|w| w[0] < w[1]),
+            "{}: out of order or repeated: {got:?}",
+            dir.display()
+        );
+        assert!(got.iter().all(|s| all.contains(s)));
+        assert!(err.contains("not exported"), "{}: {err}", dir.display());
+        assert!(err.contains("problem(s)"), "{}: {err}", dir.display());
+    }
+    // The stats count nothing of a damaged archive silently either.
+    let (ok, _, err) = common::peers::cli(&["archive", "stats", missing.to_str().unwrap()]);
+    assert!(!ok && err.contains("missing"), "{err}");
+}

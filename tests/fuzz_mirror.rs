@@ -1,0 +1,61 @@
+//! Every fuzz target (`fuzz/fuzz_targets/`) as a property test, so `cargo test` runs each on
+//! random input and on the committed corpus (`fuzz/corpus/<target>/`, including any input that
+//! once failed), without the fuzzer.
+
+use proptest::prelude::*;
+
+use linewarden::fuzz_checks as checks;
+
+/// Runs `check` on every file of the target's committed corpus.
+fn corpus(target: &str, check: impl Fn(&[u8])) {
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fuzz/corpus")
+        .join(target);
+    let mut n = 0;
+    for e in std::fs::read_dir(&dir).unwrap_or_else(|e| panic!("{}: {e}", dir.display())) {
+        let p = e.unwrap().path();
+        check(&std::fs::read(&p).unwrap());
+        n += 1;
+    }
+    assert!(n > 0, "{} has no corpus", dir.display());
+}
+
+/// Bytes that look like text of the kind a parser expects, more often than uniform noise does.
+fn texty() -> impl Strategy<Value = Vec<u8>> {
+    prop_oneof![
+        proptest::collection::vec(any::<u8>(), 0..400),
+        "[ -~\n\r\t,;.0-9A-Za-z\"{}\\[\\]:=#-]{0,400}".prop_map(String::into_bytes),
+    ]
+}
+
+macro_rules! mirror {
+    ($name:ident, $target:literal, $check:path) => {
+        #[test]
+        fn $name() {
+            corpus($target, $check);
+            proptest!(ProptestConfig::with_cases(512), |(data in texty())| { $check(&data); });
+        }
+    };
+}
+
+mirror!(serial_frames, "serial_frames", checks::serial_frames);
+mirror!(mqtt_payload, "mqtt_payload", checks::mqtt_payload);
+mirror!(csv_report, "csv_report", checks::csv_report);
+mirror!(study_input, "study_input", checks::study_input);
+mirror!(
+    config_and_limits,
+    "config_and_limits",
+    checks::config_and_limits
+);
+mirror!(control_request, "control_request", checks::control_request);
+mirror!(archive_frames, "archive_frames", checks::archive_frames);
+
+#[test]
+fn archive_recovery() {
+    let dir = tempfile::tempdir().unwrap();
+    let at = dir.path().join("archive");
+    corpus("archive_recovery", |d| checks::archive_recovery(d, &at));
+    proptest!(ProptestConfig::with_cases(128), |(data in texty())| {
+        checks::archive_recovery(&data, &at);
+    });
+}
