@@ -160,3 +160,118 @@ mode = "0600"
     let v = reader::verify(&archive).unwrap();
     assert!(v.problems.is_empty(), "{:?}", v.problems);
 }
+
+/// A serial gauge cannot be paused. While the disk is full its readings are dropped once the
+/// queue to the engine is full, counted, and the count archived as soon as there is room:
+/// every frame the gauge sent is either an accepted reading or in that count, none twice.
+#[test]
+fn a_serial_gauge_on_a_full_disk_counts_what_it_drops_and_the_count_is_archived() {
+    let base = tempfile::tempdir().unwrap();
+    let Some((root, _mount)) = small_fs(base.path(), "4m") else {
+        assert!(
+            std::env::var("LINEWARDEN_REQUIRE_SMALL_FS").is_err(),
+            "no small filesystem could be mounted, and CI requires one"
+        );
+        eprintln!("skipped: no small filesystem (run as root, or set LINEWARDEN_SMALL_FS)");
+        return;
+    };
+    let d = base.path();
+    std::fs::write(d.join("bore.toml"), common::BORE_LIMITS).unwrap();
+    let gauge = common::pty::Pty::open();
+    let archive = root.join("archive");
+    let socket = d.join("control.sock");
+    let text = format!(
+        r#"[daemon]
+archive_dir = "{}"
+flush_interval_ms = 5
+
+[[characteristic]]
+id = "bore"
+unit = "mm"
+limits = "bore.toml"
+subgroup = {{ size = 4 }}
+
+[[source]]
+id = "caliper"
+kind = "serial"
+port = "{}"
+baud = 9600
+characteristic = "bore"
+
+[control]
+socket = "{}"
+mode = "0600"
+"#,
+        archive.display(),
+        gauge.path,
+        socket.display()
+    );
+    std::fs::write(d.join("cell.toml"), text).unwrap();
+    let cfg = linewarden::config::load(&d.join("cell.toml")).unwrap();
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap();
+    let (stop, stop_rx) = tokio::sync::watch::channel(false);
+    let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
+    let daemon = rt.spawn(linewarden::daemon::run(cfg, stop_rx, reload_rx));
+    wait("the control socket", Duration::from_secs(10), || socket.exists());
+    let counts = || {
+        let (mut accepted, mut dropped) = (0u64, 0u64);
+        if let Ok(r) = Reader::open(&archive) {
+            for e in r.iter(&Filter::default()).flatten() {
+                match e.record {
+                    Record::ReadingAccepted { .. } => accepted += 1,
+                    Record::ReadingRejected { raw, reason, .. } if reason.contains("dropped") => {
+                        dropped += raw.split(' ').next().unwrap().parse::<u64>().unwrap();
+                    }
+                    _ => {}
+                }
+            }
+        }
+        (accepted, dropped)
+    };
+    let mut sent = 0u64;
+    let mut send = |n: u64| {
+        for _ in 0..n {
+            gauge.write(&format!("{:.3}\r\n", 12.0 + (sent % 4) as f64 * 0.001));
+            sent += 1;
+        }
+    };
+    wait("the port to open", Duration::from_secs(10), || {
+        status(&socket).sources.iter().any(|s| s.state == "up")
+    });
+    send(8);
+    wait("the first readings", Duration::from_secs(10), || counts().0 == 8);
+
+    let ballast = fill_disk(&root);
+    // Enough to need a new page of the filesystem (a record or two fit in the last one).
+    send(40);
+    wait("the archive to report the full disk", Duration::from_secs(20), || {
+        status(&socket).archive.state.starts_with("disk-full")
+    });
+    // Far more than the queue to the engine holds.
+    for _ in 0..30 {
+        send(100);
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    std::thread::sleep(Duration::from_millis(500));
+    assert!(!daemon.is_finished());
+    std::fs::remove_file(&ballast).unwrap();
+    wait("the archive to run again", Duration::from_secs(15), || {
+        status(&socket).archive.state == "running"
+    });
+    // The next reading after the pause carries the count with it.
+    send(4);
+    wait("every frame accounted for", Duration::from_secs(20), || {
+        let (a, dr) = counts();
+        a + dr == sent
+    });
+    let (accepted, dropped) = counts();
+    assert!(dropped > 0, "nothing was dropped: the test did not fill the queue");
+    assert!(accepted >= 1024, "the queue's readings were kept: {accepted}");
+    eprintln!("{sent} frames: {accepted} archived, {dropped} dropped and counted");
+    stop.send(true).unwrap();
+    rt.block_on(daemon).unwrap().unwrap();
+}

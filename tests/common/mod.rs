@@ -2,6 +2,7 @@
 #![allow(dead_code)]
 
 pub mod peers;
+pub mod pty;
 
 /// Stored limits of a characteristic "bore": centre 12.000, sigma 0.004, subgroups of 4.
 pub const BORE_LIMITS: &str = r#"format = 1
