@@ -2,8 +2,11 @@
 //! event it returns, and a restart rebuilds it by applying the archived events again.
 //!
 //! A violation raises an alert with a stable id (`<characteristic>-<subgroup>-<rule>`, or
-//! `-r<reading>-` for a reading rule). The same rule firing again on the same characteristic
-//! while its alert is not cleared repeats it (count, last seen). The condition is gone when a
+//! `-r<reading number>-` for a reading rule, then `-spread` for the dispersion chart and
+//! `-up`/`-down` for the side; see [`alert_id`]). An alert is one cause: the same rule on the
+//! same chart, the same way. That cause firing again while its alert is not cleared repeats it
+//! (count, last seen, the new figures together); a mean below the lower limit after one above
+//! the upper is a new alert, and so is a range beyond its limit beside a mean beyond its own. The condition is gone when a
 //! later subgroup (or reading, for reading rules) is checked without that rule firing. An alert
 //! whose severity needs acknowledgement latches: it clears only once acknowledged and gone;
 //! otherwise it clears as soon as the condition is gone. An alert left unacknowledged past its
@@ -14,7 +17,7 @@ use std::collections::BTreeMap;
 use serde::{Deserialize, Serialize};
 
 use crate::archive::record::AlertEvent;
-use crate::rules::{PointRef, Severity, Violation};
+use crate::rules::{Chart, PointRef, Severity, Side, Violation};
 
 /// Cleared alerts kept per characteristic (for status and for deliveries still pending).
 pub const KEEP_CLEARED: usize = 10;
@@ -77,6 +80,18 @@ pub struct Alert {
     pub points: Vec<PointRef>,
     pub statistic: f64,
     pub limit: f64,
+    /// The chart the cause was seen on; with the rule and the side, what makes an alert one
+    /// cause: a range beyond its limit and a mean beyond its limit are two alerts, and so are
+    /// a mean above and a mean below.
+    #[serde(default)]
+    pub chart: Chart,
+    /// Which way the process moved, where the rule has a side.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub side: Option<Side>,
+    /// The parts involved in the latest firing (the reading's part, or the parts of the
+    /// subgroup that completed the signal), when the source names parts.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub parts: Vec<String>,
     /// What the technician should check first (from the config).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub reaction_plan: Option<String>,
@@ -219,6 +234,29 @@ pub struct Book {
     pub by_characteristic: BTreeMap<String, std::sync::Arc<Vec<Alert>>>,
 }
 
+impl Alert {
+    /// Whether `v` is this alert's cause: the same rule, on the same chart, the same way.
+    pub fn same_cause(&self, v: &Violation) -> bool {
+        self.rule == v.rule && self.chart == v.chart && self.side == v.side
+    }
+}
+
+/// The id of an alert raised at `at` (a subgroup number, or `r` and the reading's number) for
+/// violation `v`: characteristic, where, rule, and the chart and side where they tell causes
+/// apart (`bore-32-beyond-limits-up`, `bore-32-beyond-limits-spread-up`). Built from numbers
+/// the engine counts per characteristic, so the same feed gives the same ids on every run.
+pub fn alert_id(characteristic: &str, at: &str, v: &Violation) -> String {
+    let mut id = format!("{characteristic}-{at}-{}", v.rule);
+    if v.chart == Chart::Dispersion {
+        id.push_str("-spread");
+    }
+    if let Some(side) = v.side {
+        id.push('-');
+        id.push_str(side.words());
+    }
+    id
+}
+
 impl Book {
     /// Every alert, cleared ones included.
     pub fn all(&self) -> impl Iterator<Item = &Alert> {
@@ -248,13 +286,16 @@ impl Book {
         );
     }
 
-    /// A rule fired. Returns the events to archive (a raise or a repeat).
+    /// A rule fired. Returns the events to archive: a repeat of the alert with the same cause
+    /// (rule, chart and side) while it is not cleared, else a new alert.
+    #[allow(clippy::too_many_arguments)]
     pub fn fired(
         &mut self,
         characteristic: &str,
         v: &Violation,
         level: Level,
         at: &str,
+        parts: &[String],
         reaction_plan: Option<&str>,
         now_ms: i64,
     ) -> Vec<Event> {
@@ -265,7 +306,7 @@ impl Book {
         );
         let event = match list
             .iter()
-            .find(|a| a.rule == v.rule && a.status != Status::Cleared)
+            .find(|a| a.same_cause(v) && a.status != Status::Cleared)
         {
             Some(a) => Event {
                 alert_id: a.id.clone(),
@@ -276,10 +317,12 @@ impl Book {
                     message: v.message.clone(),
                     points: v.points.clone(),
                     statistic: v.statistic,
+                    limit: Some(v.limit),
+                    parts: parts.to_vec(),
                 },
             },
             None => Event {
-                alert_id: format!("{characteristic}-{at}-{}", v.rule),
+                alert_id: alert_id(characteristic, at, v),
                 characteristic: characteristic.to_string(),
                 event: AlertEvent::Raised {
                     rule: v.rule.clone(),
@@ -291,6 +334,9 @@ impl Book {
                     limit: v.limit,
                     reaction_plan: reaction_plan.map(str::to_string),
                     at_ms: now_ms,
+                    chart: v.chart,
+                    side: v.side,
+                    parts: parts.to_vec(),
                 },
             },
         };
@@ -298,14 +344,14 @@ impl Book {
         vec![event]
     }
 
-    /// A check of `level` passed for `characteristic` except for the rules in `fired`: the
-    /// alerts of other rules at that level have their condition gone, and clear if their
-    /// policy allows.
+    /// A check of `level` was made for `characteristic`, and `fired` are the violations it
+    /// found: every other alert at that level (another rule, another chart, the other side)
+    /// has its condition gone, and clears if its policy allows.
     pub fn checked(
         &mut self,
         characteristic: &str,
         level: Level,
-        fired: &[&str],
+        fired: &[&Violation],
         policies: &Policies,
         now_ms: i64,
     ) -> Vec<Event> {
@@ -314,7 +360,10 @@ impl Book {
         };
         let mut events = Vec::new();
         for a in list.iter() {
-            if a.status == Status::Cleared || a.level != level || fired.contains(&a.rule.as_str()) {
+            if a.status == Status::Cleared
+                || a.level != level
+                || fired.iter().any(|v| a.same_cause(v))
+            {
                 continue;
             }
             let latch = policies.of(a.severity).acknowledge;
@@ -454,6 +503,9 @@ pub fn apply(list: &mut Vec<Alert>, id: &str, characteristic: &str, event: &Aler
         limit,
         reaction_plan,
         at_ms,
+        chart,
+        side,
+        parts,
     } = event
     {
         if list.iter().any(|a| a.id == id) {
@@ -470,6 +522,9 @@ pub fn apply(list: &mut Vec<Alert>, id: &str, characteristic: &str, event: &Aler
             points: points.clone(),
             statistic: *statistic,
             limit: *limit,
+            chart: *chart,
+            side: *side,
+            parts: parts.clone(),
             reaction_plan: reaction_plan.clone(),
             raised_ms: *at_ms,
             last_seen_ms: *at_ms,
@@ -496,12 +551,18 @@ pub fn apply(list: &mut Vec<Alert>, id: &str, characteristic: &str, event: &Aler
             message,
             points,
             statistic,
+            limit,
+            parts,
         } => {
             a.count = *count;
             a.last_seen_ms = *at_ms;
             a.last_message = message.clone();
             a.points = points.clone();
             a.statistic = *statistic;
+            if let Some(l) = limit {
+                a.limit = *l;
+            }
+            a.parts = parts.clone();
             a.gone = false;
             a.version += 1;
             a.last_event = "repeated".into();
@@ -618,6 +679,7 @@ mod tests {
             statistic: 12.01,
             limit: 12.006,
             side: None,
+            chart: crate::rules::Chart::Location,
         }
     }
 
@@ -627,6 +689,64 @@ mod tests {
             b.apply(&e.alert_id, &e.characteristic, &e.event);
         }
         b
+    }
+
+    /// The regression: a range beyond its limit was filed as a repeat of the mean's alert
+    /// (its statistic shown against the mean's limit), and a mean below the lower limit as a
+    /// repeat of the "above" alert. Each cause is now its own alert, its figures its own, and
+    /// the status of each follows its own checks.
+    #[test]
+    fn each_chart_and_each_side_is_its_own_alert() {
+        let p = Policies::default();
+        let mut b = Book::default();
+        let at = |value: f64, limit: f64, side: Side, chart: Chart| Violation {
+            statistic: value,
+            limit,
+            side: Some(side),
+            chart,
+            points: vec![PointRef {
+                number: 1,
+                time_ms: 0,
+                value,
+            }],
+            ..v("beyond-limits", Severity::Stop)
+        };
+        let mean_up = at(21.4643, 21.4642, Side::Above, Chart::Location);
+        let range_up = at(0.033, 0.021, Side::Above, Chart::Dispersion);
+        let mean_down = at(21.4301, 21.4358, Side::Below, Chart::Location);
+        let parts = ["VB00187".to_string(), "VB00188".to_string()];
+        b.fired("port", &mean_up, Level::Subgroup, "32", &parts, None, 1);
+        b.fired("port", &range_up, Level::Subgroup, "33", &[], None, 2);
+        b.fired("port", &mean_down, Level::Subgroup, "40", &[], None, 3);
+        let ids: Vec<&str> = b.active().map(|a| a.id.as_str()).collect();
+        assert_eq!(
+            ids,
+            [
+                "port-32-beyond-limits-up",
+                "port-33-beyond-limits-spread-up",
+                "port-40-beyond-limits-down"
+            ]
+        );
+        let range = b.get("port-33-beyond-limits-spread-up").unwrap();
+        assert_eq!((range.statistic, range.limit), (0.033, 0.021));
+        assert_eq!(range.chart, Chart::Dispersion);
+        assert_eq!(b.get("port-32-beyond-limits-up").unwrap().parts, parts);
+        // The same cause again is a repeat, with its new figures together.
+        let mean_up2 = at(21.4650, 21.4642, Side::Above, Chart::Location);
+        b.fired("port", &mean_up2, Level::Subgroup, "41", &[], None, 4);
+        let a = b.get("port-32-beyond-limits-up").unwrap();
+        assert_eq!((a.count, a.statistic, a.limit), (2, 21.4650, 21.4642));
+        // A check where only the mean-below fired: the other two causes are gone.
+        let e = b.checked("port", Level::Subgroup, &[&mean_down], &p, 5);
+        let gone: Vec<&str> = e.iter().map(|e| e.alert_id.as_str()).collect();
+        assert_eq!(
+            gone,
+            [
+                "port-32-beyond-limits-up",
+                "port-33-beyond-limits-spread-up"
+            ]
+        );
+        assert!(!b.get("port-40-beyond-limits-down").unwrap().gone);
     }
 
     #[test]
@@ -640,12 +760,13 @@ mod tests {
             &stop,
             Level::Subgroup,
             "7",
+            &[],
             Some("check the insert"),
             1000,
         ));
         let id = "bore-7-beyond-limits";
         assert_eq!(b.get(id).unwrap().status, Status::Open);
-        log.extend(b.fired("bore", &stop, Level::Subgroup, "8", None, 2000));
+        log.extend(b.fired("bore", &stop, Level::Subgroup, "8", &[], None, 2000));
         assert_eq!(b.active().count(), 1, "a repeat is not a new alert");
         assert_eq!(b.get(id).unwrap().count, 2);
         log.extend(b.checked("bore", Level::Subgroup, &[], &p, 3000));
@@ -679,6 +800,7 @@ mod tests {
             &v("one-side-run", Severity::Stop),
             Level::Subgroup,
             "9",
+            &[],
             None,
             0,
         );
@@ -694,12 +816,19 @@ mod tests {
             &v("one-side-run", Severity::Stop),
             Level::Subgroup,
             "10",
+            &[],
             None,
             20,
         );
         assert!(
-            b.checked("bore", Level::Subgroup, &["one-side-run"], &p, 20)
-                .is_empty()
+            b.checked(
+                "bore",
+                Level::Subgroup,
+                &[&v("one-side-run", Severity::Stop)],
+                &p,
+                20
+            )
+            .is_empty()
         );
         let e = b.checked("bore", Level::Subgroup, &[], &p, 30);
         assert!(matches!(e[0].event, AlertEvent::Cleared { .. }));
@@ -709,6 +838,7 @@ mod tests {
             &v("one-side-run", Severity::Stop),
             Level::Subgroup,
             "15",
+            &[],
             None,
             40,
         );
@@ -724,6 +854,7 @@ mod tests {
             &v("cluster", Severity::Warn),
             Level::Subgroup,
             "3",
+            &[],
             None,
             0,
         );
@@ -732,6 +863,7 @@ mod tests {
             &v("outside-spec", Severity::Warn),
             Level::Reading,
             "r44",
+            &[],
             None,
             0,
         );
@@ -754,6 +886,7 @@ mod tests {
             &v("beyond-limits", Severity::Stop),
             Level::Subgroup,
             "1",
+            &[],
             None,
             0,
         );
@@ -762,6 +895,7 @@ mod tests {
             &v("beyond-limits", Severity::Stop),
             Level::Subgroup,
             "1",
+            &[],
             None,
             0,
         );
@@ -786,6 +920,7 @@ mod tests {
             &v("cluster", Severity::Warn),
             Level::Subgroup,
             "1",
+            &[],
             None,
             0,
         );
@@ -806,6 +941,7 @@ mod tests {
                 &v("cluster", Severity::Warn),
                 Level::Subgroup,
                 &i.to_string(),
+                &[],
                 None,
                 0,
             );

@@ -28,6 +28,59 @@ pub fn num(v: f64) -> String {
     sig(v, 6)
 }
 
+/// `v` with exactly `decimals` decimals, trailing zeros kept (`12.0050`), so that the figures
+/// of one characteristic line up and read alike.
+pub fn fixed(v: f64, decimals: usize) -> String {
+    if !v.is_finite() {
+        return v.to_string();
+    }
+    let s = format!("{v:.decimals$}");
+    // "-0.000" is zero.
+    if s.starts_with('-') && s[1..].bytes().all(|c| c == b'0' || c == b'.') {
+        s[1..].to_string()
+    } else {
+        s
+    }
+}
+
+/// A value and the limit it is compared with, both with `decimals` decimals, or with as many
+/// more as it takes for them to differ when they do: a value beyond a limit never prints equal
+/// to it (12.00472 against 12.00468, not 12.0047 against 12.0047). Rounding both to the first
+/// decimals where they differ keeps their order, so the comparison reads true.
+pub fn fixed_pair(value: f64, limit: f64, decimals: usize) -> (String, String) {
+    let mut d = decimals;
+    loop {
+        let (a, b) = (fixed(value, d), fixed(limit, d));
+        if a != b || value == limit || d >= 15 {
+            return (a, b);
+        }
+        d += 1;
+    }
+}
+
+/// [`fixed_pair`] for figures without set decimals: six significant digits, trailing zeros
+/// trimmed, and more digits where the two would otherwise print equal.
+pub fn sig_pair(value: f64, limit: f64) -> (String, String) {
+    let mut digits = 6;
+    loop {
+        let (a, b) = (sig(value, digits), sig(limit, digits));
+        if a != b || value == limit || digits >= 17 {
+            return (a, b);
+        }
+        digits += 1;
+    }
+}
+
+/// Decimals that show the figures of a chart whose plotted points have standard deviation
+/// `spread`: one significant digit past the spread's first (a mean with sigma 0.002 mm prints
+/// as 12.0043), at most 8. Common practice: show one digit more than the variation resolves.
+pub fn decimals_for(spread: f64) -> usize {
+    if !(spread.is_finite() && spread > 0.0) {
+        return 4;
+    }
+    (1 - spread.log10().floor() as i64).clamp(0, 8) as usize
+}
+
 /// Milliseconds since 1970 as an RFC 3339 time in UTC with milliseconds
 /// (`2026-12-02T08:00:00.250Z`), as the archive and the logs write times.
 pub fn utc_ms(ms: i64) -> String {
@@ -96,6 +149,43 @@ pub fn parse_rfc3339(text: &str) -> Result<i64, String> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The regression: `subgroup mean 12.0047 mm is above the upper control limit 12.0047 mm`.
+    #[test]
+    fn a_value_beyond_a_limit_never_prints_equal_to_it() {
+        assert_eq!(fixed(12.0, 4), "12.0000");
+        assert_eq!(fixed(-0.00001, 3), "0.000");
+        assert_eq!(
+            fixed_pair(12.00472, 12.00468, 4),
+            ("12.00472".into(), "12.00468".into())
+        );
+        assert_eq!(
+            fixed_pair(21.4643, 21.4642, 4),
+            ("21.4643".into(), "21.4642".into())
+        );
+        assert_eq!(
+            fixed_pair(12.0, 12.0, 3),
+            ("12.000".into(), "12.000".into())
+        );
+        // A sweep: for values just past a limit, the printed pair always differs and keeps
+        // its order.
+        for k in 1..2000 {
+            let limit = 12.0 + k as f64 * 1e-5;
+            for gap in [1e-9, 1e-7, 3e-6, 1e-4] {
+                let (a, b) = fixed_pair(limit + gap, limit, 4);
+                assert_ne!(a, b, "{limit} + {gap}");
+                assert!(a.parse::<f64>().unwrap() > b.parse::<f64>().unwrap());
+                let (a, b) = fixed_pair(limit - gap, limit, 4);
+                assert!(a.parse::<f64>().unwrap() < b.parse::<f64>().unwrap());
+            }
+        }
+        let (a, b) = sig_pair(12.0047201, 12.0047199);
+        assert!(a != b && a > b, "{a} {b}");
+        assert_eq!(sig_pair(12.016, 12.015), ("12.016".into(), "12.015".into()));
+        assert_eq!(decimals_for(0.002), 4);
+        assert_eq!(decimals_for(0.02), 3);
+        assert_eq!(decimals_for(3.0), 1);
+    }
 
     #[test]
     fn rfc3339_times_with_any_offset_are_read() {

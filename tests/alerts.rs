@@ -43,7 +43,7 @@ fn feed(path: &Path, means: &[f64], start_ms: i64, step_ms: i64) {
 /// Subgroups 1-3 on the centre, 4 beyond the upper limit (a stop-level alert), 5-8 on the
 /// centre again (the condition is gone).
 const MEANS: [f64; 8] = [12.0, 12.0, 12.0, 12.010, 12.0, 12.0, 12.0, 12.0];
-const ALERT: &str = "bore-4-beyond-limits";
+const ALERT: &str = "bore-4-beyond-limits-up";
 
 /// A cell: the bore (stored limits, Western Electric rules), a replay feed, an empty watched
 /// folder that keeps the daemon running after the replay, a control socket, and `outputs`.
@@ -198,7 +198,7 @@ fn mqtt_alerts_survive_a_broker_outage_and_are_acknowledged_from_the_hmi() {
     );
     broker.stop();
     daemon.wait_log(
-        "ALERT STOP bore-4-beyond-limits",
+        "ALERT STOP bore-4-beyond-limits-up",
         1,
         Duration::from_secs(20),
     );
@@ -454,7 +454,7 @@ fn email_waits_for_the_mail_server_and_carries_the_chart() {
     // The mail server is down when the alert is raised ...
     let daemon = Daemon::start(&cfg, &d.join("daemon.log"));
     daemon.wait_log(
-        "ALERT STOP bore-4-beyond-limits",
+        "ALERT STOP bore-4-beyond-limits-up",
         1,
         Duration::from_secs(20),
     );
@@ -750,7 +750,7 @@ fn an_unacknowledged_alert_escalates_once_to_the_escalation_outputs() {
     );
     let daemon = Daemon::start(&cfg, &d.join("daemon.log"));
     daemon.wait_log(
-        "ALERT STOP bore-4-beyond-limits",
+        "ALERT STOP bore-4-beyond-limits-up",
         1,
         Duration::from_secs(20),
     );

@@ -216,7 +216,9 @@ mode = "0600"
     let (stop, stop_rx) = tokio::sync::watch::channel(false);
     let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
     let daemon = rt.spawn(linewarden::daemon::run(cfg, stop_rx, reload_rx));
-    wait("the control socket", Duration::from_secs(10), || socket.exists());
+    wait("the control socket", Duration::from_secs(10), || {
+        socket.exists()
+    });
     let counts = || {
         let (mut accepted, mut dropped) = (0u64, 0u64);
         if let Ok(r) = Reader::open(&archive) {
@@ -243,14 +245,18 @@ mode = "0600"
         status(&socket).sources.iter().any(|s| s.state == "up")
     });
     send(8);
-    wait("the first readings", Duration::from_secs(10), || counts().0 == 8);
+    wait("the first readings", Duration::from_secs(10), || {
+        counts().0 == 8
+    });
 
     let ballast = fill_disk(&root);
     // Enough to need a new page of the filesystem (a record or two fit in the last one).
     send(40);
-    wait("the archive to report the full disk", Duration::from_secs(20), || {
-        status(&socket).archive.state.starts_with("disk-full")
-    });
+    wait(
+        "the archive to report the full disk",
+        Duration::from_secs(20),
+        || status(&socket).archive.state.starts_with("disk-full"),
+    );
     // Far more than the queue to the engine holds.
     for _ in 0..30 {
         send(100);
@@ -269,8 +275,14 @@ mode = "0600"
         a + dr == sent
     });
     let (accepted, dropped) = counts();
-    assert!(dropped > 0, "nothing was dropped: the test did not fill the queue");
-    assert!(accepted >= 1024, "the queue's readings were kept: {accepted}");
+    assert!(
+        dropped > 0,
+        "nothing was dropped: the test did not fill the queue"
+    );
+    assert!(
+        accepted >= 1024,
+        "the queue's readings were kept: {accepted}"
+    );
     eprintln!("{sent} frames: {accepted} archived, {dropped} dropped and counted");
     stop.send(true).unwrap();
     rt.block_on(daemon).unwrap().unwrap();

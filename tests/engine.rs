@@ -137,9 +137,9 @@ fn readings_form_subgroups_and_rules_fire() {
         assert_eq!(readings.len(), 4);
         assert_eq!(subgroup.number, 2);
         assert!(
-            violations[0]
-                .message
-                .starts_with("subgroup mean 12.008 mm is above the upper control limit 12.006 mm"),
+            violations[0].message.starts_with(
+                "subgroup mean 12.0080 mm is above the upper control limit 12.0060 mm"
+            ),
             "{}",
             violations[0].message
         );

@@ -34,6 +34,7 @@ fn basis() -> ChartBasis {
             lcl: 0.0,
         },
         unit: "mm".into(),
+        decimals: None,
     }
 }
 

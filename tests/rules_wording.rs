@@ -288,6 +288,7 @@ max_silence_s = 600
             target: None,
         }),
         unit: "mm".into(),
+        decimals: None,
     };
     let t0 = 1_780_000_000_000;
     let mut e = ReadingEvaluator::new(&set, basis, t0);

@@ -43,8 +43,18 @@ pub enum AlertEvent {
         #[serde(default, skip_serializing_if = "Option::is_none")]
         reaction_plan: Option<String>,
         at_ms: i64,
+        /// The chart the cause was seen on.
+        #[serde(default)]
+        chart: crate::rules::Chart,
+        /// Which way the process moved, where the rule has a side.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        side: Option<crate::rules::Side>,
+        /// The parts involved: the reading's part, or the parts of the subgroup that completed
+        /// the signal, when the source names parts.
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        parts: Vec<String>,
     },
-    /// The same rule fired again while the alert was not cleared.
+    /// The same cause (rule, chart and side) fired again while the alert was not cleared.
     Repeated {
         count: u64,
         at_ms: i64,
@@ -52,6 +62,11 @@ pub enum AlertEvent {
         #[serde(default)]
         points: Vec<crate::rules::PointRef>,
         statistic: f64,
+        /// The limit of this firing (older records did not carry it: the raise's stands).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        limit: Option<f64>,
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        parts: Vec<String>,
     },
     /// The condition is gone, but the alert waits for acknowledgement.
     Gone {

@@ -138,9 +138,10 @@ pub fn decode(buf: &[u8], offset: usize) -> Result<Frame<'_>, Bad> {
 /// A damaged frame is a torn tail only when nothing intact follows it anywhere: a crash can
 /// leave a frame cut short at the very end, but never good frames after bad bytes. Damage
 /// followed by an intact frame (a zeroed or overwritten range in the middle) is corruption, and
-/// cutting there would throw away records that were confirmed durable. Each candidate position
-/// is checked cheaply first (a plausible length that fits, a known frame type) before its
-/// CRC-32C is computed, so the search stays linear in practice even on garbage.
+/// cutting there would throw away records that were confirmed durable. Any frame whose CRC-32C
+/// holds counts, whatever its type byte says. Each candidate position is checked cheaply first
+/// (a non-zero length that fits in what is left) before its CRC-32C is computed, so the search
+/// stays fast in practice on zeros, text and random bytes alike.
 pub fn intact_frame_after(buf: &[u8], offset: usize) -> Option<usize> {
     let start = offset.checked_add(1)?;
     (start..buf.len()).find(|&at| {
@@ -149,11 +150,7 @@ pub fn intact_frame_after(buf: &[u8], offset: usize) -> Option<usize> {
             return false;
         }
         let len = u32::from_le_bytes([rest[0], rest[1], rest[2], rest[3]]) as usize;
-        len != 0
-            && len <= MAX_FRAME
-            && FRAME_PREFIX + len <= rest.len()
-            && matches!(rest[FRAME_PREFIX], TYPE_HEADER | TYPE_RECORD | TYPE_SEAL)
-            && decode(buf, at).is_ok()
+        len != 0 && len <= MAX_FRAME && FRAME_PREFIX + len <= rest.len() && decode(buf, at).is_ok()
     })
 }
 

@@ -133,6 +133,9 @@ pub struct RawCharacteristic {
     pub learning: RawLearning,
     /// What the technician should check first when an alert is raised.
     pub reaction_plan: Option<String>,
+    /// Decimals for every figure of this characteristic people read (alerts, the log, status);
+    /// without it, derived from the limits.
+    pub decimals: Option<usize>,
 }
 
 /// `[[source]]`.
@@ -251,6 +254,8 @@ pub struct Characteristic {
     pub limits: Option<StoredLimits>,
     pub baseline_subgroups: usize,
     pub reaction_plan: Option<String>,
+    /// Decimals for the figures people read, when the config sets them.
+    pub decimals: Option<usize>,
 }
 
 /// How a folder source's CSV reports are laid out.
@@ -1377,6 +1382,14 @@ fn build_characteristic(
         _ => None,
     };
     let chart = limits.as_ref().map_or(chart, |l| l.chart);
+    if let Some(d) = c.decimals
+        && d > 10
+    {
+        p.push(loc.problem(
+            &format!("{at}.decimals"),
+            format!("{d} decimals is more than a gauge resolves; use 0 to 10"),
+        ));
+    }
     if p.len() > before {
         return None;
     }
@@ -1395,5 +1408,6 @@ fn build_characteristic(
         limits,
         baseline_subgroups: c.learning.subgroups,
         reaction_plan: c.reaction_plan.clone(),
+        decimals: c.decimals,
     })
 }

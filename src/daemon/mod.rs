@@ -105,6 +105,16 @@ struct Effects {
     dirty: std::collections::BTreeSet<String>,
     /// Characteristics whose alerts changed.
     alert_chars: std::collections::BTreeSet<String>,
+    /// What the journal has said of each alert: when a repeat was last logged, and whether
+    /// its condition was last said to be gone.
+    journal: std::collections::HashMap<String, Journal>,
+}
+
+/// What the journal has said of one alert.
+#[derive(Default)]
+struct Journal {
+    repeat_logged_ms: i64,
+    gone: bool,
 }
 
 /// Runs the daemon until `shutdown` turns true or every source has ended. Each message on
@@ -601,6 +611,19 @@ pub async fn run(
         }
     };
     tracing::info!(component = "daemon", "stopping: {reason}");
+    // The journal ends with what is still open, so the next shift reads where things stand.
+    for a in engine.alerts().active() {
+        tracing::warn!(
+            component = "alerts",
+            characteristic = %a.characteristic,
+            "at shutdown, alert {} is {} ({} times in all{}): {}",
+            a.id,
+            a.status.name(),
+            a.count,
+            if a.gone { ", condition gone" } else { "" },
+            a.last_message
+        );
+    }
     notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
     light_tx.send_replace(hub::Light::Off);
     // The last retained states go out before the outputs stop.
@@ -764,7 +787,7 @@ async fn carry_out(
                     event,
                 } = &r
                 {
-                    log_alert(alert_id, characteristic, event, cfg);
+                    log_alert(alert_id, characteristic, event, cfg, &mut fx.journal);
                     if !matches!(event, crate::archive::record::AlertEvent::Delivered { .. }) {
                         fx.alerts_changed = true;
                         fx.dirty.insert(characteristic.clone());
@@ -777,25 +800,27 @@ async fn carry_out(
             Output::Checked {
                 characteristic,
                 subgroup,
-                violations,
+                fired,
                 learning,
+                decimals,
             } => {
                 summary.subgroups += 1;
                 let state = if learning {
                     "learning limits".to_string()
-                } else if violations == 0 {
+                } else if fired.is_empty() {
                     "in control".to_string()
                 } else {
-                    format!("{violations} rule(s) fired")
+                    format!("fired: {}", fired.join(", "))
                 };
+                let fixed = |v: f64| crate::format::fixed(v, decimals);
                 tracing::info!(
                     component = "engine",
                     characteristic = %characteristic,
                     "subgroup {}: mean {} (n = {}){}, {state}",
                     subgroup.number,
-                    num(subgroup.mean),
+                    fixed(subgroup.mean),
                     subgroup.n,
-                    subgroup.dispersion.map(|d| format!(", spread {}", num(d))).unwrap_or_default()
+                    subgroup.dispersion.map(|d| format!(", spread {}", fixed(d))).unwrap_or_default()
                 );
                 fx.dirty.insert(characteristic);
             }
@@ -841,16 +866,24 @@ async fn carry_out(
     Ok(())
 }
 
-/// One log line per alert event, in plain words: what, where, which rule, what to do, and how
-/// to acknowledge.
+/// One log line per alert event, in plain words: what, where, which rule, which parts, what to
+/// do, and how to acknowledge. The journal tells the story: a repeat is logged the first three
+/// times and then at least once a minute with its count, and a condition that comes back after
+/// it was gone is always logged.
 fn log_alert(
     id: &str,
     characteristic: &str,
     event: &crate::archive::record::AlertEvent,
     cfg: &Config,
+    journal: &mut std::collections::HashMap<String, Journal>,
 ) {
     use crate::archive::record::AlertEvent as E;
     let latch = |s: crate::rules::Severity| cfg.alerts.policies.of(s).acknowledge;
+    let parts_words = |parts: &[String]| match parts {
+        [] => String::new(),
+        [one] => format!(" Part: {one}."),
+        many => format!(" Parts: {}.", many.join(", ")),
+    };
     match event {
         E::Raised {
             rule,
@@ -858,8 +891,10 @@ fn log_alert(
             message,
             points,
             reaction_plan,
+            parts,
             ..
         } => {
+            journal.insert(id.to_string(), Journal::default());
             let values = points
                 .iter()
                 .rev()
@@ -873,8 +908,9 @@ fn log_alert(
                 characteristic = %characteristic,
                 rule = %rule,
                 severity = severity.name(),
-                "ALERT {} {id}: {message} (recent values: {values}).{}{}",
+                "ALERT {} {id}: {message} (recent values: {values}).{}{}{}",
                 severity.name().to_uppercase(),
+                parts_words(parts),
                 reaction_plan.as_ref().map(|p| format!(" Reaction plan: {}.", p.trim_end_matches('.'))).unwrap_or_default(),
                 if latch(*severity) {
                     format!(" Acknowledge with: linewarden ack {id} --by NAME")
@@ -883,16 +919,30 @@ fn log_alert(
                 }
             );
         }
-        E::Repeated { count, message, .. } => {
-            if *count <= 3 || count.is_multiple_of(100) {
-                tracing::info!(component = "alerts", characteristic = %characteristic, "alert {id} again ({count} times in all): {message}");
+        E::Repeated {
+            count,
+            message,
+            at_ms,
+            parts,
+            ..
+        } => {
+            let j = journal.entry(id.to_string()).or_default();
+            if std::mem::take(&mut j.gone) {
+                j.repeat_logged_ms = *at_ms;
+                tracing::warn!(component = "alerts", characteristic = %characteristic, "alert {id}: the condition is back ({count} times in all): {message}.{}", parts_words(parts));
+            } else if *count <= 3 || at_ms - j.repeat_logged_ms >= 60_000 {
+                j.repeat_logged_ms = *at_ms;
+                tracing::info!(component = "alerts", characteristic = %characteristic, "alert {id} again ({count} times in all): {message}.{}", parts_words(parts));
             }
         }
-        E::Gone { .. } => tracing::info!(
-            component = "alerts",
-            characteristic = %characteristic,
-            "alert {id}: the condition is gone; the alert stays until someone acknowledges it"
-        ),
+        E::Gone { .. } => {
+            journal.entry(id.to_string()).or_default().gone = true;
+            tracing::info!(
+                component = "alerts",
+                characteristic = %characteristic,
+                "alert {id}: the condition is gone; the alert stays until someone acknowledges it"
+            );
+        }
         E::Acknowledged { by, note, .. } => tracing::info!(
             component = "alerts",
             characteristic = %characteristic,
@@ -900,6 +950,7 @@ fn log_alert(
             note.as_ref().map(|n| format!(": {n}")).unwrap_or_default()
         ),
         E::Cleared { .. } => {
+            journal.remove(id);
             tracing::info!(component = "alerts", characteristic = %characteristic, "alert {id} cleared")
         }
         E::Escalated { .. } => tracing::warn!(

@@ -102,8 +102,11 @@ pub enum Output {
     Checked {
         characteristic: String,
         subgroup: SubgroupSummary,
-        violations: usize,
+        /// The causes that fired, in words (`beyond-limits (location, up)`).
+        fired: Vec<String>,
         learning: bool,
+        /// Decimals of the characteristic's figures.
+        decimals: usize,
     },
 }
 
@@ -157,6 +160,11 @@ struct CharEngine {
     /// Readings accepted so far.
     readings: u64,
     last_individual: Option<f64>,
+    /// The part of the latest reading, kept only while a reading rule fired on it (for the
+    /// alert).
+    last_part: Option<String>,
+    /// The parts of the latest subgroup, kept only while a rule fired on it.
+    last_parts: Vec<String>,
 }
 
 /// Subgroups kept per characteristic for charts and the status.
@@ -181,6 +189,9 @@ pub struct CharView {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub spec: Option<crate::stats::capability::Spec>,
     pub readings: u64,
+    /// Decimals of the characteristic's figures, where known (configured, or from its limits).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decimals: Option<usize>,
 }
 
 /// The engine of a whole cell.
@@ -338,28 +349,36 @@ impl Engine {
     ) {
         use crate::alerts::Level;
         let mut events = Vec::new();
-        let mut reading_fired: Vec<String> = Vec::new();
+        let mut reading_fired: Vec<Violation> = Vec::new();
+        let (reading_part, subgroup_parts) = match self.chars.get(characteristic) {
+            Some(c) => (c.last_part.clone(), c.last_parts.clone()),
+            None => (None, Vec::new()),
+        };
         for o in out.iter() {
             let Output::Record(r) = o else { continue };
             match r {
-                Record::Flagged {
-                    reading: at,
-                    violations,
-                    ..
-                } => {
-                    let at = match at {
-                        Some(seq) => format!("r{seq}"),
-                        None => format!("t{now_ms}"),
-                    };
+                Record::Flagged { violations, .. } => {
                     for v in violations {
+                        // The reading's number, counted per characteristic: the same feed
+                        // gives the same id on every run (an archive sequence number would not).
+                        let at = match (reading, v.points.last()) {
+                            (Some(_), Some(p)) => format!("r{}", p.number),
+                            _ => format!("t{now_ms}"),
+                        };
+                        let parts: Vec<String> = if reading.is_some() {
+                            reading_part.iter().cloned().collect()
+                        } else {
+                            Vec::new()
+                        };
                         if reading.is_some() {
-                            reading_fired.push(v.rule.clone());
+                            reading_fired.push(v.clone());
                         }
                         events.extend(self.alerts.fired(
                             characteristic,
                             v,
                             Level::Reading,
                             &at,
+                            &parts,
                             plan,
                             now_ms,
                         ));
@@ -377,11 +396,12 @@ impl Engine {
                             v,
                             Level::Subgroup,
                             &at,
+                            &subgroup_parts,
                             plan,
                             now_ms,
                         ));
                     }
-                    let fired: Vec<&str> = violations.iter().map(|v| v.rule.as_str()).collect();
+                    let fired: Vec<&Violation> = violations.iter().collect();
                     events.extend(self.alerts.checked(
                         characteristic,
                         Level::Subgroup,
@@ -394,7 +414,7 @@ impl Engine {
             }
         }
         if reading.is_some() {
-            let fired: Vec<&str> = reading_fired.iter().map(String::as_str).collect();
+            let fired: Vec<&Violation> = reading_fired.iter().collect();
             events.extend(self.alerts.checked(
                 characteristic,
                 Level::Reading,
@@ -475,6 +495,10 @@ impl Engine {
                     },
                     spec: c.cfg.spec,
                     readings: c.readings,
+                    decimals: match &c.mode {
+                        Mode::Monitoring { points, .. } => Some(points.basis().decimals()),
+                        Mode::Learning { .. } => c.cfg.decimals,
+                    },
                 }
             }
         }
@@ -524,10 +548,7 @@ impl Engine {
 impl CharEngine {
     fn new(cfg: Characteristic, now_ms: i64) -> Self {
         let asm = Assembler::new(cfg.grouping.clone(), cfg.max_wait_ms, cfg.on_timeout);
-        let basis = ReadingBasis {
-            spec: cfg.spec,
-            unit: cfg.unit.clone(),
-        };
+        let basis = reading_basis(&cfg);
         let reading_rules = ReadingEvaluator::new(&cfg.rules, basis, now_ms);
         let mode = match &cfg.limits {
             Some(l) => Mode::Monitoring {
@@ -547,6 +568,8 @@ impl CharEngine {
             number: 0,
             readings: 0,
             last_individual: None,
+            last_part: None,
+            last_parts: Vec::new(),
         }
     }
 
@@ -558,6 +581,11 @@ impl CharEngine {
             time_ms: inc.time_ms(),
             value: inc.value,
         });
+        self.last_part = if flagged.is_empty() {
+            None
+        } else {
+            inc.part.clone()
+        };
         self.flag(&mut out, Some(seq), flagged);
         let pending = PendingReading {
             seq,
@@ -673,17 +701,34 @@ impl CharEngine {
                 (None, None, Vec::new())
             }
         };
+        self.last_parts = if violations.is_empty() {
+            Vec::new()
+        } else {
+            readings.iter().filter_map(|r| r.part.clone()).collect()
+        };
         for v in &violations {
             out.push(Output::Violation {
                 characteristic: self.cfg.id.clone(),
                 violation: v.clone(),
             });
         }
+        let decimals = match &self.mode {
+            Mode::Monitoring { points, .. } => points.basis().decimals(),
+            // Before there are limits, four decimals unless the config says otherwise.
+            Mode::Learning { .. } => self.cfg.decimals.unwrap_or(4),
+        };
         out.push(Output::Checked {
             characteristic: self.cfg.id.clone(),
             subgroup: summary,
-            violations: violations.len(),
+            fired: violations
+                .iter()
+                .map(|v| match v.side {
+                    Some(side) => format!("{} ({}, {})", v.rule, v.chart.words(), side.words()),
+                    None => format!("{} ({})", v.rule, v.chart.words()),
+                })
+                .collect(),
             learning,
+            decimals,
         });
         out.push(Output::Record(Record::SubgroupResult {
             characteristic: self.cfg.id.clone(),
@@ -827,10 +872,7 @@ impl CharEngine {
             self.number = s.number;
             self.readings = s.readings;
             self.last_individual = s.last_individual;
-            let basis = ReadingBasis {
-                spec: self.cfg.spec,
-                unit: self.cfg.unit.clone(),
-            };
+            let basis = reading_basis(&self.cfg);
             self.reading_rules = ReadingEvaluator::resume(&self.cfg.rules, basis, s.reading);
             match (&mut self.mode, s.learning, s.points) {
                 (Mode::Learning { baseline }, Some(b), _) => *baseline = b,
@@ -885,5 +927,20 @@ fn basis_of(l: &StoredLimits, c: &Characteristic) -> ChartBasis {
     if b.unit.is_empty() {
         b.unit = c.unit.clone();
     }
+    b.decimals = c.decimals;
     b
+}
+
+/// What the reading rules judge a reading against: the specification, and the decimals of a
+/// single reading (as configured, or from the stored sigma of single readings).
+fn reading_basis(c: &Characteristic) -> ReadingBasis {
+    ReadingBasis {
+        spec: c.spec,
+        unit: c.unit.clone(),
+        decimals: c.decimals.or_else(|| {
+            c.limits
+                .as_ref()
+                .map(|l| crate::format::decimals_for(l.sigma.within))
+        }),
+    }
 }

@@ -49,6 +49,41 @@ pub enum Side {
     Below,
 }
 
+/// Which chart a violation was seen on: each is its own cause, with its own alert.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum Chart {
+    /// Subgroup means, or individual readings on an individuals chart (and the EWMA and
+    /// CUSUM built on them).
+    #[default]
+    Location,
+    /// Ranges, standard deviations or moving ranges.
+    Dispersion,
+    /// One reading by itself (specification limits, a stuck or silent gauge).
+    Reading,
+}
+
+impl Chart {
+    /// Plain words for people.
+    pub fn words(self) -> &'static str {
+        match self {
+            Chart::Location => "location",
+            Chart::Dispersion => "spread",
+            Chart::Reading => "reading",
+        }
+    }
+}
+
+impl Side {
+    /// Plain words for people and ids: which way the process moved.
+    pub fn words(self) -> &'static str {
+        match self {
+            Side::Above => "up",
+            Side::Below => "down",
+        }
+    }
+}
+
 /// One plotted point (or reading) that a violation involves.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct PointRef {
@@ -75,9 +110,18 @@ pub struct Violation {
     /// The limit it was compared with.
     pub limit: f64,
     pub side: Option<Side>,
+    /// The chart it was seen on.
+    #[serde(default)]
+    pub chart: Chart,
 }
 
 impl Violation {
+    /// The same violation, seen on `chart`.
+    pub fn on(mut self, chart: Chart) -> Self {
+        self.chart = chart;
+        self
+    }
+
     /// A violation of `rule`.
     pub fn new(
         rule: &config::Rule,
@@ -95,6 +139,7 @@ impl Violation {
             statistic,
             limit,
             side,
+            chart: Chart::Location,
         }
     }
 }

@@ -38,9 +38,30 @@ pub struct ChartBasis {
     pub dispersion: Limits,
     /// Unit of the readings, for messages ("" when unknown).
     pub unit: String,
+    /// Decimals of the figures in messages; derived from sigma when not set.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decimals: Option<usize>,
 }
 
 impl ChartBasis {
+    /// Decimals of the figures in messages: as configured, or one past what the spread of a
+    /// plotted point resolves.
+    pub fn decimals(&self) -> usize {
+        self.decimals
+            .unwrap_or_else(|| crate::format::decimals_for(self.sigma_point(self.nominal_n)))
+    }
+
+    /// A value and the limit it is compared with, with the unit, never printing equal when
+    /// they differ.
+    fn pair_with_unit(&self, v: f64, limit: f64) -> (String, String) {
+        let (a, b) = crate::format::fixed_pair(v, limit, self.decimals());
+        if self.unit.is_empty() {
+            (a, b)
+        } else {
+            (format!("{a} {}", self.unit), format!("{b} {}", self.unit))
+        }
+    }
+
     /// The basis described by a stored limits file.
     pub fn from_stored(l: &StoredLimits) -> Self {
         ChartBasis {
@@ -55,6 +76,7 @@ impl ChartBasis {
                 lcl: l.dispersion.lcl,
             },
             unit: l.unit.clone().unwrap_or_default(),
+            decimals: None,
         }
     }
 
@@ -78,6 +100,7 @@ impl ChartBasis {
                     lcl: 0.0,
                 }),
             unit: String::new(),
+            decimals: None,
         }
     }
 
@@ -112,10 +135,11 @@ impl ChartBasis {
     }
 
     fn with_unit(&self, v: f64) -> String {
+        let v = crate::format::fixed(v, self.decimals());
         if self.unit.is_empty() {
-            num(v)
+            v
         } else {
-            format!("{} {}", num(v), self.unit)
+            format!("{v} {}", self.unit)
         }
     }
 
@@ -381,11 +405,10 @@ impl PointEvaluator {
                     Side::Above => (loc.ucl, "upper"),
                     Side::Below => (loc.lcl, "lower"),
                 };
+                let (value_text, limit_text) = b.pair_with_unit(current.value, limit);
                 mk(
                     format!(
-                        "{one} {} is {words} the {which} control limit {}; the process has probably shifted {up}, or this subgroup had a special cause",
-                        b.with_unit(current.value),
-                        b.with_unit(limit)
+                        "{one} {value_text} is {words} the {which} control limit {limit_text}; the process has probably shifted {up}, or this subgroup had a special cause"
                     ),
                     vec![current],
                     current.value,
@@ -508,11 +531,10 @@ impl PointEvaluator {
                 } else {
                     ("below", "down")
                 };
+                let (value_text, limit_text) = b.pair_with_unit(b.at_z(st.z), b.at_z(sign * half));
                 mk(
                     format!(
-                        "the EWMA of the {many}, {}, is {w} its limit {}; a small sustained shift {u}",
-                        b.with_unit(b.at_z(st.z)),
-                        b.with_unit(b.at_z(sign * half))
+                        "the EWMA of the {many}, {value_text}, is {w} its limit {limit_text}; a small sustained shift {u}"
                     ),
                     vec![current],
                     b.at_z(st.z),
@@ -581,13 +603,10 @@ impl PointEvaluator {
         } else {
             "below the lower"
         };
+        let (value_text, limit_text) = b.pair_with_unit(d, limit);
         Violation::new(
             rule,
-            format!(
-                "{name} {} is {which} control limit {}; {text}",
-                b.with_unit(d),
-                b.with_unit(limit)
-            ),
+            format!("{name} {value_text} is {which} control limit {limit_text}; {text}"),
             vec![PointRef {
                 number: p.number,
                 time_ms: p.time_ms,
@@ -597,6 +616,7 @@ impl PointEvaluator {
             limit,
             Some(side),
         )
+        .on(super::Chart::Dispersion)
     }
 }
 

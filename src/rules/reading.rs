@@ -28,6 +28,9 @@ pub struct ReadingBasis {
     pub spec: Option<Spec>,
     /// Unit, for messages ("" when unknown).
     pub unit: String,
+    /// Decimals of the figures in messages (six significant digits when not known).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decimals: Option<usize>,
 }
 
 /// Everything the reading rules remember; plain data.
@@ -85,10 +88,30 @@ impl ReadingEvaluator {
     }
 
     fn unit(&self, v: f64) -> String {
+        let v = match self.basis.decimals {
+            Some(d) => crate::format::fixed(v, d),
+            None => num(v),
+        };
         if self.basis.unit.is_empty() {
-            num(v)
+            v
         } else {
-            format!("{} {}", num(v), self.basis.unit)
+            format!("{v} {}", self.basis.unit)
+        }
+    }
+
+    /// A reading and the limit it is compared with, never printing equal when they differ.
+    fn unit_pair(&self, v: f64, limit: f64) -> (String, String) {
+        let (a, b) = match self.basis.decimals {
+            Some(d) => crate::format::fixed_pair(v, limit, d),
+            None => crate::format::sig_pair(v, limit),
+        };
+        if self.basis.unit.is_empty() {
+            (a, b)
+        } else {
+            (
+                format!("{a} {}", self.basis.unit),
+                format!("{b} {}", self.basis.unit),
+            )
         }
     }
 
@@ -118,6 +141,7 @@ impl ReadingEvaluator {
                      limit: f64,
                      side: Option<Side>| {
                 Violation::new(rule, message, points, statistic, limit, side)
+                    .on(super::Chart::Reading)
             };
             match &rule.kind {
                 RuleKind::OutsideSpec => {
@@ -126,11 +150,12 @@ impl ReadingEvaluator {
                     };
                     if let Some(usl) = spec.usl.filter(|u| r.value > *u) {
                         out.push(v(
-                            format!(
-                                "reading {} is above the upper specification {}: this part is out of tolerance",
-                                self.unit(r.value),
-                                self.unit(usl)
-                            ),
+                            {
+                                let (value, limit) = self.unit_pair(r.value, usl);
+                                format!(
+                                    "reading {value} is above the upper specification {limit}: this part is out of tolerance"
+                                )
+                            },
                             vec![here],
                             r.value,
                             usl,
@@ -138,11 +163,12 @@ impl ReadingEvaluator {
                         ));
                     } else if let Some(lsl) = spec.lsl.filter(|l| r.value < *l) {
                         out.push(v(
-                            format!(
-                                "reading {} is below the lower specification {}: this part is out of tolerance",
-                                self.unit(r.value),
-                                self.unit(lsl)
-                            ),
+                            {
+                                let (value, limit) = self.unit_pair(r.value, lsl);
+                                format!(
+                                    "reading {value} is below the lower specification {limit}: this part is out of tolerance"
+                                )
+                            },
                             vec![here],
                             r.value,
                             lsl,
@@ -251,6 +277,7 @@ impl ReadingEvaluator {
                     statistic: silent_s,
                     limit: max_silence_s,
                     side: None,
+                    chart: super::Chart::Reading,
                 });
             }
         }

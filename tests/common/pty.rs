@@ -50,4 +50,3 @@ impl Pty {
         unsafe { libc::close(self.master) };
     }
 }
-

@@ -77,8 +77,14 @@ pub fn compose(
         for a in due {
             *per.entry(a.characteristic.as_str()).or_default() += 1;
         }
+        let worst = due
+            .iter()
+            .map(|a| a.severity)
+            .max()
+            .unwrap_or(crate::rules::Severity::Notice);
         format!(
-            "[linewarden] {} alerts: {}",
+            "[linewarden] {} {} alerts: {}",
+            worst.name().to_uppercase(),
             due.len(),
             per.iter()
                 .map(|(c, n)| format!("{c} ({n})"))
@@ -103,7 +109,7 @@ pub fn compose(
     for a in due {
         let c = view.characteristics.get(&a.characteristic);
         let unit = c.map(|c| c.unit.as_str()).unwrap_or("");
-        let words = plain_words(a, unit);
+        let words = plain_words(a, unit, c.and_then(|c| c.decimals));
         let state = match a.status {
             Status::Open => format!(
                 "Open. Acknowledge at the cell or with: linewarden ack {} --by NAME",

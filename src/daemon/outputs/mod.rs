@@ -102,9 +102,12 @@ pub fn backoff(attempt: u32) -> Duration {
     Duration::from_secs(1u64 << attempt.min(8)).min(Duration::from_secs(300))
 }
 
-/// The message a technician reads, in plain words.
-pub fn plain_words(a: &Alert, unit: &str) -> String {
-    use crate::format::num;
+/// The alert in plain words for a person: what and where, which chart and which way, the
+/// parts, the figures (with the characteristic's decimals; a statistic beyond its limit never
+/// prints equal to it), and what to check first. Every figure is of the alert's one cause.
+pub fn plain_words(a: &Alert, unit: &str, decimals: Option<usize>) -> String {
+    use crate::format::{fixed, fixed_pair, num, sig_pair};
+    let value = |v: f64| decimals.map_or_else(|| num(v), |d| fixed(v, d));
     let mut s = String::new();
     s.push_str(&format!(
         "{} on {}: {}\n",
@@ -112,6 +115,24 @@ pub fn plain_words(a: &Alert, unit: &str) -> String {
         a.characteristic,
         a.message
     ));
+    let chart = match a.chart {
+        crate::rules::Chart::Location => "the location chart (subgroup means or readings)",
+        crate::rules::Chart::Dispersion => {
+            "the spread chart (ranges, standard deviations or moving ranges)"
+        }
+        crate::rules::Chart::Reading => "single readings",
+    };
+    let way = match a.side {
+        Some(crate::rules::Side::Above) => ", moving up",
+        Some(crate::rules::Side::Below) => ", moving down",
+        None => "",
+    };
+    s.push_str(&format!("Seen on {chart}{way}.\n"));
+    match a.parts.as_slice() {
+        [] => {}
+        [one] => s.push_str(&format!("Part: {one}\n")),
+        many => s.push_str(&format!("Parts: {}\n", many.join(", "))),
+    }
     s.push_str(&format!("Rule: {}  Alert: {}\n", a.rule, a.id));
     if a.count > 1 {
         s.push_str(&format!(
@@ -123,16 +144,21 @@ pub fn plain_words(a: &Alert, unit: &str) -> String {
         let pts = a
             .points
             .iter()
-            .map(|p| format!("#{} {}", p.number, num(p.value)))
+            .map(|p| format!("#{} {}", p.number, value(p.value)))
             .collect::<Vec<_>>()
             .join(", ");
-        s.push_str(&format!("Recent values ({unit}): {pts}\n"));
+        let unit = if unit.is_empty() {
+            String::new()
+        } else {
+            format!(" ({unit})")
+        };
+        s.push_str(&format!("Points{unit}: {pts}\n"));
     }
-    s.push_str(&format!(
-        "Statistic {} against limit {}\n",
-        num(a.statistic),
-        num(a.limit)
-    ));
+    let (stat, limit) = match decimals {
+        Some(d) => fixed_pair(a.statistic, a.limit, d),
+        None => sig_pair(a.statistic, a.limit),
+    };
+    s.push_str(&format!("Statistic {stat} against limit {limit}\n"));
     if let Some(p) = &a.reaction_plan {
         s.push_str(&format!("What to check first: {p}\n"));
     }
@@ -150,12 +176,9 @@ async fn log_output(o: Output, mut f: Feeds) {
                 continue;
             }
             if have == 0 {
-                let unit = view
-                    .characteristics
-                    .get(&a.characteristic)
-                    .map(|c| c.unit.as_str())
-                    .unwrap_or("");
-                let text = plain_words(a, unit);
+                let c = view.characteristics.get(&a.characteristic);
+                let unit = c.map(|c| c.unit.as_str()).unwrap_or("");
+                let text = plain_words(a, unit, c.and_then(|c| c.decimals));
                 let bar = "=".repeat(72);
                 eprintln!(
                     "{bar}\n{}{}\n{bar}",
@@ -176,5 +199,72 @@ async fn log_output(o: Output, mut f: Feeds) {
             r = f.alerts.changed() => if r.is_err() { break },
             _ = f.shutdown.changed() => break,
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::alerts::{Book, Level};
+    use crate::rules::{Chart, PointRef, Severity, Side, Violation};
+
+    /// The regression: `Fired 2 times; latest: subgroup range 0.033 mm …` and `Statistic 0.033
+    /// against limit 21.4642` in one alert, and `mean 12.0047 mm is above the upper control
+    /// limit 12.0047 mm`. Each alert's words are now its own cause's, with its chart, its way,
+    /// its parts, and figures that compare truly.
+    #[test]
+    fn the_words_of_an_alert_belong_to_its_one_cause() {
+        let v = |statistic: f64, limit: f64, chart: Chart| Violation {
+            rule: "beyond-limits".into(),
+            severity: Severity::Stop,
+            message: "beyond".into(),
+            points: vec![PointRef {
+                number: 33,
+                time_ms: 0,
+                value: statistic,
+            }],
+            statistic,
+            limit,
+            side: Some(Side::Above),
+            chart,
+        };
+        let mut b = Book::default();
+        let parts = ["VB00187".to_string(), "VB00188".to_string()];
+        b.fired(
+            "port",
+            &v(0.033, 0.021, Chart::Dispersion),
+            Level::Subgroup,
+            "33",
+            &parts,
+            Some("Check the insert"),
+            0,
+        );
+        b.fired(
+            "port",
+            &v(12.00472, 12.00468, Chart::Location),
+            Level::Subgroup,
+            "33",
+            &[],
+            None,
+            0,
+        );
+        let spread = b.get("port-33-beyond-limits-spread-up").unwrap();
+        let text = plain_words(spread, "mm", Some(4));
+        assert!(text.contains("Seen on the spread chart"), "{text}");
+        assert!(text.contains("moving up"), "{text}");
+        assert!(text.contains("Parts: VB00187, VB00188"), "{text}");
+        assert!(
+            text.contains("Statistic 0.0330 against limit 0.0210"),
+            "{text}"
+        );
+        assert!(text.contains("Points (mm): #33 0.0330"), "{text}");
+        let mean = b.get("port-33-beyond-limits-up").unwrap();
+        let text = plain_words(mean, "mm", Some(4));
+        assert!(
+            text.contains("Statistic 12.00472 against limit 12.00468"),
+            "{text}"
+        );
+        assert!(text.contains("the location chart"), "{text}");
+        assert!(!text.contains("Parts"), "{text}");
     }
 }
