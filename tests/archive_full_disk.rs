@@ -11,7 +11,7 @@ use linewarden::archive::record::Record;
 use linewarden::archive::writer::{self, Writer, WriterConfig, WriterState};
 
 mod common;
-use common::small_fs;
+use common::small_fs_or_skip;
 
 fn reading(n: u64) -> Record {
     Record::ReadingAccepted {
@@ -30,12 +30,7 @@ fn reading(n: u64) -> Record {
 #[test]
 fn the_writer_pauses_on_a_full_disk_and_resumes_without_loss() {
     let base = tempfile::tempdir().unwrap();
-    let Some((root, _mount)) = small_fs(base.path(), "2m") else {
-        assert!(
-            std::env::var("LINEWARDEN_REQUIRE_SMALL_FS").is_err(),
-            "no small filesystem could be mounted, and CI requires one"
-        );
-        eprintln!("skipped: no small filesystem (run as root, or set LINEWARDEN_SMALL_FS)");
+    let Some((root, _mount)) = small_fs_or_skip(base.path(), "2m") else {
         return;
     };
     // Ballast to free later.

@@ -7,7 +7,7 @@
 use std::io::{BufRead, BufReader, Write};
 use std::os::unix::net::UnixStream;
 use std::path::Path;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 mod common;
 
@@ -15,8 +15,9 @@ mod common;
 fn raw(socket: &Path, line: &[u8]) -> serde_json::Value {
     let mut s = UnixStream::connect(socket).unwrap();
     s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-    s.write_all(line).unwrap();
-    s.write_all(b"\n").unwrap();
+    // A hostile client writes on; the daemon stops reading at its limit, answers and closes,
+    // so the rest of an over-long request may meet a closed pipe. The answer is still there.
+    let _ = s.write_all(line).and_then(|_| s.write_all(b"\n"));
     let mut answer = String::new();
     BufReader::new(s).read_line(&mut answer).unwrap();
     serde_json::from_str(answer.trim()).unwrap_or_else(|e| panic!("{e}: {answer:?}"))
@@ -57,20 +58,10 @@ mode = "0600"
         socket.display()
     );
     std::fs::write(d.join("cell.toml"), text).unwrap();
-    let cfg = linewarden::config::load(&d.join("cell.toml")).unwrap();
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap();
-    let (stop, stop_rx) = tokio::sync::watch::channel(false);
-    let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
-    let daemon = rt.spawn(linewarden::daemon::run(cfg, stop_rx, reload_rx));
-    let start = Instant::now();
-    while !socket.exists() {
-        assert!(start.elapsed() < Duration::from_secs(10));
-        std::thread::sleep(Duration::from_millis(20));
-    }
+    let daemon = common::InProcess::start(&d.join("cell.toml"));
+    common::wait("the control socket", Duration::from_secs(10), || {
+        socket.exists()
+    });
 
     let forged = "Eve\n2026-12-02T03:00:00Z INFO alerts: alert bore-1-beyond-limits cleared";
     // Every control character, in the name and in the note.
@@ -138,6 +129,5 @@ mode = "0600"
         socket.to_str().unwrap(),
     ]);
     assert!(!ok && err.contains("control character"), "{err}");
-    stop.send(true).unwrap();
-    rt.block_on(daemon).unwrap().unwrap();
+    daemon.stop();
 }

@@ -5,7 +5,7 @@
 //! with every reading of the reports that waited archived exactly once.
 
 use std::path::Path;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use linewarden::archive::Record;
 use linewarden::archive::reader::{self, Filter, Reader};
@@ -13,7 +13,7 @@ use linewarden::daemon::control::{ClientRequest, ask};
 use linewarden::daemon::hub::{Light, StatusReport};
 
 mod common;
-use common::{fill_disk, small_fs};
+use common::{InProcess, fill_disk, small_fs_or_skip, wait};
 
 fn report(first: usize) -> String {
     let mut s = String::from("Serial,Bore\n");
@@ -28,23 +28,10 @@ fn status(socket: &Path) -> StatusReport {
     serde_json::from_value(v).unwrap()
 }
 
-fn wait(what: &str, limit: Duration, f: impl Fn() -> bool) {
-    let start = Instant::now();
-    while !f() {
-        assert!(start.elapsed() < limit, "timed out waiting for {what}");
-        std::thread::sleep(Duration::from_millis(20));
-    }
-}
-
 #[test]
 fn a_full_disk_holds_the_sources_back_and_the_daemon_resumes_by_itself() {
     let base = tempfile::tempdir().unwrap();
-    let Some((root, _mount)) = small_fs(base.path(), "4m") else {
-        assert!(
-            std::env::var("LINEWARDEN_REQUIRE_SMALL_FS").is_err(),
-            "no small filesystem could be mounted, and CI requires one"
-        );
-        eprintln!("skipped: no small filesystem (run as root, or set LINEWARDEN_SMALL_FS)");
+    let Some((root, _mount)) = small_fs_or_skip(base.path(), "4m") else {
         return;
     };
     let d = base.path();
@@ -80,15 +67,7 @@ mode = "0600"
     );
     let cfg_path = d.join("cell.toml");
     std::fs::write(&cfg_path, text).unwrap();
-    let cfg = linewarden::config::load(&cfg_path).unwrap();
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap();
-    let (stop, stop_rx) = tokio::sync::watch::channel(false);
-    let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
-    let daemon = rt.spawn(linewarden::daemon::run(cfg, stop_rx, reload_rx));
+    let daemon = InProcess::start(&cfg_path);
     let inbox = d.join("inbox");
     wait("the control socket", Duration::from_secs(10), || {
         socket.exists()
@@ -145,8 +124,7 @@ mode = "0600"
         status(&socket).archive.state == "running"
     });
     assert_eq!(status(&socket).light, Light::Normal);
-    stop.send(true).unwrap();
-    rt.block_on(daemon).unwrap().unwrap();
+    daemon.stop();
 
     let r = Reader::open(&archive).unwrap();
     let mut parts = std::collections::BTreeMap::<String, usize>::new();
@@ -167,12 +145,7 @@ mode = "0600"
 #[test]
 fn a_serial_gauge_on_a_full_disk_counts_what_it_drops_and_the_count_is_archived() {
     let base = tempfile::tempdir().unwrap();
-    let Some((root, _mount)) = small_fs(base.path(), "4m") else {
-        assert!(
-            std::env::var("LINEWARDEN_REQUIRE_SMALL_FS").is_err(),
-            "no small filesystem could be mounted, and CI requires one"
-        );
-        eprintln!("skipped: no small filesystem (run as root, or set LINEWARDEN_SMALL_FS)");
+    let Some((root, _mount)) = small_fs_or_skip(base.path(), "4m") else {
         return;
     };
     let d = base.path();
@@ -207,15 +180,7 @@ mode = "0600"
         socket.display()
     );
     std::fs::write(d.join("cell.toml"), text).unwrap();
-    let cfg = linewarden::config::load(&d.join("cell.toml")).unwrap();
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap();
-    let (stop, stop_rx) = tokio::sync::watch::channel(false);
-    let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
-    let daemon = rt.spawn(linewarden::daemon::run(cfg, stop_rx, reload_rx));
+    let daemon = InProcess::start(&d.join("cell.toml"));
     wait("the control socket", Duration::from_secs(10), || {
         socket.exists()
     });
@@ -284,6 +249,5 @@ mode = "0600"
         "the queue's readings were kept: {accepted}"
     );
     eprintln!("{sent} frames: {accepted} archived, {dropped} dropped and counted");
-    stop.send(true).unwrap();
-    rt.block_on(daemon).unwrap().unwrap();
+    daemon.stop();
 }

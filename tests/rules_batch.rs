@@ -261,7 +261,7 @@ fn state_survives_a_round_trip_through_json() {
     assert_eq!(v[0].points[0].number, 1);
     assert!(
         v[0].message
-            .starts_with("9 subgroup means in a row above the centre line 12 mm"),
+            .starts_with("9 subgroup means in a row above the centre line 12.0000 mm"),
         "{}",
         v[0].message
     );

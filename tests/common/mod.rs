@@ -45,6 +45,74 @@ pub fn run_daemon(cfg: linewarden::config::Config) -> linewarden::daemon::Summar
         .unwrap()
 }
 
+/// The daemon running in this process on a two-worker runtime, as in production, until
+/// [`InProcess::stop`].
+pub struct InProcess {
+    rt: tokio::runtime::Runtime,
+    stop: tokio::sync::watch::Sender<bool>,
+    daemon: tokio::task::JoinHandle<
+        Result<linewarden::daemon::Summary, linewarden::daemon::DaemonError>,
+    >,
+    _reload: tokio::sync::mpsc::Sender<()>,
+}
+
+impl InProcess {
+    /// Loads the config at `path` and starts the daemon on it.
+    pub fn start(path: &std::path::Path) -> InProcess {
+        let cfg = linewarden::config::load(path).unwrap();
+        let rt = tokio::runtime::Builder::new_multi_thread()
+            .worker_threads(2)
+            .enable_all()
+            .build()
+            .unwrap();
+        let (stop, stop_rx) = tokio::sync::watch::channel(false);
+        let (reload, reload_rx) = tokio::sync::mpsc::channel(1);
+        let daemon = rt.spawn(linewarden::daemon::run(cfg, stop_rx, reload_rx));
+        InProcess {
+            rt,
+            stop,
+            daemon,
+            _reload: reload,
+        }
+    }
+
+    pub fn is_finished(&self) -> bool {
+        self.daemon.is_finished()
+    }
+
+    /// Stops it as SIGTERM would, and waits for a clean end.
+    pub fn stop(self) -> linewarden::daemon::Summary {
+        self.stop.send(true).unwrap();
+        self.rt.block_on(self.daemon).unwrap().unwrap()
+    }
+}
+
+/// Waits until `f` holds, polling; fails the test after `limit`.
+pub fn wait(what: &str, limit: std::time::Duration, f: impl Fn() -> bool) {
+    let start = std::time::Instant::now();
+    while !f() {
+        assert!(start.elapsed() < limit, "timed out waiting for {what}");
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+}
+
+/// A small filesystem, or None after saying why the test is skipped (a failure where CI sets
+/// LINEWARDEN_REQUIRE_SMALL_FS).
+pub fn small_fs_or_skip(
+    base: &std::path::Path,
+    size: &str,
+) -> Option<(std::path::PathBuf, Option<Mount>)> {
+    let fs = small_fs(base, size);
+    if fs.is_none() {
+        assert!(
+            std::env::var("LINEWARDEN_REQUIRE_SMALL_FS").is_err(),
+            "no small filesystem could be mounted, and CI requires one"
+        );
+        eprintln!("skipped: no small filesystem (run as root, or set LINEWARDEN_SMALL_FS)");
+    }
+    fs
+}
+
 /// A small filesystem mounted for a test, unmounted when dropped.
 pub struct Mount(std::path::PathBuf);
 
