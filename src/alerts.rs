@@ -629,8 +629,10 @@ pub enum Standing {
     InControl,
     /// A warning or notice is active, or a stop alert has been acknowledged and is not over.
     Warning,
-    /// A stop-level alert nobody has acknowledged.
-    Stopped,
+    /// A stop-level alert nobody has acknowledged: someone must act now. (Written
+    /// `action-needed`; older records said `stopped`, which read as "monitoring stopped".)
+    #[serde(alias = "stopped")]
+    ActionNeeded,
 }
 
 impl Standing {
@@ -639,7 +641,7 @@ impl Standing {
             Standing::Learning => "learning",
             Standing::InControl => "in-control",
             Standing::Warning => "warning",
-            Standing::Stopped => "stopped",
+            Standing::ActionNeeded => "action-needed",
         }
     }
 }
@@ -653,7 +655,7 @@ pub fn standing<'a>(alerts: impl Iterator<Item = &'a Alert>, learning: bool) -> 
     };
     for a in alerts.filter(|a| a.status != Status::Cleared) {
         let this = if a.severity == Severity::Stop && a.status == Status::Open {
-            Standing::Stopped
+            Standing::ActionNeeded
         } else {
             Standing::Warning
         };
@@ -772,7 +774,7 @@ mod tests {
         log.extend(b.checked("bore", Level::Subgroup, &[], &p, 3000));
         let a = b.get(id).unwrap();
         assert!(a.gone && a.status == Status::Open, "latched: {a:?}");
-        assert_eq!(standing(b.all(), false), Standing::Stopped);
+        assert_eq!(standing(b.all(), false), Standing::ActionNeeded);
         log.extend(
             b.acknowledge("bore", "R. Tech", Some("insert changed"), 4000)
                 .unwrap(),

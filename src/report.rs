@@ -302,7 +302,7 @@ pub fn status(r: &crate::daemon::hub::StatusReport) -> String {
             ),
             _ => String::new(),
         };
-        let _ = writeln!(s, "  {:<20} {:<11} {last}{extra}", c.id, c.state);
+        let _ = writeln!(s, "  {:<20} {:<13} {last}{extra}", c.id, c.state);
     }
     let active: Vec<_> = r
         .alerts

@@ -225,4 +225,35 @@ preset = "nelson"
             .any(|o| matches!(o, Output::Record(Record::LimitsInstalled { .. })))
     );
     assert_eq!(e.characteristics(), [("face".to_string(), false)]);
+
+    // The limits file was never written (as when its directory is read-only): a restart
+    // installs the learned limits from the archive instead of learning again, and tries to
+    // write the file once more.
+    for o in &outputs {
+        if let Output::Record(r) = o {
+            log.append(r.clone());
+        }
+    }
+    assert!(!dir.path().join("face.toml").exists());
+    let mut again = Engine::new(&cfg, T0 + 1000);
+    assert_eq!(again.characteristics(), [("face".to_string(), true)]);
+    let restored = again.restore(&log.tail);
+    assert_eq!(again.characteristics(), [("face".to_string(), false)]);
+    assert!(
+        restored
+            .iter()
+            .any(|o| matches!(o, Output::WriteLimits { .. }))
+    );
+    assert!(
+        restored
+            .iter()
+            .any(|o| matches!(o, Output::Log { message, .. }
+        if message.contains("from the archive") && message.contains("face.toml")))
+    );
+    // Pointed at a new file name, the characteristic learns afresh.
+    std::fs::write(&path, text.replace("face.toml", "face-2.toml")).unwrap();
+    let renamed = config::load(&path).unwrap();
+    let mut fresh = Engine::new(&renamed, T0 + 2000);
+    fresh.restore(&log.tail);
+    assert_eq!(fresh.characteristics(), [("face".to_string(), true)]);
 }

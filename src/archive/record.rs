@@ -160,6 +160,10 @@ pub struct CharacteristicTail {
     /// The characteristic's alerts that are not cleared, and the last few cleared ones.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub alerts: Vec<crate::alerts::Alert>,
+    /// The limits last learned by the daemon and the file they were meant for, so that a
+    /// restart uses them even when that file could not be written.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub installed: Option<(String, Box<StoredLimits>)>,
 }
 
 /// Everything the archive records.
@@ -242,6 +246,9 @@ pub enum Record {
         old: Option<Box<StoredLimits>>,
         new: Box<StoredLimits>,
         reason: String,
+        /// The limits file they were meant for (learned limits), as configured then.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        file: Option<String>,
     },
     ConfigLoaded {
         path: String,
@@ -364,6 +371,15 @@ impl Tail {
                     time_ms,
                     part: part.clone(),
                 });
+            }
+            Record::LimitsInstalled {
+                characteristic,
+                new,
+                file,
+                ..
+            } => {
+                self.entry(characteristic).installed =
+                    file.as_ref().map(|f| (f.clone(), new.clone()));
             }
             Record::SubgroupResult {
                 characteristic,

@@ -118,7 +118,7 @@ pub fn light(book: &Book, sources_healthy: bool, archive_ok: bool) -> Light {
     for a in book.active() {
         worst = worst.max(
             if a.severity == Severity::Stop && a.status == Status::Open {
-                Standing::Stopped
+                Standing::ActionNeeded
             } else if a.severity >= Severity::Warn {
                 Standing::Warning
             } else {
@@ -127,7 +127,7 @@ pub fn light(book: &Book, sources_healthy: bool, archive_ok: bool) -> Light {
         );
     }
     match worst {
-        Standing::Stopped => Light::Alarm,
+        Standing::ActionNeeded => Light::Alarm,
         Standing::Warning => Light::Attention,
         _ if !sources_healthy || !archive_ok => Light::Attention,
         _ => Light::Normal,

@@ -839,6 +839,7 @@ async fn carry_out(
             Output::WriteLimits { path, limits } => {
                 let text = limits.to_toml();
                 let id = limits.characteristic.clone();
+                let shown = path.display().to_string();
                 let result = tokio::task::spawn_blocking(move || {
                     if let Some(dir) = path.parent() {
                         std::fs::create_dir_all(dir)?;
@@ -851,10 +852,10 @@ async fn carry_out(
                         tracing::info!(component = "engine", characteristic = %id, "wrote provisional limits to {}", path.display())
                     }
                     Ok(Err(e)) => {
-                        tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits: {e}; they are in the archive")
+                        tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits to {shown}: {e}; they are in the archive, and a restart installs them from there")
                     }
                     Err(e) => {
-                        tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits: {e}")
+                        tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits to {shown}: {e}")
                     }
                 }
             }

@@ -813,6 +813,11 @@ impl CharEngine {
                     old: None,
                     new: Box::new(limits.clone()),
                     reason: message,
+                    file: self
+                        .cfg
+                        .limits_path
+                        .as_ref()
+                        .map(|p| p.display().to_string()),
                 }));
                 if let Some(path) = &self.cfg.limits_path {
                     out.push(Output::WriteLimits {
@@ -864,6 +869,42 @@ impl CharEngine {
 
     fn restore(&mut self, t: &crate::archive::record::CharacteristicTail) -> Vec<Output> {
         let mut out = Vec::new();
+        // Limits learned before the restart whose file could not be written (or was lost): use
+        // them from the archive rather than learning again, and try the file once more.
+        // Only for the same file: pointing `limits` at a new file name learns afresh.
+        if let (Mode::Learning { .. }, Some((file, l))) = (&self.mode, &t.installed)
+            && l.chart == self.cfg.chart
+            && self
+                .cfg
+                .limits_path
+                .as_ref()
+                .is_some_and(|p| p.display().to_string() == *file)
+        {
+            let limits = (**l).clone();
+            out.push(Output::Log {
+                level: Level::Warn,
+                characteristic: self.cfg.id.clone(),
+                message: format!(
+                    "installed the limits learned before the restart from the archive ({}); their file {} is missing",
+                    limits.provenance.computed_at,
+                    self.cfg
+                        .limits_path
+                        .as_ref()
+                        .map_or_else(|| "(none configured)".into(), |p| p.display().to_string())
+                ),
+            });
+            if let Some(path) = &self.cfg.limits_path {
+                out.push(Output::WriteLimits {
+                    path: path.clone(),
+                    limits: Box::new(limits.clone()),
+                });
+            }
+            let points = PointEvaluator::new(&self.cfg.rules, basis_of(&limits, &self.cfg));
+            self.mode = Mode::Monitoring {
+                limits: Box::new(limits),
+                points: Box::new(points),
+            };
+        }
         self.asm.restore(t.pending.iter().cloned());
         self.recent = t.recent.iter().rev().take(RECENT).rev().copied().collect();
         let saved: Option<Saved> = t.engine.as_ref().and_then(|(_, v)| v.read());
