@@ -90,6 +90,18 @@ pub fn utc_ms(ms: i64) -> String {
     }
 }
 
+/// Milliseconds since 1970 as the plant's local time with its offset
+/// (`2026-12-02 09:14:03 +01:00`), for people; the archive stays in UTC.
+pub fn local_ms(ms: i64, tz: &jiff::tz::TimeZone) -> String {
+    match jiff::Timestamp::from_millisecond(ms) {
+        Ok(t) => t
+            .to_zoned_datetime(tz.clone())
+            .strftime("%Y-%m-%d %H:%M:%S %:z")
+            .to_string(),
+        Err(_) => format!("{ms} ms since 1970"),
+    }
+}
+
 /// Reads an RFC 3339 time (RFC 3339 §5.6: `T` or `t`, and as the section's note allows a
 /// space, between date and time; `Z`, `z` or a numeric offset `+01:00` / `-05:00`; any number
 /// of fraction digits, of which milliseconds are kept) as milliseconds since 1970 UTC.
@@ -222,6 +234,14 @@ mod tests {
             assert!(parse_rfc3339(bad).is_err(), "{bad} was read");
         }
         assert_eq!(utc_ms(1_796_198_400_250), "2026-12-02T08:00:00.250Z");
+        let berlin = jiff::tz::TimeZone::get("Europe/Berlin").unwrap();
+        assert_eq!(
+            local_ms(1_796_198_400_250, &berlin),
+            "2026-12-02 09:00:00 +01:00"
+        );
+        // Summer time (CEST, UTC+2) in July.
+        let july = parse_rfc3339("2026-07-01T08:00:00Z").unwrap();
+        assert_eq!(local_ms(july, &berlin), "2026-07-01 10:00:00 +02:00");
     }
 
     #[test]

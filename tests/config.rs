@@ -237,3 +237,31 @@ kind = "sms"
     }
     assert!(e.contains("bad.toml:6:8: control.mode"), "positions: {e}");
 }
+
+#[test]
+fn a_time_zone_and_decimals_are_checked_where_they_are_written() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cell.toml");
+    std::fs::write(
+        &path,
+        "[daemon]\narchive_dir = \"a\"\ntimezone = \"Europe/Atlantis\"\n\n[[characteristic]]\nid = \"bore\"\nsubgroup = { size = 5 }\ndecimals = 12\n",
+    )
+    .unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    assert!(
+        err.contains("cell.toml:3:12: daemon.timezone: \"Europe/Atlantis\" is not a time zone"),
+        "{err}"
+    );
+    assert!(
+        err.contains("characteristic[0].decimals: 12 decimals"),
+        "{err}"
+    );
+    std::fs::write(
+        &path,
+        "[daemon]\narchive_dir = \"a\"\ntimezone = \"America/Chicago\"\n\n[[characteristic]]\nid = \"bore\"\nsubgroup = { size = 5 }\ndecimals = 3\n",
+    )
+    .unwrap();
+    let cfg = config::load(&path).unwrap();
+    assert_eq!(cfg.tz().iana_name(), Some("America/Chicago"));
+    assert_eq!(cfg.characteristics[0].decimals, Some(3));
+}

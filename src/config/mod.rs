@@ -49,6 +49,9 @@ pub struct RawDaemon {
     pub flush_interval_ms: u64,
     #[serde(default = "default_segment_mb")]
     pub max_segment_mb: u64,
+    /// The plant's time zone for times people read (an IANA name such as "Europe/Berlin");
+    /// the system's when not given. The archive stays in UTC.
+    pub timezone: Option<String>,
 }
 
 fn default_flush_ms() -> u64 {
@@ -439,6 +442,18 @@ pub struct Config {
     pub alerts: AlertsConfig,
     pub outputs: Vec<Output>,
     pub control: Option<Control>,
+    /// The plant's time zone (IANA name); None for the system's.
+    pub timezone: Option<String>,
+}
+
+impl Config {
+    /// The time zone for times people read: the configured one, else the system's.
+    pub fn tz(&self) -> jiff::tz::TimeZone {
+        self.timezone
+            .as_deref()
+            .and_then(|n| jiff::tz::TimeZone::get(n).ok())
+            .unwrap_or_else(jiff::tz::TimeZone::system)
+    }
 }
 
 /// Why a configuration could not be loaded.
@@ -769,6 +784,14 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
     let alerts = outputs::build_alerts(&raw.alerts, &raw.output, loc, p);
     let outputs = outputs::build_outputs(&raw.output, &alerts, &resolve, loc, p);
     let control = outputs::build_control(&raw.control, &resolve, loc, p);
+    if let Some(tz) = &raw.daemon.timezone
+        && let Err(e) = jiff::tz::TimeZone::get(tz)
+    {
+        p.push(loc.problem(
+            "daemon.timezone",
+            format!("\"{tz}\" is not a time zone this machine knows ({e}); use an IANA name such as \"Europe/Berlin\""),
+        ));
+    }
     Config {
         path: path.to_path_buf(),
         archive_dir: resolve(&raw.daemon.archive_dir),
@@ -779,6 +802,7 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
         alerts,
         outputs,
         control,
+        timezone: raw.daemon.timezone.clone(),
     }
 }
 

@@ -185,6 +185,7 @@ pub async fn run(
                 requests: req_tx.clone(),
                 shutdown: outputs_stop_rx.clone(),
                 progress: progress.clone(),
+                timezone: cfg.tz(),
             },
         );
         tracing::info!(component = "output", output = %o.id, "alerts go to {}", o.describe());

@@ -60,6 +60,7 @@ pub fn compose(
     output: &str,
     view: &AlertsView,
     due: &[&Alert],
+    tz: &jiff::tz::TimeZone,
 ) -> Result<Message, String> {
     let subject = if due.len() == 1 {
         let a = due[0];
@@ -109,7 +110,7 @@ pub fn compose(
     for a in due {
         let c = view.characteristics.get(&a.characteristic);
         let unit = c.map(|c| c.unit.as_str()).unwrap_or("");
-        let words = plain_words(a, unit, c.and_then(|c| c.decimals));
+        let words = plain_words(a, unit, c.and_then(|c| c.decimals), tz);
         let state = match a.status {
             Status::Open => format!(
                 "Open. Acknowledge at the cell or with: linewarden ack {} --by NAME",
@@ -254,7 +255,7 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
         if due.is_empty() {
             continue;
         }
-        let msg = match compose(&e, &o.id, &view, &due) {
+        let msg = match compose(&e, &o.id, &view, &due, &f.timezone) {
             Ok(m) => m,
             Err(err) => {
                 tracing::error!(

@@ -35,6 +35,8 @@ pub struct Feeds {
     pub shutdown: watch::Receiver<bool>,
     /// When the engine loop last turned (ms since 1970).
     pub progress: Arc<std::sync::atomic::AtomicI64>,
+    /// The plant's time zone, for the times people read.
+    pub timezone: jiff::tz::TimeZone,
 }
 
 /// Starts output `o`.
@@ -105,7 +107,12 @@ pub fn backoff(attempt: u32) -> Duration {
 /// The alert in plain words for a person: what and where, which chart and which way, the
 /// parts, the figures (with the characteristic's decimals; a statistic beyond its limit never
 /// prints equal to it), and what to check first. Every figure is of the alert's one cause.
-pub fn plain_words(a: &Alert, unit: &str, decimals: Option<usize>) -> String {
+pub fn plain_words(
+    a: &Alert,
+    unit: &str,
+    decimals: Option<usize>,
+    tz: &jiff::tz::TimeZone,
+) -> String {
     use crate::format::{fixed, fixed_pair, num, sig_pair};
     let value = |v: f64| decimals.map_or_else(|| num(v), |d| fixed(v, d));
     let mut s = String::new();
@@ -128,6 +135,16 @@ pub fn plain_words(a: &Alert, unit: &str, decimals: Option<usize>) -> String {
         None => "",
     };
     s.push_str(&format!("Seen on {chart}{way}.\n"));
+    let local = |ms: i64| crate::format::local_ms(ms, tz);
+    if a.count > 1 {
+        s.push_str(&format!(
+            "When: first {}, latest {}\n",
+            local(a.raised_ms),
+            local(a.last_seen_ms)
+        ));
+    } else {
+        s.push_str(&format!("When: {}\n", local(a.raised_ms)));
+    }
     match a.parts.as_slice() {
         [] => {}
         [one] => s.push_str(&format!("Part: {one}\n")),
@@ -178,7 +195,7 @@ async fn log_output(o: Output, mut f: Feeds) {
             if have == 0 {
                 let c = view.characteristics.get(&a.characteristic);
                 let unit = c.map(|c| c.unit.as_str()).unwrap_or("");
-                let text = plain_words(a, unit, c.and_then(|c| c.decimals));
+                let text = plain_words(a, unit, c.and_then(|c| c.decimals), &f.timezone);
                 let bar = "=".repeat(72);
                 eprintln!(
                     "{bar}\n{}{}\n{bar}",
@@ -249,7 +266,9 @@ mod tests {
             0,
         );
         let spread = b.get("port-33-beyond-limits-spread-up").unwrap();
-        let text = plain_words(spread, "mm", Some(4));
+        let utc = jiff::tz::TimeZone::UTC;
+        let text = plain_words(spread, "mm", Some(4), &utc);
+        assert!(text.contains("When: 1970-01-01 00:00:00 +00:00"), "{text}");
         assert!(text.contains("Seen on the spread chart"), "{text}");
         assert!(text.contains("moving up"), "{text}");
         assert!(text.contains("Parts: VB00187, VB00188"), "{text}");
@@ -259,7 +278,7 @@ mod tests {
         );
         assert!(text.contains("Points (mm): #33 0.0330"), "{text}");
         let mean = b.get("port-33-beyond-limits-up").unwrap();
-        let text = plain_words(mean, "mm", Some(4));
+        let text = plain_words(mean, "mm", Some(4), &utc);
         assert!(
             text.contains("Statistic 12.00472 against limit 12.00468"),
             "{text}"
