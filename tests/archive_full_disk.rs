@@ -64,14 +64,31 @@ fn the_writer_pauses_on_a_full_disk_and_resumes_without_loss() {
         std::thread::sleep(Duration::from_millis(5));
     }
     let durable_when_full = status.borrow().durable_seq;
-    // Backpressure: the producer is held; nothing more is taken while the disk is full.
-    std::thread::sleep(Duration::from_millis(300));
-    let held = appended.load(Ordering::SeqCst);
+    // Backpressure: the writer keeps taking appends into memory only up to its bound
+    // (writer::MAX_BUFFERED_WHILE_FULL), then the producer is held. Wait for it to be held
+    // (however slow the machine), then check that nothing more is taken.
+    let mut held = appended.load(Ordering::SeqCst);
+    let deadline = Instant::now() + Duration::from_secs(30);
+    loop {
+        std::thread::sleep(Duration::from_millis(300));
+        let now = appended.load(Ordering::SeqCst);
+        if now == held {
+            break;
+        }
+        assert!(Instant::now() < deadline, "the producer was never held");
+        held = now;
+    }
     std::thread::sleep(Duration::from_millis(300));
     assert_eq!(
         appended.load(Ordering::SeqCst),
         held,
         "the producer waits while the disk is full"
+    );
+    // What was taken meanwhile is bounded: each reading record is well over 64 bytes.
+    assert!(
+        held - durable_when_full <= (writer::MAX_BUFFERED_WHILE_FULL / 64) as u64,
+        "{} records taken into memory while the disk was full",
+        held - durable_when_full
     );
     assert!(matches!(
         status.borrow_and_update().state,

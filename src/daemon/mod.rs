@@ -617,10 +617,10 @@ pub async fn run(
         tracing::warn!(
             component = "alerts",
             characteristic = %a.characteristic,
-            "at shutdown, alert {} is {} ({} times in all{}): {}",
+            "at shutdown, alert {} is {} (fired {}{}): {}",
             a.id,
             a.status.name(),
-            a.count,
+            if a.count == 1 { "once".to_string() } else { format!("{} times", a.count) },
             if a.gone { ", condition gone" } else { "" },
             a.last_message
         );
