@@ -819,17 +819,7 @@ impl CharEngine {
                         .as_ref()
                         .map(|p| p.display().to_string()),
                 }));
-                if let Some(path) = &self.cfg.limits_path {
-                    out.push(Output::WriteLimits {
-                        path: path.clone(),
-                        limits: Box::new(limits.clone()),
-                    });
-                }
-                let points = PointEvaluator::new(&self.cfg.rules, basis_of(&limits, &self.cfg));
-                self.mode = Mode::Monitoring {
-                    limits: Box::new(limits),
-                    points: Box::new(points),
-                };
+                self.install_learned(limits, out);
             }
             Err(e) => {
                 out.push(Output::Log {
@@ -867,6 +857,22 @@ impl CharEngine {
         }
     }
 
+    /// Starts monitoring with learned `limits`, asking for them to be written to the limits
+    /// file (at learning, and again after a restart that found the file missing).
+    fn install_learned(&mut self, limits: StoredLimits, out: &mut Vec<Output>) {
+        if let Some(path) = &self.cfg.limits_path {
+            out.push(Output::WriteLimits {
+                path: path.clone(),
+                limits: Box::new(limits.clone()),
+            });
+        }
+        let points = PointEvaluator::new(&self.cfg.rules, basis_of(&limits, &self.cfg));
+        self.mode = Mode::Monitoring {
+            limits: Box::new(limits),
+            points: Box::new(points),
+        };
+    }
+
     fn restore(&mut self, t: &crate::archive::record::CharacteristicTail) -> Vec<Output> {
         let mut out = Vec::new();
         // Limits learned before the restart whose file could not be written (or was lost): use
@@ -885,25 +891,11 @@ impl CharEngine {
                 level: Level::Warn,
                 characteristic: self.cfg.id.clone(),
                 message: format!(
-                    "installed the limits learned before the restart from the archive ({}); their file {} is missing",
+                    "installed the limits learned before the restart from the archive ({}); their file {file} is missing",
                     limits.provenance.computed_at,
-                    self.cfg
-                        .limits_path
-                        .as_ref()
-                        .map_or_else(|| "(none configured)".into(), |p| p.display().to_string())
                 ),
             });
-            if let Some(path) = &self.cfg.limits_path {
-                out.push(Output::WriteLimits {
-                    path: path.clone(),
-                    limits: Box::new(limits.clone()),
-                });
-            }
-            let points = PointEvaluator::new(&self.cfg.rules, basis_of(&limits, &self.cfg));
-            self.mode = Mode::Monitoring {
-                limits: Box::new(limits),
-                points: Box::new(points),
-            };
+            self.install_learned(limits, &mut out);
         }
         self.asm.restore(t.pending.iter().cloned());
         self.recent = t.recent.iter().rev().take(RECENT).rev().copied().collect();
