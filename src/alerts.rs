@@ -92,6 +92,12 @@ pub struct Alert {
     /// subgroup that completed the signal), when the source names parts.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub parts: Vec<String>,
+    /// Raised against provisional limits (learned, not yet approved).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub provisional: bool,
+    /// The rule's own severity, when the provisional cap lowered it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub capped_from: Option<Severity>,
     /// What the technician should check first (from the config).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub reaction_plan: Option<String>,
@@ -237,7 +243,10 @@ pub struct Book {
 impl Alert {
     /// Whether `v` is this alert's cause: the same rule, on the same chart, the same way.
     pub fn same_cause(&self, v: &Violation) -> bool {
-        self.rule == v.rule && self.chart == v.chart && self.side == v.side
+        self.rule == v.rule
+            && self.chart == v.chart
+            && self.side == v.side
+            && self.provisional == v.provisional
     }
 }
 
@@ -337,6 +346,8 @@ impl Book {
                     chart: v.chart,
                     side: v.side,
                     parts: parts.to_vec(),
+                    provisional: v.provisional,
+                    capped_from: v.capped_from,
                 },
             },
         };
@@ -506,6 +517,8 @@ pub fn apply(list: &mut Vec<Alert>, id: &str, characteristic: &str, event: &Aler
         chart,
         side,
         parts,
+        provisional,
+        capped_from,
     } = event
     {
         if list.iter().any(|a| a.id == id) {
@@ -525,6 +538,8 @@ pub fn apply(list: &mut Vec<Alert>, id: &str, characteristic: &str, event: &Aler
             chart: *chart,
             side: *side,
             parts: parts.clone(),
+            provisional: *provisional,
+            capped_from: *capped_from,
             reaction_plan: reaction_plan.clone(),
             raised_ms: *at_ms,
             last_seen_ms: *at_ms,
@@ -682,6 +697,8 @@ mod tests {
             limit: 12.006,
             side: None,
             chart: crate::rules::Chart::Location,
+            provisional: false,
+            capped_from: None,
         }
     }
 

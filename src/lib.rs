@@ -4,7 +4,8 @@
 //!
 //! * [`stats`] — the pure statistics core: chart constants ([`stats::constants`]), variables
 //!   charts ([`stats::variables`]), attribute charts ([`stats::attributes`]), EWMA
-//!   ([`stats::ewma`]) and CUSUM ([`stats::cusum`]), baseline studies ([`stats::study`]),
+//!   ([`stats::ewma`]) and CUSUM ([`stats::cusum`]), baseline studies ([`stats::study`]) and
+//!   the policy the daemon learns limits with and its simulation ([`stats::learning`]),
 //!   capability ([`stats::capability`]) and normality ([`stats::normality`]). No I/O, no clock,
 //!   no tokio.
 //! * [`rules`] — run rules evaluated incrementally per subgroup and per reading, their TOML
@@ -17,6 +18,8 @@
 //! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
 //!   parsed, validated and written atomically.
 //! * [`report`] — the readable text of a study and of a capability analysis.
+//! * [`chart`] — control-chart pictures (both charts, limits, zones, marked signals, local
+//!   time axis), drawn to PNG or SVG; the one drawing every output uses.
 //! * [`fsutil`] — durable file writes (temp file, fsync, rename, fsync of the directory).
 //! * [`diag`] — problems in a TOML file, located by TOML path and line:column.
 //! * [`format`] — number and time formatting shared by reports and files, and the RFC 3339
@@ -28,6 +31,7 @@
 
 pub mod alerts;
 pub mod archive;
+pub mod chart;
 pub mod config;
 pub mod daemon;
 pub mod diag;

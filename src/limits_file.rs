@@ -41,6 +41,16 @@
 //! iteration = 1
 //! reason = "mean 12.0093 above the upper control limit 12.0066 (trial limits of round 1)"
 //! ```
+//!
+//! Limits the daemon learned from its first subgroups say `provisional = true` in
+//! `[provenance]` until an engineer approves them (`linewarden approve`), which adds:
+//!
+//! ```toml
+//! [approved]
+//! by = "R. Okafor"
+//! at = "2026-12-02T09:14:03Z"
+//! note = "checked against the setup sheet"
+//! ```
 
 use std::path::Path;
 
@@ -72,6 +82,20 @@ pub struct StoredLimits {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub spec: Option<Spec>,
     pub provenance: Provenance,
+    /// Who approved provisional limits, and when.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub approved: Option<Approval>,
+}
+
+/// An engineer's approval of provisional (learned) limits.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Approval {
+    pub by: String,
+    /// RFC 3339, UTC.
+    pub at: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
 }
 
 /// The process sigma and how it was estimated.
@@ -108,6 +132,10 @@ pub struct Provenance {
     pub used: String,
     #[serde(default)]
     pub excluded: Vec<Exclusion>,
+    /// Learned by the daemon from its first subgroups, with nobody having looked at them:
+    /// alerts on them are capped until they are approved.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub provisional: bool,
 }
 
 /// Why a limits file could not be loaded.
@@ -168,8 +196,15 @@ impl StoredLimits {
                 subgroups_used: study.subgroups_used,
                 used: ranges(&study.used_subgroups()),
                 excluded: study.excluded.clone(),
+                provisional: false,
             },
+            approved: None,
         }
+    }
+
+    /// Learned limits nobody has approved yet.
+    pub fn is_provisional(&self) -> bool {
+        self.provenance.provisional && self.approved.is_none()
     }
 
     /// The file's text: a comment saying what it is, then the TOML.
@@ -178,8 +213,16 @@ impl StoredLimits {
             // Every field is a plain number, string or table: serialization cannot fail.
             unreachable!("stored limits always serialize: {e}")
         });
+        let review = if self.is_provisional() {
+            format!(
+                "# PROVISIONAL: learned by the daemon from its first subgroups and not yet approved.\n# Alerts on these limits are capped until an engineer reviews them and runs\n#   linewarden approve {} --by NAME\n",
+                self.characteristic
+            )
+        } else {
+            "# Review before use; edit by recomputing, not by hand.\n".to_string()
+        };
         format!(
-            "# Control limits for characteristic \"{}\", written by {}.\n# Review before use; edit by recomputing, not by hand.\n\n{body}",
+            "# Control limits for characteristic \"{}\", written by {}.\n{review}\n{body}",
             self.characteristic, self.provenance.tool
         )
     }
@@ -272,6 +315,23 @@ impl StoredLimits {
             && let Err(e) = spec.validate()
         {
             bad("spec", e.to_string());
+        }
+        if let Some(a) = &self.approved {
+            if a.by.trim().is_empty() {
+                bad(
+                    "approved.by",
+                    "is empty; say who approved the limits".into(),
+                );
+            }
+            if crate::format::parse_rfc3339(&a.at).is_err() {
+                bad(
+                    "approved.at",
+                    format!(
+                        "\"{}\" is not an RFC 3339 time such as 2026-12-02T09:14:03Z",
+                        a.at
+                    ),
+                );
+            }
         }
         if self.provenance.subgroups_used > self.provenance.subgroups_total {
             bad(

@@ -77,6 +77,20 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Approve the provisional limits a characteristic learned: recorded with who and when in
+    /// the archive and the limits file; from then on its alerts take their rules' severities.
+    Approve {
+        /// The characteristic id.
+        characteristic: String,
+        /// Who approves: a name, recorded in the archive and the limits file.
+        #[arg(long, value_name = "NAME")]
+        by: String,
+        /// What was reviewed (a setup sheet, a study).
+        #[arg(long, value_name = "TEXT")]
+        note: Option<String>,
+        #[command(flatten)]
+        to: DaemonArgs,
+    },
 }
 
 /// Which daemon to talk to.
@@ -313,6 +327,12 @@ fn main() -> ExitCode {
             to,
             json,
         } => ack_cmd(&to, alert, by, note, json),
+        Command::Approve {
+            characteristic,
+            by,
+            note,
+            to,
+        } => approve_cmd(&to, characteristic, by, note),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -989,6 +1009,30 @@ fn ack_cmd(
     if !json {
         println!("acknowledged: {}", r.acknowledged.join(", "));
     }
+    Ok(())
+}
+
+fn approve_cmd(
+    to: &DaemonArgs,
+    characteristic: String,
+    by: String,
+    note: Option<String>,
+) -> Result<()> {
+    use linewarden::daemon::control::{ClientRequest, ask};
+    linewarden::alerts::check_ack_text(&by, note.as_deref())?;
+    let req = ClientRequest::Approve {
+        characteristic: characteristic.clone(),
+        by,
+        note,
+    };
+    let v = ask(&to.socket()?, &req).map_err(anyhow::Error::msg)?;
+    let r: linewarden::daemon::hub::ApproveReply = serde_json::from_value(v)?;
+    if !r.ok {
+        anyhow::bail!("{}", r.error.unwrap_or_else(|| "refused".into()));
+    }
+    println!(
+        "approved: the limits of {characteristic} (recorded in the archive and written to its limits file)"
+    );
     Ok(())
 }
 

@@ -288,21 +288,37 @@ pub fn status(r: &crate::daemon::hub::StatusReport) -> String {
     }
     let _ = writeln!(s, "\ncharacteristics:");
     for c in &r.characteristics {
+        let fmt = |v: f64| match c.decimals {
+            Some(d) => crate::format::fixed(v, d),
+            None => num(v),
+        };
         let last = match &c.last_subgroup {
-            Some(g) => format!("subgroup {} mean {} {}", g.number, num(g.mean), c.unit),
+            Some(g) => format!("subgroup {} mean {} {}", g.number, fmt(g.mean), c.unit),
             None => "no subgroup yet".into(),
         };
         let extra = match (c.baseline, c.limits) {
             (Some((have, need)), _) => format!("  baseline {have}/{need}"),
             (None, Some(l)) => format!(
                 "  limits {} / {} / {}",
-                num(l.lcl),
-                num(l.center),
-                num(l.ucl)
+                fmt(l.lcl),
+                fmt(l.center),
+                fmt(l.ucl)
             ),
             _ => String::new(),
         };
         let _ = writeln!(s, "  {:<20} {:<13} {last}{extra}", c.id, c.state);
+        if matches!(
+            c.limits_state,
+            crate::engine::LimitsState::Provisional { .. }
+        ) {
+            let _ = writeln!(
+                s,
+                "  {:<20} limits {} (approve: linewarden approve {} --by NAME)",
+                "",
+                c.limits_state.words(),
+                c.id
+            );
+        }
     }
     let active: Vec<_> = r
         .alerts
@@ -329,6 +345,15 @@ pub fn status(r: &crate::daemon::hub::StatusReport) -> String {
                 .map(|k| format!(", acknowledged by {}", k.by))
                 .unwrap_or_default()
         );
+        if a.provisional {
+            let _ = writeln!(
+                s,
+                "      on provisional limits (learned, not yet approved){}",
+                a.capped_from
+                    .map(|f| format!("; the rule's own severity is {}", f.name()))
+                    .unwrap_or_default()
+            );
+        }
         if let Some(p) = &a.reaction_plan {
             let _ = writeln!(s, "      what to check first: {p}");
         }

@@ -312,6 +312,13 @@ fn mqtt_alerts_survive_a_broker_outage_and_are_acknowledged_from_the_hmi() {
         .find(|(t, _, _)| t == "cell4/linewarden/characteristics/bore/state")
         .expect("a retained state");
     assert_eq!(json(&state.1)["state"], "in-control");
+    // Where its limits come from (a study's file here; learned ones say "provisional").
+    assert_eq!(
+        json(&state.1)["limits"]["state"],
+        "stored",
+        "{}",
+        json(&state.1)
+    );
     // The archive has the whole life: raised, gone, acknowledged, cleared, delivered.
     let events = alert_events(&d.join("archive"));
     let kinds: Vec<&str> = events
@@ -501,7 +508,8 @@ fn email_waits_for_the_mail_server_and_carries_the_chart() {
     assert_eq!(related.subparts[1].ctype.mimetype, "image/png");
     let decoder = png::Decoder::new(std::io::Cursor::new(png));
     let reader = decoder.read_info().unwrap();
-    assert_eq!((reader.info().width, reader.info().height), (760, 380));
+    assert_eq!((reader.info().width, reader.info().height), (860, 560));
+    assert!(html.contains("location above, spread below"), "{html}");
 }
 
 #[test]

@@ -131,3 +131,113 @@ mode = "0600"
     assert!(!ok && err.contains("control character"), "{err}");
     daemon.stop();
 }
+
+/// Learned limits approved over the real control socket with the command line, as an engineer
+/// would: before approval the status says provisional; the approval is archived with who and
+/// when, written into the limits file, and a second approval or an unknown characteristic is
+/// refused with the reason.
+#[test]
+fn learned_limits_are_approved_from_the_command_line_and_the_approval_is_recorded() {
+    use linewarden::archive::reader::{Filter, Reader};
+    use linewarden::archive::record::Record;
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    std::fs::create_dir_all(d.join("inbox")).unwrap();
+    let socket = d.join("control.sock");
+    let text = format!(
+        r#"[daemon]
+archive_dir = "archive"
+
+[[characteristic]]
+id = "face"
+unit = "mm"
+limits = "limits/face.toml"
+subgroup = {{ size = 3 }}
+learning = {{ subgroups = 20 }}
+
+[[source]]
+id = "cmm"
+kind = "folder"
+path = "inbox"
+rows = "per-part"
+columns = {{ "Face" = "face" }}
+
+[control]
+socket = "{}"
+mode = "0600"
+"#,
+        socket.display()
+    );
+    std::fs::write(d.join("cell.toml"), text).unwrap();
+    let daemon = common::InProcess::start(&d.join("cell.toml"));
+    common::wait("the control socket", Duration::from_secs(10), || {
+        socket.exists()
+    });
+    let mut report = String::from("Face\n");
+    let mut x = 0.37f64;
+    for _ in 0..66 {
+        x = (x * 3.7 + 0.11).fract();
+        report.push_str(&format!("{:.4}\n", 38.2 + (x - 0.5) * 0.02));
+    }
+    std::fs::write(d.join("inbox/run-1.csv"), report).unwrap();
+    let file = d.join("limits/face.toml");
+    common::wait("learned limits", Duration::from_secs(20), || file.exists());
+    let s = socket.to_str().unwrap();
+    let (ok, out, err) = common::peers::cli(&["status", "--socket", s]);
+    assert!(ok, "{err}");
+    assert!(
+        out.contains("PROVISIONAL") && out.contains("linewarden approve face"),
+        "{out}"
+    );
+    assert!(
+        std::fs::read_to_string(&file)
+            .unwrap()
+            .contains("provisional = true")
+    );
+
+    let (ok, _, err) = common::peers::cli(&["approve", "fcae", "--by", "R. Okafor", "--socket", s]);
+    assert!(
+        !ok && err.contains("no characteristic is called \"fcae\""),
+        "{err}"
+    );
+    let (ok, out, err) = common::peers::cli(&[
+        "approve",
+        "face",
+        "--by",
+        "R. Okafor",
+        "--note",
+        "checked against the setup sheet",
+        "--socket",
+        s,
+    ]);
+    assert!(ok, "{err}");
+    assert!(out.contains("approved"), "{out}");
+    common::wait("the approved file", Duration::from_secs(10), || {
+        std::fs::read_to_string(&file).is_ok_and(|t| t.contains("[approved]"))
+    });
+    let written = linewarden::limits_file::StoredLimits::load(&file).unwrap();
+    assert!(!written.is_provisional());
+    assert_eq!(written.approved.as_ref().unwrap().by, "R. Okafor");
+    let (ok, _, err) = common::peers::cli(&["approve", "face", "--by", "Someone", "--socket", s]);
+    assert!(
+        !ok && err.contains("already approved by R. Okafor"),
+        "{err}"
+    );
+    let (_, out, _) = common::peers::cli(&["status", "--socket", s]);
+    assert!(!out.contains("PROVISIONAL"), "{out}");
+    daemon.stop();
+    let r = Reader::open(&d.join("archive")).unwrap();
+    let approvals: Vec<_> = r
+        .iter(&Filter::default())
+        .flatten()
+        .filter_map(|e| match e.record {
+            Record::LimitsApproved { approval, .. } => Some(approval),
+            _ => None,
+        })
+        .collect();
+    assert_eq!(approvals.len(), 1);
+    assert_eq!(
+        approvals[0].note.as_deref(),
+        Some("checked against the setup sheet")
+    );
+}

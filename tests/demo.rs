@@ -1,6 +1,9 @@
 //! The README's demo, as fast as the machine allows: config/demo.toml with its replay at full
 //! speed and the archive in a temporary directory. It must check subgroups, learn the two
 //! characteristics without stored limits, and raise alerts on the bore after the insert wears.
+//! Stop-level alerts only where a cause is injected (the bore): the regression was seven
+//! stop-level alerts on the stable port depth, from learned limits 26% too tight and alerts on
+//! unapproved limits at their rules' full severity.
 
 use std::path::Path;
 
@@ -43,8 +46,30 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
     let r = Reader::open(&dir.path().join("archive")).unwrap();
     let mut bore_alerts = 0;
     let mut installed = 0;
+    let mut stops = std::collections::BTreeSet::new();
     for e in r.iter(&Filter::default()) {
         match e.unwrap().record {
+            Record::Alert {
+                characteristic,
+                event:
+                    linewarden::archive::record::AlertEvent::Raised {
+                        severity,
+                        provisional,
+                        ..
+                    },
+                ..
+            } => {
+                if severity == linewarden::rules::Severity::Stop {
+                    stops.insert(characteristic.clone());
+                }
+                // The learning characteristics' alerts are all on provisional limits.
+                if characteristic != "vb210-bore" {
+                    assert!(
+                        provisional,
+                        "{characteristic}: an alert not marked provisional"
+                    );
+                }
+            }
             Record::SubgroupResult {
                 characteristic,
                 violations,
@@ -59,10 +84,18 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
                 );
                 bore_alerts += 1;
             }
-            Record::LimitsInstalled { .. } => installed += 1,
+            Record::LimitsInstalled { new, .. } => {
+                assert!(new.is_provisional());
+                installed += 1
+            }
             _ => {}
         }
     }
+    assert_eq!(
+        stops.into_iter().collect::<Vec<_>>(),
+        ["vb210-bore"],
+        "stop-level alerts only where the demo injects a cause"
+    );
     assert!(
         bore_alerts > 10,
         "{bore_alerts} bore subgroups with violations"

@@ -257,3 +257,242 @@ preset = "nelson"
     fresh.restore(&log.tail);
     assert_eq!(fresh.characteristics(), [("face".to_string(), true)]);
 }
+
+/// Feeds `n` readings of a stable pattern then `shifted` readings far above it; returns every
+/// output, the records appended to `log`.
+fn feed_face(e: &mut Engine, log: &mut Log, from: i64, n: i64, level: f64) -> Vec<Output> {
+    let mut outputs = Vec::new();
+    let mut x = 0.37f64;
+    for i in from..from + n {
+        x = (x * 3.7 + 0.11).fract();
+        let inc = Incoming {
+            source: "t".into(),
+            characteristic: "face".into(),
+            value: level + x * 0.01,
+            unit: None,
+            source_time_ms: Some(T0 + i * 1000),
+            source_time_ignored: false,
+            arrival_ms: T0 + i * 1000,
+            part: Some(format!("P{i}")),
+            source_key: None,
+        };
+        let seq = log.append(inc.record());
+        let out = e.accept(seq, &inc);
+        for o in &out {
+            if let Output::Record(r) = o {
+                log.append(r.clone());
+            }
+        }
+        outputs.extend(out);
+    }
+    outputs
+}
+
+fn raised(
+    outputs: &[Output],
+) -> Vec<(
+    String,
+    linewarden::rules::Severity,
+    bool,
+    Option<linewarden::rules::Severity>,
+)> {
+    use linewarden::archive::record::AlertEvent;
+    outputs
+        .iter()
+        .filter_map(|o| match o {
+            Output::Record(Record::Alert {
+                alert_id,
+                event:
+                    AlertEvent::Raised {
+                        severity,
+                        provisional,
+                        capped_from,
+                        ..
+                    },
+                ..
+            }) => Some((alert_id.clone(), *severity, *provisional, *capped_from)),
+            _ => None,
+        })
+        .collect()
+}
+
+/// The regression: alerts on limits the daemon learned, with nobody having looked at them,
+/// were stop-level and said nothing of it. They are now held at the configured cap and say
+/// "provisional" until an engineer approves the limits; the approval is recorded (who, when),
+/// written to the file, survives a restart that could not rewrite the file, and from then on
+/// alerts take their rules' own severities.
+#[test]
+fn alerts_on_unapproved_learned_limits_are_capped_and_approval_lifts_the_cap() {
+    use linewarden::engine::{ApproveError, LimitsState};
+    use linewarden::rules::Severity;
+    let dir = tempfile::tempdir().unwrap();
+    let text = r#"
+[daemon]
+archive_dir = "archive"
+[[characteristic]]
+id = "face"
+unit = "mm"
+limits = "face.toml"
+subgroup = { size = 3 }
+learning = { subgroups = 20 }
+[characteristic.rules]
+preset = "western-electric"
+"#;
+    let path = dir.path().join("cell.toml");
+    std::fs::write(&path, text).unwrap();
+    let cfg = config::load(&path).unwrap();
+    let mut e = Engine::new(&cfg, T0);
+    let mut log = Log::new();
+    // Approval before there is anything to approve is refused, with the progress.
+    assert!(matches!(
+        e.approve("face", "R. Okafor", None, T0),
+        Err(ApproveError::Learning {
+            have: 0,
+            need: 20,
+            ..
+        })
+    ));
+    let learned = feed_face(&mut e, &mut log, 0, 60, 5.0);
+    let limits = learned
+        .iter()
+        .find_map(|o| match o {
+            Output::WriteLimits { limits, .. } => Some(limits.clone()),
+            _ => None,
+        })
+        .expect("learned");
+    assert!(limits.is_provisional());
+    assert!(limits.to_toml().contains("provisional = true"));
+    assert!(
+        limits
+            .to_toml()
+            .contains("linewarden approve face --by NAME")
+    );
+    assert!(matches!(
+        e.view_of("face").unwrap().limits,
+        LimitsState::Provisional {
+            cap: Severity::Warn,
+            ..
+        }
+    ));
+    // A big shift: beyond-limits (stop by its rule) is raised at warn, marked provisional.
+    let shifted = feed_face(&mut e, &mut log, 60, 6, 5.2);
+    let r = raised(&shifted);
+    let beyond = r
+        .iter()
+        .find(|(id, ..)| id.contains("beyond-limits-up"))
+        .expect("beyond-limits raised");
+    assert_eq!(
+        (beyond.1, beyond.2, beyond.3),
+        (Severity::Warn, true, Some(Severity::Stop))
+    );
+    let alert = e.alerts().by_characteristic["face"]
+        .iter()
+        .find(|a| a.id == beyond.0)
+        .unwrap()
+        .clone();
+    let words =
+        linewarden::daemon::outputs::plain_words(&alert, "mm", Some(4), &jiff::tz::TimeZone::UTC);
+    assert!(words.contains("PROVISIONAL"), "{words}");
+    assert!(
+        words.contains("held at warn") && words.contains("its rule says stop"),
+        "{words}"
+    );
+
+    // Approval: checked text, recorded with who and when, written to the file.
+    assert!(matches!(
+        e.approve("face", "line\nforged", None, T0),
+        Err(ApproveError::BadText(_))
+    ));
+    assert!(matches!(
+        e.approve("fcae", "R. Okafor", None, T0),
+        Err(ApproveError::Unknown(_))
+    ));
+    let at = T0 + 100_000;
+    let out = e
+        .approve(
+            "face",
+            "R. Okafor",
+            Some("checked against the setup sheet"),
+            at,
+        )
+        .unwrap();
+    let approval = out
+        .iter()
+        .find_map(|o| match o {
+            Output::Record(Record::LimitsApproved { approval, file, .. }) => {
+                assert_eq!(
+                    file.as_deref(),
+                    Some(dir.path().join("face.toml").to_str().unwrap())
+                );
+                Some(approval.clone())
+            }
+            _ => None,
+        })
+        .expect("the approval is archived");
+    assert_eq!(approval.by, "R. Okafor");
+    assert_eq!(approval.at, linewarden::format::utc_ms(at));
+    let written = out
+        .iter()
+        .find_map(|o| match o {
+            Output::WriteLimits { limits, .. } => Some(limits.clone()),
+            _ => None,
+        })
+        .expect("the file is rewritten");
+    assert!(!written.is_provisional());
+    let reread = linewarden::limits_file::StoredLimits::parse(&written.to_toml(), "face.toml")
+        .expect("an approved file parses");
+    assert_eq!(
+        reread.approved.as_ref().map(|a| a.by.as_str()),
+        Some("R. Okafor")
+    );
+    assert!(matches!(
+        e.approve("face", "Someone Else", None, at),
+        Err(ApproveError::Already { .. })
+    ));
+    for o in &out {
+        if let Output::Record(r) = o {
+            log.append(r.clone());
+        }
+    }
+    // The next firing takes the rule's own severity: a new alert, not a repeat of the
+    // provisional one.
+    let after = feed_face(&mut e, &mut log, 66, 30, 5.0);
+    let after = [after, feed_face(&mut e, &mut log, 96, 6, 5.2)].concat();
+    let r = raised(&after);
+    let beyond = r
+        .iter()
+        .find(|(id, ..)| id.contains("beyond-limits-up"))
+        .expect("beyond-limits raised again");
+    assert_eq!(
+        (beyond.1, beyond.2, beyond.3),
+        (Severity::Stop, false, None)
+    );
+
+    // A restart whose limits file still says provisional (the rewrite failed) keeps the
+    // approval the archive records, and writes the file again.
+    std::fs::write(dir.path().join("face.toml"), limits.to_toml()).unwrap();
+    let cfg = config::load(&path).unwrap();
+    let mut again = Engine::new(&cfg, T0 + 200_000);
+    assert!(matches!(
+        again.view_of("face").unwrap().limits,
+        LimitsState::Provisional { .. }
+    ));
+    let restored = again.restore(&log.tail);
+    assert!(matches!(
+        again.view_of("face").unwrap().limits,
+        LimitsState::Approved { ref by, .. } if by == "R. Okafor"
+    ));
+    assert!(
+        restored
+            .iter()
+            .any(|o| matches!(o, Output::WriteLimits { limits, .. } if limits.approved.is_some()))
+    );
+
+    // Limits from an engineer's study are not provisional: nothing to approve.
+    let studied = config_with_limits(dir.path());
+    let mut e = Engine::new(&studied, T0);
+    assert!(matches!(
+        e.approve("bore", "R. Okafor", None, T0),
+        Err(ApproveError::NotProvisional { .. })
+    ));
+}

@@ -53,6 +53,12 @@ pub enum AlertEvent {
         /// the signal, when the source names parts.
         #[serde(default, skip_serializing_if = "Vec::is_empty")]
         parts: Vec<String>,
+        /// Raised against provisional limits; `capped_from` is the rule's own severity when
+        /// the cap lowered it.
+        #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+        provisional: bool,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        capped_from: Option<crate::rules::Severity>,
     },
     /// The same cause (rule, chart and side) fired again while the alert was not cleared.
     Repeated {
@@ -250,6 +256,14 @@ pub enum Record {
         #[serde(default, skip_serializing_if = "Option::is_none")]
         file: Option<String>,
     },
+    /// An engineer approved the provisional (learned) limits in force.
+    LimitsApproved {
+        characteristic: String,
+        approval: crate::limits_file::Approval,
+        /// The limits file the approval was written to, when there is one.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        file: Option<String>,
+    },
     ConfigLoaded {
         path: String,
         sha256: String,
@@ -283,6 +297,7 @@ impl Record {
             Record::Flagged { .. } => "flagged",
             Record::Alert { .. } => "alert",
             Record::LimitsInstalled { .. } => "limits-installed",
+            Record::LimitsApproved { .. } => "limits-approved",
             Record::ConfigLoaded { .. } => "config-loaded",
             Record::DaemonStarted { .. } => "daemon-started",
             Record::DaemonStopped { .. } => "daemon-stopped",
@@ -300,6 +315,7 @@ impl Record {
             | Record::Flagged { characteristic, .. }
             | Record::Alert { characteristic, .. }
             | Record::LimitsInstalled { characteristic, .. }
+            | Record::LimitsApproved { characteristic, .. }
             | Record::EngineState { characteristic, .. } => Some(characteristic),
             Record::ReadingRejected { characteristic, .. } => characteristic.as_deref(),
             _ => None,
@@ -380,6 +396,15 @@ impl Tail {
             } => {
                 self.entry(characteristic).installed =
                     file.as_ref().map(|f| (f.clone(), new.clone()));
+            }
+            Record::LimitsApproved {
+                characteristic,
+                approval,
+                ..
+            } => {
+                if let Some((_, l)) = &mut self.entry(characteristic).installed {
+                    l.approved = Some(approval.clone());
+                }
             }
             Record::SubgroupResult {
                 characteristic,

@@ -99,6 +99,9 @@ pub struct RawLearning {
     pub subgroups: usize,
     /// The chart the learned limits are for; by default from the subgroup size.
     pub chart: Option<VariablesChart>,
+    /// The highest severity an alert on learned limits has until an engineer approves them.
+    #[serde(default = "default_provisional_severity")]
+    pub provisional_severity: crate::rules::Severity,
 }
 
 impl Default for RawLearning {
@@ -106,8 +109,13 @@ impl Default for RawLearning {
         RawLearning {
             subgroups: default_baseline(),
             chart: None,
+            provisional_severity: default_provisional_severity(),
         }
     }
+}
+
+fn default_provisional_severity() -> crate::rules::Severity {
+    crate::rules::Severity::Warn
 }
 
 fn default_baseline() -> usize {
@@ -256,6 +264,8 @@ pub struct Characteristic {
     pub limits_path: Option<PathBuf>,
     pub limits: Option<StoredLimits>,
     pub baseline_subgroups: usize,
+    /// The cap on alert severity while the limits are provisional.
+    pub provisional_severity: crate::rules::Severity,
     pub reaction_plan: Option<String>,
     /// Decimals for the figures people read, when the config sets them.
     pub decimals: Option<usize>,
@@ -1431,6 +1441,7 @@ fn build_characteristic(
         limits_path,
         limits,
         baseline_subgroups: c.learning.subgroups,
+        provisional_severity: c.learning.provisional_severity,
         reaction_plan: c.reaction_plan.clone(),
         decimals: c.decimals,
     })

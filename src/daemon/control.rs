@@ -1,4 +1,4 @@
-//! The local control socket: `linewarden status` and `linewarden ack` talk to the running
+//! The local control socket: `linewarden status`, `ack` and `approve` talk to the running
 //! daemon over a Unix-domain socket, one JSON line each way. Who may connect is decided by the
 //! socket's permissions and group (from `[control]`).
 
@@ -24,6 +24,13 @@ pub enum ClientRequest {
     },
     Ack {
         alert: String,
+        by: String,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        note: Option<String>,
+    },
+    /// Approve a characteristic's provisional (learned) limits.
+    Approve {
+        characteristic: String,
         by: String,
         #[serde(default, skip_serializing_if = "Option::is_none")]
         note: Option<String>,
@@ -149,6 +156,27 @@ async fn handle(req: ClientRequest, requests: &mpsc::Sender<Request>) -> serde_j
             let (tx, rx) = oneshot::channel();
             let r = Request::Ack {
                 target: alert,
+                by,
+                note,
+                via: "the control socket".into(),
+                reply: tx,
+            };
+            if requests.send(r).await.is_err() {
+                return gone();
+            }
+            match rx.await {
+                Ok(a) => serde_json::to_value(a).unwrap_or_else(|_| gone()),
+                Err(_) => gone(),
+            }
+        }
+        ClientRequest::Approve {
+            characteristic,
+            by,
+            note,
+        } => {
+            let (tx, rx) = oneshot::channel();
+            let r = Request::Approve {
+                characteristic,
                 by,
                 note,
                 via: "the control socket".into(),

@@ -59,6 +59,9 @@ pub struct StateView {
     pub characteristic: String,
     pub name: String,
     pub state: String,
+    /// Where the limits come from: `learning`, `provisional` (learned, not approved: alerts
+    /// capped), `approved`, or `stored` (from a study's file).
+    pub limits: crate::engine::LimitsState,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub last_subgroup: Option<SubgroupSummary>,
     pub active_alerts: Vec<String>,
@@ -70,6 +73,7 @@ impl StateView {
             characteristic: c.id.clone(),
             name: c.name.clone(),
             state: c.standing.name().to_string(),
+            limits: c.limits.clone(),
             last_subgroup: c.recent.last().copied(),
             active_alerts: book
                 .by_characteristic
@@ -158,6 +162,22 @@ pub enum Request {
         via: String,
         reply: oneshot::Sender<AckReply>,
     },
+    /// Approve provisional limits.
+    Approve {
+        characteristic: String,
+        by: String,
+        note: Option<String>,
+        via: String,
+        reply: oneshot::Sender<ApproveReply>,
+    },
+}
+
+/// The answer to an approval.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ApproveReply {
+    pub ok: bool,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub error: Option<String>,
 }
 
 /// The answer to an acknowledgement.
@@ -204,6 +224,11 @@ pub struct CharStatus {
     pub last_subgroup: Option<SubgroupSummary>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub limits: Option<crate::stats::Limits>,
+    /// Where the limits come from (provisional until approved).
+    #[serde(default)]
+    pub limits_state: crate::engine::LimitsState,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decimals: Option<usize>,
     pub readings: u64,
 }
 
@@ -217,6 +242,8 @@ impl CharStatus {
             baseline: c.baseline,
             last_subgroup: c.recent.last().copied(),
             limits: c.location,
+            limits_state: c.limits.clone(),
+            decimals: c.decimals,
             readings: c.readings,
         }
     }

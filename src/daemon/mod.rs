@@ -108,6 +108,8 @@ struct Effects {
     /// What the journal has said of each alert: when a repeat was last logged, and whether
     /// its condition was last said to be gone.
     journal: std::collections::HashMap<String, Journal>,
+    /// Each characteristic's decimals, as its latest checked subgroup gave them.
+    decimals: std::collections::HashMap<String, usize>,
 }
 
 /// What the journal has said of one alert.
@@ -505,6 +507,20 @@ pub async fn run(
                     };
                     let _ = reply.send(answer);
                 }
+                hub::Request::Approve { characteristic, by, note, via, reply } => {
+                    let answer = match engine.approve(&characteristic, &by, note.as_deref(), now_ms()) {
+                        Ok(out) => {
+                            tracing::info!(component = "engine", characteristic = %characteristic, "limits approved by {by} via {via}");
+                            carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
+                            hub::ApproveReply { ok: true, error: None }
+                        }
+                        Err(e) => {
+                            tracing::warn!(component = "engine", "approval of {characteristic:?} by {by:?} via {via} refused: {e}");
+                            hub::ApproveReply { ok: false, error: Some(e.to_string()) }
+                        }
+                    };
+                    let _ = reply.send(answer);
+                }
                 hub::Request::Status { brief, reply } => {
                     let st = archive_status.borrow().clone();
                     let report = hub::StatusReport {
@@ -788,7 +804,24 @@ async fn carry_out(
                     event,
                 } = &r
                 {
-                    log_alert(alert_id, characteristic, event, cfg, &mut fx.journal);
+                    let decimals =
+                        fx.decimals
+                            .get(characteristic.as_str())
+                            .copied()
+                            .or_else(|| {
+                                cfg.characteristics
+                                    .iter()
+                                    .find(|c| c.id == *characteristic)
+                                    .and_then(|c| c.decimals)
+                            });
+                    log_alert(
+                        alert_id,
+                        characteristic,
+                        event,
+                        decimals,
+                        cfg,
+                        &mut fx.journal,
+                    );
                     if !matches!(event, crate::archive::record::AlertEvent::Delivered { .. }) {
                         fx.alerts_changed = true;
                         fx.dirty.insert(characteristic.clone());
@@ -803,15 +836,22 @@ async fn carry_out(
                 subgroup,
                 fired,
                 learning,
+                provisional,
                 decimals,
             } => {
                 summary.subgroups += 1;
+                fx.decimals.insert(characteristic.clone(), decimals);
+                let on = if provisional {
+                    " on provisional limits"
+                } else {
+                    ""
+                };
                 let state = if learning {
                     "learning limits".to_string()
                 } else if fired.is_empty() {
-                    "in control".to_string()
+                    format!("in control{on}")
                 } else {
-                    format!("fired: {}", fired.join(", "))
+                    format!("fired{on}: {}", fired.join(", "))
                 };
                 let fixed = |v: f64| crate::format::fixed(v, decimals);
                 tracing::info!(
@@ -839,6 +879,7 @@ async fn carry_out(
             },
             Output::WriteLimits { path, limits } => {
                 let text = limits.to_toml();
+                let provisional = limits.is_provisional();
                 let id = limits.characteristic.clone();
                 let shown = path.display().to_string();
                 let result = tokio::task::spawn_blocking(move || {
@@ -850,7 +891,12 @@ async fn carry_out(
                 .await;
                 match result {
                     Ok(Ok(path)) => {
-                        tracing::info!(component = "engine", characteristic = %id, "wrote provisional limits to {}", path.display())
+                        let what = if provisional {
+                            "provisional limits"
+                        } else {
+                            "approved limits"
+                        };
+                        tracing::info!(component = "engine", characteristic = %id, "wrote the {what} to {}", path.display())
                     }
                     Ok(Err(e)) => {
                         tracing::error!(component = "engine", characteristic = %id, "cannot write the learned limits to {shown}: {e}; they are in the archive, and a restart installs them from there")
@@ -876,6 +922,7 @@ fn log_alert(
     id: &str,
     characteristic: &str,
     event: &crate::archive::record::AlertEvent,
+    decimals: Option<usize>,
     cfg: &Config,
     journal: &mut std::collections::HashMap<String, Journal>,
 ) {
@@ -894,6 +941,8 @@ fn log_alert(
             points,
             reaction_plan,
             parts,
+            provisional,
+            capped_from,
             ..
         } => {
             journal.insert(id.to_string(), Journal::default());
@@ -902,7 +951,10 @@ fn log_alert(
                 .rev()
                 .take(8)
                 .rev()
-                .map(|p| num(p.value))
+                .map(|p| match decimals {
+                    Some(d) => crate::format::fixed(p.value, d),
+                    None => num(p.value),
+                })
                 .collect::<Vec<_>>()
                 .join(", ");
             tracing::warn!(
@@ -910,8 +962,16 @@ fn log_alert(
                 characteristic = %characteristic,
                 rule = %rule,
                 severity = severity.name(),
-                "ALERT {} {id}: {message} (recent values: {values}).{}{}{}",
+                "ALERT {} {id}: {message} (recent values: {values}).{}{}{}{}",
                 severity.name().to_uppercase(),
+                if *provisional {
+                    format!(
+                        " On PROVISIONAL limits (learned, not yet approved){}.",
+                        capped_from.map(|f| format!("; held at {} (its rule says {})", severity.name(), f.name())).unwrap_or_default()
+                    )
+                } else {
+                    String::new()
+                },
                 parts_words(parts),
                 reaction_plan.as_ref().map(|p| format!(" Reaction plan: {}.", p.trim_end_matches('.'))).unwrap_or_default(),
                 if latch(*severity) {

@@ -18,12 +18,12 @@ use serde::{Deserialize, Serialize};
 
 use crate::archive::record::{PendingReading, Record, SubgroupSummary, Tail};
 use crate::config::{Characteristic, Config};
-use crate::format::num;
+use crate::format::{fixed, num};
 use crate::limits_file::StoredLimits;
 use crate::rules::Violation;
 use crate::rules::point::{ChartBasis, PointEvaluator, PointState};
 use crate::rules::reading::{Reading, ReadingBasis, ReadingEvaluator, ReadingState};
-use crate::stats::study::{self, StudyOptions};
+use crate::stats::study;
 use crate::stats::variables::VariablesChart;
 use crate::stats::{mean, range, sample_sd};
 use assembly::{Assembled, Assembler};
@@ -105,6 +105,8 @@ pub enum Output {
         /// The causes that fired, in words (`beyond-limits (location, up)`).
         fired: Vec<String>,
         learning: bool,
+        /// Checked against provisional (learned, unapproved) limits.
+        provisional: bool,
         /// Decimals of the characteristic's figures.
         decimals: usize,
     },
@@ -116,6 +118,33 @@ fn alert_record(e: crate::alerts::Event) -> Output {
         characteristic: e.characteristic,
         event: e.event,
     })
+}
+
+/// Why limits could not be approved.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ApproveError {
+    #[error("no characteristic is called \"{0}\"")]
+    Unknown(String),
+    #[error(
+        "\"{id}\" is still learning its limits ({have} of {need} baseline subgroups); there is nothing to approve yet"
+    )]
+    Learning {
+        id: String,
+        have: usize,
+        need: usize,
+    },
+    #[error("the limits of \"{id}\" were already approved by {by} at {at}")]
+    Already { id: String, by: String, at: String },
+    #[error(
+        "the limits of \"{id}\" are not provisional: they come from {origin} ({computed_at}); only limits the daemon learned need approval"
+    )]
+    NotProvisional {
+        id: String,
+        origin: String,
+        computed_at: String,
+    },
+    #[error("{0}")]
+    BadText(String),
 }
 
 /// Subgroups between saved engine states (and at every learning subgroup).
@@ -180,6 +209,9 @@ pub struct CharView {
     /// Learning: subgroups collected and needed.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub baseline: Option<(usize, usize)>,
+    /// Where the limits in force came from, and whether they are provisional.
+    #[serde(default)]
+    pub limits: LimitsState,
     pub standing: crate::alerts::Standing,
     /// The last subgroups, oldest first.
     pub recent: Vec<SubgroupSummary>,
@@ -192,6 +224,48 @@ pub struct CharView {
     /// Decimals of the characteristic's figures, where known (configured, or from its limits).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub decimals: Option<usize>,
+    /// The chart's basis (limits for every subgroup size), for drawing.
+    #[serde(skip)]
+    pub basis: Option<crate::rules::point::ChartBasis>,
+    /// Zone rules (points beyond 1σ or 2σ) are on: charts draw those lines.
+    #[serde(skip)]
+    pub zones: bool,
+}
+
+/// Where a characteristic's limits come from.
+#[derive(Debug, Clone, PartialEq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(tag = "state", rename_all = "kebab-case")]
+pub enum LimitsState {
+    /// No limits yet: collecting the baseline.
+    #[default]
+    Learning,
+    /// Learned by the daemon and not yet approved: alerts are at most `cap`.
+    Provisional {
+        learned_at: String,
+        cap: crate::rules::Severity,
+    },
+    /// Learned and approved by an engineer.
+    Approved { by: String, at: String },
+    /// From a limits file an engineer's study wrote.
+    Stored { source: String, computed_at: String },
+}
+
+impl LimitsState {
+    /// Plain words: "provisional (learned 2026-…, not yet approved; alerts at most warn)".
+    pub fn words(&self) -> String {
+        match self {
+            LimitsState::Learning => "none yet (learning)".into(),
+            LimitsState::Provisional { learned_at, cap } => format!(
+                "PROVISIONAL: learned {learned_at}, not yet approved; alerts at most {}",
+                cap.name()
+            ),
+            LimitsState::Approved { by, at } => format!("learned, approved by {by} at {at}"),
+            LimitsState::Stored {
+                source,
+                computed_at,
+            } => format!("from a study of {source} ({computed_at})"),
+        }
+    }
 }
 
 /// The engine of a whole cell.
@@ -426,6 +500,24 @@ impl Engine {
         out.extend(events.into_iter().map(alert_record));
     }
 
+    /// Approves the provisional limits of `characteristic`: recorded with who and when, written
+    /// to its limits file, and from then on its alerts take their rules' own severities.
+    pub fn approve(
+        &mut self,
+        characteristic: &str,
+        by: &str,
+        note: Option<&str>,
+        now_ms: i64,
+    ) -> Result<Vec<Output>, ApproveError> {
+        crate::alerts::check_ack_text(by, note)
+            .map_err(|e| ApproveError::BadText(e.to_string()))?;
+        let c = self
+            .chars
+            .get_mut(characteristic)
+            .ok_or_else(|| ApproveError::Unknown(characteristic.to_string()))?;
+        c.approve(by, note, now_ms)
+    }
+
     /// Acknowledges an alert, or every unacknowledged alert of a characteristic.
     pub fn acknowledge(
         &mut self,
@@ -467,40 +559,64 @@ impl Engine {
     }
 
     fn view_char(&self, c: &CharEngine) -> CharView {
-        {
-            {
-                let learning = matches!(c.mode, Mode::Learning { .. });
-                let alerts = self
-                    .alerts
-                    .by_characteristic
-                    .get(&c.cfg.id)
-                    .map(|l| l.as_slice())
-                    .unwrap_or(&[]);
-                CharView {
-                    id: c.cfg.id.clone(),
-                    name: c.cfg.name.clone(),
-                    unit: c.cfg.unit.clone(),
-                    learning,
-                    baseline: match &c.mode {
-                        Mode::Learning { baseline } => {
-                            Some((baseline.len(), c.cfg.baseline_subgroups))
-                        }
-                        Mode::Monitoring { .. } => None,
-                    },
-                    standing: crate::alerts::standing(alerts.iter(), learning),
-                    recent: c.recent.iter().copied().collect(),
-                    location: match &c.mode {
-                        Mode::Monitoring { points, .. } => Some(points.basis().location),
-                        Mode::Learning { .. } => None,
-                    },
-                    spec: c.cfg.spec,
-                    readings: c.readings,
-                    decimals: match &c.mode {
-                        Mode::Monitoring { points, .. } => Some(points.basis().decimals()),
-                        Mode::Learning { .. } => c.cfg.decimals,
-                    },
+        let learning = matches!(c.mode, Mode::Learning { .. });
+        let alerts = self
+            .alerts
+            .by_characteristic
+            .get(&c.cfg.id)
+            .map(|l| l.as_slice())
+            .unwrap_or(&[]);
+        CharView {
+            id: c.cfg.id.clone(),
+            name: c.cfg.name.clone(),
+            unit: c.cfg.unit.clone(),
+            learning,
+            baseline: match &c.mode {
+                Mode::Learning { baseline } => Some((baseline.len(), c.cfg.baseline_subgroups)),
+                Mode::Monitoring { .. } => None,
+            },
+            limits: match &c.mode {
+                Mode::Learning { .. } => LimitsState::Learning,
+                Mode::Monitoring { limits, .. } if limits.is_provisional() => {
+                    LimitsState::Provisional {
+                        learned_at: limits.provenance.computed_at.clone(),
+                        cap: c.cfg.provisional_severity,
+                    }
                 }
-            }
+                Mode::Monitoring { limits, .. } => match &limits.approved {
+                    Some(a) => LimitsState::Approved {
+                        by: a.by.clone(),
+                        at: a.at.clone(),
+                    },
+                    None => LimitsState::Stored {
+                        source: limits.provenance.source.clone(),
+                        computed_at: limits.provenance.computed_at.clone(),
+                    },
+                },
+            },
+            standing: crate::alerts::standing(alerts.iter(), learning),
+            recent: c.recent.iter().copied().collect(),
+            location: match &c.mode {
+                Mode::Monitoring { points, .. } => Some(points.basis().location),
+                Mode::Learning { .. } => None,
+            },
+            spec: c.cfg.spec,
+            readings: c.readings,
+            decimals: match &c.mode {
+                Mode::Monitoring { points, .. } => Some(points.basis().decimals()),
+                Mode::Learning { .. } => c.cfg.decimals,
+            },
+            basis: match &c.mode {
+                Mode::Monitoring { points, .. } => Some(points.basis().clone()),
+                Mode::Learning { .. } => None,
+            },
+            zones: c.cfg.rules.rules.iter().any(|r| {
+                use crate::rules::config::RuleKind::*;
+                matches!(
+                    r.kind,
+                    Cluster { .. } | HuggingCentre { .. } | AvoidingCentre { .. }
+                )
+            }),
         }
     }
 
@@ -681,14 +797,18 @@ impl CharEngine {
         self.remember(summary);
         let learning = matches!(self.mode, Mode::Learning { .. });
         let (location, disp_limits, violations) = match &mut self.mode {
-            Mode::Monitoring { points, .. } => {
-                let v = points.evaluate(&crate::rules::point::Plotted {
+            Mode::Monitoring { points, limits } => {
+                let mut v = points.evaluate(&crate::rules::point::Plotted {
                     number: summary.number,
                     time_ms,
                     n: summary.n,
                     mean: summary.mean,
                     dispersion,
                 });
+                if limits.is_provisional() {
+                    let cap = self.cfg.provisional_severity;
+                    v = v.into_iter().map(|v| v.provisional(cap)).collect();
+                }
                 let b = points.basis();
                 (
                     Some(b.location_for(summary.n)),
@@ -728,6 +848,7 @@ impl CharEngine {
                 })
                 .collect(),
             learning,
+            provisional: matches!(&self.mode, Mode::Monitoring { limits, .. } if limits.is_provisional()),
             decimals,
         });
         out.push(Output::Record(Record::SubgroupResult {
@@ -778,8 +899,7 @@ impl CharEngine {
         if baseline.len() < self.cfg.baseline_subgroups {
             return;
         }
-        let mut opts = StudyOptions::new(self.cfg.chart);
-        opts.auto_exclude = true;
+        let opts = crate::stats::learning::POLICY.options(self.cfg.chart);
         match study::run(baseline, &opts) {
             Ok(s) => {
                 let when = humantime::format_rfc3339_seconds(
@@ -787,7 +907,7 @@ impl CharEngine {
                 )
                 .to_string();
                 let unit = (!self.cfg.unit.is_empty()).then(|| self.cfg.unit.clone());
-                let limits = StoredLimits::from_study(
+                let mut limits = StoredLimits::from_study(
                     &s,
                     &self.cfg.id,
                     unit,
@@ -795,14 +915,28 @@ impl CharEngine {
                     "learning",
                     &when,
                 );
-                let message = format!(
-                    "provisional limits learned from {} subgroups ({} excluded): centre {}, limits {} to {}; review them before relying on them",
+                limits.provenance.provisional = true;
+                let d = basis_of(&limits, &self.cfg).decimals();
+                let u = if self.cfg.unit.is_empty() {
+                    String::new()
+                } else {
+                    format!(" {}", self.cfg.unit)
+                };
+                let mut message = format!(
+                    "provisional limits learned from {} subgroups ({} excluded): centre {}{u}, limits {}{u} to {}{u}, sigma {}{u}. Until an engineer approves them (linewarden approve {} --by NAME) alerts on them are at most {}",
                     s.subgroups_total,
                     s.excluded.len(),
-                    num(limits.location.center),
-                    num(limits.location.lcl),
-                    num(limits.location.ucl)
+                    fixed(limits.location.center, d),
+                    fixed(limits.location.lcl, d),
+                    fixed(limits.location.ucl, d),
+                    fixed(limits.sigma.within, d + 1),
+                    self.cfg.id,
+                    self.cfg.provisional_severity.name(),
                 );
+                for w in &s.warnings {
+                    message.push_str("; ");
+                    message.push_str(w);
+                }
                 out.push(Output::Log {
                     level: Level::Warn,
                     characteristic: self.cfg.id.clone(),
@@ -857,6 +991,73 @@ impl CharEngine {
         }
     }
 
+    /// Approves the provisional limits in force.
+    fn approve(
+        &mut self,
+        by: &str,
+        note: Option<&str>,
+        now_ms: i64,
+    ) -> Result<Vec<Output>, ApproveError> {
+        let id = self.cfg.id.clone();
+        let limits = match &mut self.mode {
+            Mode::Learning { baseline } => {
+                return Err(ApproveError::Learning {
+                    id,
+                    have: baseline.len(),
+                    need: self.cfg.baseline_subgroups,
+                });
+            }
+            Mode::Monitoring { limits, .. } => limits,
+        };
+        if let Some(a) = &limits.approved {
+            return Err(ApproveError::Already {
+                id,
+                by: a.by.clone(),
+                at: a.at.clone(),
+            });
+        }
+        if !limits.provenance.provisional {
+            return Err(ApproveError::NotProvisional {
+                id,
+                origin: limits.provenance.source.clone(),
+                computed_at: limits.provenance.computed_at.clone(),
+            });
+        }
+        let approval = crate::limits_file::Approval {
+            by: by.to_string(),
+            at: crate::format::utc_ms(now_ms),
+            note: note.map(str::to_string),
+        };
+        limits.approved = Some(approval.clone());
+        let limits = (**limits).clone();
+        let mut out = vec![
+            Output::Record(Record::LimitsApproved {
+                characteristic: id.clone(),
+                approval,
+                file: self
+                    .cfg
+                    .limits_path
+                    .as_ref()
+                    .map(|p| p.display().to_string()),
+            }),
+            Output::Log {
+                level: Level::Info,
+                characteristic: id,
+                message: format!(
+                    "the limits learned {} were approved by {by}; alerts now take their rules' own severities",
+                    limits.provenance.computed_at
+                ),
+            },
+        ];
+        if let Some(path) = &self.cfg.limits_path {
+            out.push(Output::WriteLimits {
+                path: path.clone(),
+                limits: Box::new(limits),
+            });
+        }
+        Ok(out)
+    }
+
     /// Starts monitoring with learned `limits`, asking for them to be written to the limits
     /// file (at learning, and again after a restart that found the file missing).
     fn install_learned(&mut self, limits: StoredLimits, out: &mut Vec<Output>) {
@@ -896,6 +1097,40 @@ impl CharEngine {
                 ),
             });
             self.install_learned(limits, &mut out);
+        }
+        // Approved before the restart, but the file (still provisional) could not be rewritten:
+        // the approval in the archive holds for the same limits.
+        if let (Mode::Monitoring { limits, .. }, Some((file, l))) = (&mut self.mode, &t.installed)
+            && limits.is_provisional()
+            && l.approved.is_some()
+            && self
+                .cfg
+                .limits_path
+                .as_ref()
+                .is_some_and(|p| p.display().to_string() == *file)
+            && (StoredLimits {
+                approved: None,
+                ..(**l).clone()
+            }) == **limits
+        {
+            limits.approved = l.approved.clone();
+            let approved = (**limits).clone();
+            if let Some(a) = &approved.approved {
+                out.push(Output::Log {
+                    level: Level::Warn,
+                    characteristic: self.cfg.id.clone(),
+                    message: format!(
+                        "the limits file {file} does not carry the approval by {} at {} that the archive records; the approval holds, and the file is written again",
+                        a.by, a.at
+                    ),
+                });
+            }
+            if let Some(path) = &self.cfg.limits_path {
+                out.push(Output::WriteLimits {
+                    path: path.clone(),
+                    limits: Box::new(approved),
+                });
+            }
         }
         self.asm.restore(t.pending.iter().cloned());
         self.recent = t.recent.iter().rev().take(RECENT).rev().copied().collect();

@@ -113,12 +113,28 @@ pub struct Violation {
     /// The chart it was seen on.
     #[serde(default)]
     pub chart: Chart,
+    /// Seen against provisional limits (learned, not yet approved): `severity` is capped and
+    /// `capped_from` says what the rule's own severity was, when the cap lowered it.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub provisional: bool,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub capped_from: Option<Severity>,
 }
 
 impl Violation {
     /// The same violation, seen on `chart`.
     pub fn on(mut self, chart: Chart) -> Self {
         self.chart = chart;
+        self
+    }
+
+    /// The same violation, seen against provisional limits: its severity at most `cap`.
+    pub fn provisional(mut self, cap: Severity) -> Self {
+        self.provisional = true;
+        if self.severity > cap {
+            self.capped_from = Some(self.severity);
+            self.severity = cap;
+        }
         self
     }
 
@@ -140,6 +156,8 @@ impl Violation {
             limit,
             side,
             chart: Chart::Location,
+            provisional: false,
+            capped_from: None,
         }
     }
 }

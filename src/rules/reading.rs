@@ -278,6 +278,8 @@ impl ReadingEvaluator {
                     limit: max_silence_s,
                     side: None,
                     chart: super::Chart::Reading,
+                    provisional: false,
+                    capped_from: None,
                 });
             }
         }

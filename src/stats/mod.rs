@@ -8,6 +8,7 @@ pub mod capability;
 pub mod constants;
 pub mod cusum;
 pub mod ewma;
+pub mod learning;
 pub mod normality;
 pub mod study;
 pub mod variables;

@@ -7,7 +7,6 @@ use super::variables::{
     self, DispersionKind, Estimate, PointStats, VariablesChart, dispersion_limits, location_limits,
 };
 use super::{Limits, StatsError};
-use crate::format::num;
 
 /// Fewer subgroups than this left in a baseline draws a warning (common practice: 20–25).
 pub const RECOMMENDED_SUBGROUPS: usize = 20;
@@ -23,6 +22,15 @@ pub struct StudyOptions {
     pub auto_exclude: bool,
     /// Cap on automatic rounds of exclusion.
     pub max_iterations: usize,
+    /// How far from the centre, in standard errors of the plotted statistic, a subgroup must
+    /// fall to be excluded automatically (3 = at the control limits).
+    pub exclusion_sigmas: f64,
+    /// Exclude subgroups automatically for their dispersion (range, standard deviation or
+    /// moving range) as well as for their location.
+    pub exclude_on_dispersion: bool,
+    /// At most this fraction of the baseline may be excluded automatically; a study that would
+    /// exclude more stops and says the baseline was not stable.
+    pub max_excluded_fraction: f64,
 }
 
 impl StudyOptions {
@@ -33,6 +41,9 @@ impl StudyOptions {
             exclude: Vec::new(),
             auto_exclude: false,
             max_iterations: 10,
+            exclusion_sigmas: 3.0,
+            exclude_on_dispersion: true,
+            max_excluded_fraction: 1.0,
         }
     }
 }
@@ -155,11 +166,30 @@ pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, Stat
         }
         let mut out = Vec::new();
         for i in (0..total).filter(|&i| included[i]) {
-            if let Some(reason) = out_of_control(&stats[i], &est, kind)? {
+            if let Some(reason) = out_of_control(&stats[i], &est, kind, options)? {
                 out.push((i, reason));
             }
         }
         if out.is_empty() {
+            break est;
+        }
+        let left = included.iter().filter(|&&i| i).count() - out.len();
+        if left < 2 {
+            warnings.push(format!(
+                "automatic exclusion stopped: excluding {} more subgroup(s) would leave {left}; the process was probably not stable during the baseline",
+                out.len()
+            ));
+            break est;
+        }
+        let automatic = excluded.iter().filter(|e| e.iteration > 0).count();
+        let cap = (options.max_excluded_fraction * total as f64).floor() as usize;
+        if automatic + out.len() > cap {
+            let list: Vec<String> = out.iter().map(|(i, _)| (i + 1).to_string()).collect();
+            warnings.push(format!(
+                "automatic exclusion stopped: excluding subgroups {} as well would leave out more than {} of the {total} subgroups; the process was probably not stable during the baseline",
+                list.join(", "),
+                cap
+            ));
             break est;
         }
         if iteration > options.max_iterations {
@@ -226,36 +256,84 @@ fn out_of_control(
     p: &PointStats,
     est: &Estimate,
     kind: DispersionKind,
+    options: &StudyOptions,
 ) -> Result<Option<String>, StatsError> {
+    let k = options.exclusion_sigmas;
+    let at_limits = (k - 3.0).abs() < 1e-12;
     let loc = location_limits(est.grand_mean, est.sigma_within, p.n);
     let what = if kind == DispersionKind::MovingRange {
         "reading"
     } else {
         "mean"
     };
-    if let Some(r) = beyond(what, p.mean, &loc) {
+    let loc_bounds = if at_limits {
+        loc
+    } else {
+        let half = (loc.ucl - loc.center) * k / 3.0;
+        Limits {
+            center: loc.center,
+            ucl: loc.center + half,
+            lcl: loc.center - half,
+        }
+    };
+    if let Some(r) = beyond(what, p.mean, &loc_bounds, at_limits) {
         return Ok(Some(r));
+    }
+    if !options.exclude_on_dispersion {
+        return Ok(None);
     }
     if let Some(d) = p.dispersion {
         let lim = dispersion_limits(kind, est.sigma_within, p.n)?;
-        return Ok(beyond(kind.name(), d, &lim));
+        let bounds = if at_limits {
+            lim
+        } else {
+            dispersion_bounds(kind, est.sigma_within, p.n, k)?
+        };
+        return Ok(beyond(kind.name(), d, &bounds, at_limits));
     }
     Ok(None)
 }
 
-fn beyond(what: &str, value: f64, lim: &Limits) -> Option<String> {
+/// Centre ± `k` standard errors of the dispersion statistic (lower bound at least 0).
+fn dispersion_bounds(
+    kind: DispersionKind,
+    sigma: f64,
+    n: usize,
+    k: f64,
+) -> Result<Limits, StatsError> {
+    let (center, se) = match kind {
+        DispersionKind::Range => {
+            let f = super::constants::factors(n)?;
+            (f.d2 * sigma, f.d3 * sigma)
+        }
+        DispersionKind::MovingRange => {
+            let f = super::constants::factors(2)?;
+            (f.d2 * sigma, f.d3 * sigma)
+        }
+        DispersionKind::StdDev => {
+            let f = super::constants::factors(n)?;
+            (f.c4 * sigma, (1.0 - f.c4 * f.c4).sqrt() * sigma)
+        }
+    };
+    Ok(Limits {
+        center,
+        ucl: center + k * se,
+        lcl: (center - k * se).max(0.0),
+    })
+}
+
+fn beyond(what: &str, value: f64, lim: &Limits, at_limits: bool) -> Option<String> {
+    let (upper, lower) = if at_limits {
+        ("the upper control limit", "the lower control limit")
+    } else {
+        ("the upper exclusion bound", "the lower exclusion bound")
+    };
     if value > lim.ucl {
-        Some(format!(
-            "{what} {} above the upper control limit {}",
-            num(value),
-            num(lim.ucl)
-        ))
+        let (v, l) = crate::format::sig_pair(value, lim.ucl);
+        Some(format!("{what} {v} above {upper} {l}"))
     } else if value < lim.lcl {
-        Some(format!(
-            "{what} {} below the lower control limit {}",
-            num(value),
-            num(lim.lcl)
-        ))
+        let (v, l) = crate::format::sig_pair(value, lim.lcl);
+        Some(format!("{what} {v} below {lower} {l}"))
     } else {
         None
     }

@@ -54,6 +54,10 @@ fn escape(s: &str) -> String {
         .replace('"', "&quot;")
 }
 
+/// The size of the chart picture in an email, in pixels.
+const CHART_WIDTH: u32 = 860;
+const CHART_HEIGHT: u32 = 560;
+
 /// The email for `due` (one alert, or a digest).
 pub fn compose(
     e: &EmailOutput,
@@ -146,11 +150,13 @@ pub fn compose(
                 .copied()
                 .filter(|x| x.characteristic == c.id)
                 .collect();
-            match super::chart::png(c.as_ref(), &on_it) {
+            let drawn = crate::chart::Picture::of_view(c.as_ref(), &on_it, tz)
+                .and_then(|p| p.png(CHART_WIDTH, CHART_HEIGHT));
+            match drawn {
                 Ok(png) => {
                     let cid = format!("chart-{}@linewarden", c.id);
                     html.push_str(&format!(
-                        "<p><img src=\"cid:{cid}\" alt=\"control chart of {}\" width=\"760\" height=\"380\"></p>",
+                        "<p><img src=\"cid:{cid}\" alt=\"control charts of {}: location above, spread below; red points belong to the alerts\" width=\"{CHART_WIDTH}\" height=\"{CHART_HEIGHT}\"></p>",
                         escape(&c.id)
                     ));
                     charts.push((cid, png));

@@ -8,7 +8,6 @@
 //! * [`light`] — a stack light on Modbus TCP or RTU coils.
 //! * the log output here — a framed message on the console for each new alert.
 
-pub mod chart;
 pub mod email;
 pub mod light;
 pub mod mqtt;
@@ -135,6 +134,19 @@ pub fn plain_words(
         None => "",
     };
     s.push_str(&format!("Seen on {chart}{way}.\n"));
+    if a.provisional {
+        s.push_str(&format!(
+            "Limits: PROVISIONAL, learned by the daemon from its first subgroups and not yet approved by an engineer{}.\n",
+            match a.capped_from {
+                Some(f) => format!(
+                    "; this alert is held at {} until they are (its rule says {})",
+                    a.severity.name(),
+                    f.name()
+                ),
+                None => String::new(),
+            }
+        ));
+    }
     let local = |ms: i64| crate::format::local_ms(ms, tz);
     if a.count > 1 {
         s.push_str(&format!(
@@ -244,6 +256,8 @@ mod tests {
             limit,
             side: Some(Side::Above),
             chart,
+            provisional: false,
+            capped_from: None,
         };
         let mut b = Book::default();
         let parts = ["VB00187".to_string(), "VB00188".to_string()];

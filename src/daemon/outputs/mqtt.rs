@@ -4,8 +4,9 @@
 //!   it now stands, with `version` and `event` (raised, repeated, condition-gone,
 //!   acknowledged, cleared, escalated). A version is published once; a restart publishes
 //!   again only what the archive does not record as delivered (the broker's PUBACK).
-//! * `<prefix>/characteristics/<id>/state` — retained: in-control / warning / stopped /
-//!   learning, the last subgroup, the active alerts.
+//! * `<prefix>/characteristics/<id>/state` — retained: in-control / warning / action-needed /
+//!   learning, where the limits come from (provisional until approved), the last subgroup,
+//!   the active alerts.
 //! * `<prefix>/status` — retained: online, then stopped; "offline" as the last will.
 //! * `<prefix>/command/ack` — acknowledgements from an HMI: `{"alert": "<id or
 //!   characteristic>", "by": "<name>", "note": "..."}`; the answer goes to

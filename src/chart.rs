@@ -1,0 +1,796 @@
+//! Control-chart pictures: one drawing for every place a chart appears (the alert email now;
+//! the command line, the report and the page draw through the same [`Picture`]). A picture
+//! is built from plain data, then drawn by plotters on its bitmap backend (PNG) or its SVG
+//! backend.
+//!
+//! What a picture shows, and how it stays readable:
+//! * both charts of the characteristic, one above the other: the location chart (subgroup
+//!   means, or readings) and the spread chart (ranges, standard deviations or moving ranges);
+//! * the centre line and control limits, stepped where subgroup sizes differ; the 1σ and 2σ
+//!   lines when zone rules are on; specification limits only where single readings are
+//!   plotted (specifications apply to parts, not to means);
+//! * the points of the alerts marked, and the limits said to be provisional when they are;
+//! * the horizontal axis in the plant's local time, the line labels in a margin of their
+//!   own, moved apart so none covers another, and the value range taken from every line and
+//!   point so nothing is cut off.
+
+use plotters::coord::Shift;
+use plotters::prelude::*;
+
+use crate::format::{decimals_for, fixed};
+use crate::stats::Limits;
+
+/// The font the charts are labelled with (DejaVu Sans; its licence is beside it in assets/).
+static FONT: &[u8] = include_bytes!("../assets/fonts/DejaVuSans.ttf");
+
+fn font_ready() -> bool {
+    static READY: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *READY.get_or_init(|| {
+        plotters::style::register_font("sans-serif", FontStyle::Normal, FONT).is_ok()
+    })
+}
+
+/// One plotted point.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Point {
+    /// Subgroup (or reading) number.
+    pub number: u64,
+    pub time_ms: i64,
+    pub value: f64,
+    /// The limits this point is judged against (they step where subgroup sizes differ).
+    pub limits: Option<Limits>,
+    /// One standard error of the plotted statistic here, for the 1σ/2σ lines.
+    pub sigma: Option<f64>,
+    /// Part of a signal: marked.
+    pub marked: bool,
+}
+
+/// One chart of the picture.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Panel {
+    /// What is plotted, in words: "subgroup mean (mm)".
+    pub what: String,
+    pub points: Vec<Point>,
+    /// Draw the 1σ and 2σ lines (zone rules are on).
+    pub zones: bool,
+    /// Specification limits (only for single readings).
+    pub lsl: Option<f64>,
+    pub usl: Option<f64>,
+    pub decimals: usize,
+}
+
+/// A whole picture: a title, a note (provisional limits), and one or two panels.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Picture {
+    pub title: String,
+    /// A warning line under the title, such as provisional limits.
+    pub note: Option<String>,
+    pub panels: Vec<Panel>,
+    pub tz: jiff::tz::TimeZone,
+}
+
+/// Colours (ours; the meaning is in the labels, never in the colour alone).
+const INK: RGBColor = RGBColor(30, 30, 30);
+const DATA: RGBColor = RGBColor(30, 80, 160);
+const SIGNAL: RGBColor = RGBColor(200, 30, 30);
+const CENTRE: RGBColor = RGBColor(20, 120, 60);
+const LIMIT: RGBColor = RGBColor(180, 40, 40);
+const ZONE: RGBColor = RGBColor(150, 150, 150);
+const SPEC: RGBColor = RGBColor(120, 60, 170);
+const NOTE: RGBColor = RGBColor(170, 90, 0);
+
+/// Width of the margin on the right that holds the line labels, in pixels.
+const LABEL_MARGIN: u32 = 118;
+/// Smallest vertical distance between two line labels, in pixels.
+const LABEL_GAP: i32 = 13;
+
+impl Picture {
+    /// The picture of a characteristic's recent subgroups, with the points of `alerts` marked.
+    pub fn of_view(
+        c: &crate::engine::CharView,
+        alerts: &[&crate::alerts::Alert],
+        tz: &jiff::tz::TimeZone,
+    ) -> Result<Picture, String> {
+        use crate::alerts::Level;
+        use crate::rules::Chart;
+        use crate::stats::variables::VariablesChart;
+        if c.recent.is_empty() {
+            return Err("no subgroups to draw yet".into());
+        }
+        let marked = |chart: Chart| -> std::collections::HashSet<u64> {
+            alerts
+                .iter()
+                .filter(|a| a.level == Level::Subgroup && a.chart == chart)
+                .flat_map(|a| a.points.iter().map(|p| p.number))
+                .collect()
+        };
+        let (loc_marked, disp_marked) = (marked(Chart::Location), marked(Chart::Dispersion));
+        let basis = c.basis.as_ref();
+        let individuals = basis.map(|b| b.chart) == Some(VariablesChart::Individuals)
+            || c.recent.iter().all(|s| s.n == 1);
+        let decimals = c
+            .decimals
+            .unwrap_or_else(|| decimals_for(spread_of(c.recent.iter().map(|s| s.mean))));
+        let unit = if c.unit.is_empty() {
+            String::new()
+        } else {
+            format!(" ({})", c.unit)
+        };
+        let location = Panel {
+            what: format!(
+                "{}{unit}",
+                if individuals {
+                    "reading"
+                } else {
+                    "subgroup mean"
+                }
+            ),
+            points: c
+                .recent
+                .iter()
+                .map(|s| Point {
+                    number: s.number,
+                    time_ms: s.time_ms,
+                    value: s.mean,
+                    limits: basis.map(|b| b.location_for(s.n)),
+                    sigma: basis.map(|b| b.sigma_point(s.n)),
+                    marked: loc_marked.contains(&s.number),
+                })
+                .collect(),
+            zones: c.zones && basis.is_some(),
+            lsl: if individuals {
+                c.spec.and_then(|s| s.lsl)
+            } else {
+                None
+            },
+            usl: if individuals {
+                c.spec.and_then(|s| s.usl)
+            } else {
+                None
+            },
+            decimals,
+        };
+        let kind = basis.map_or(
+            if individuals {
+                "moving range"
+            } else {
+                "subgroup range"
+            },
+            |b| match b.chart.dispersion_kind() {
+                crate::stats::variables::DispersionKind::Range => "subgroup range",
+                crate::stats::variables::DispersionKind::StdDev => "subgroup standard deviation",
+                crate::stats::variables::DispersionKind::MovingRange => "moving range",
+            },
+        );
+        let spread = Panel {
+            what: format!("{kind}{unit}"),
+            points: c
+                .recent
+                .iter()
+                .filter_map(|s| {
+                    s.dispersion.map(|d| Point {
+                        number: s.number,
+                        time_ms: s.time_ms,
+                        value: d,
+                        limits: basis.and_then(|b| b.dispersion_for(s.n)),
+                        sigma: None,
+                        marked: disp_marked.contains(&s.number),
+                    })
+                })
+                .collect(),
+            zones: false,
+            lsl: None,
+            usl: None,
+            decimals: decimals + 1,
+        };
+        let mut panels = vec![location];
+        if !spread.points.is_empty() {
+            panels.push(spread);
+        }
+        let note = match &c.limits {
+            crate::engine::LimitsState::Provisional { .. } => Some(
+                "PROVISIONAL limits: learned by the daemon, not yet approved by an engineer"
+                    .to_string(),
+            ),
+            crate::engine::LimitsState::Learning => {
+                Some("no limits yet: the baseline is still being collected".to_string())
+            }
+            _ => None,
+        };
+        Ok(Picture {
+            title: format!("{} ({})", c.name, c.id),
+            note,
+            panels,
+            tz: tz.clone(),
+        })
+    }
+
+    /// The picture as a PNG file's bytes.
+    pub fn png(&self, width: u32, height: u32) -> Result<Vec<u8>, String> {
+        if !font_ready() {
+            return Err("the chart font did not load".into());
+        }
+        let mut rgb = vec![0u8; (width * height * 3) as usize];
+        {
+            let root = BitMapBackend::with_buffer(&mut rgb, (width, height)).into_drawing_area();
+            self.draw(&root)?;
+            root.present().map_err(|e| e.to_string())?;
+        }
+        let mut out = Vec::new();
+        {
+            let mut enc = png::Encoder::new(&mut out, width, height);
+            enc.set_color(png::ColorType::Rgb);
+            enc.set_depth(png::BitDepth::Eight);
+            let mut w = enc.write_header().map_err(|e| e.to_string())?;
+            w.write_image_data(&rgb).map_err(|e| e.to_string())?;
+        }
+        Ok(out)
+    }
+
+    /// The picture as an SVG document.
+    pub fn svg(&self, width: u32, height: u32) -> Result<String, String> {
+        if !font_ready() {
+            return Err("the chart font did not load".into());
+        }
+        let mut out = String::new();
+        {
+            let root = SVGBackend::with_string(&mut out, (width, height)).into_drawing_area();
+            self.draw(&root)?;
+            root.present().map_err(|e| e.to_string())?;
+        }
+        Ok(out)
+    }
+
+    fn draw<DB: DrawingBackend>(&self, root: &DrawingArea<DB, Shift>) -> Result<(), String>
+    where
+        DB::ErrorType: 'static,
+    {
+        let err = |e: DrawingAreaErrorKind<DB::ErrorType>| e.to_string();
+        root.fill(&WHITE).map_err(err)?;
+        let (w, h) = root.dim_in_pixel();
+        let head = if self.note.is_some() { 46 } else { 28 };
+        let (title_area, body) = root.split_vertically(head);
+        title_area
+            .draw(&Text::new(
+                self.title.clone(),
+                (10, 6),
+                ("sans-serif", 16).into_font().color(&INK),
+            ))
+            .map_err(err)?;
+        if let Some(n) = &self.note {
+            title_area
+                .draw(&Text::new(
+                    n.clone(),
+                    (10, 26),
+                    ("sans-serif", 13).into_font().color(&NOTE),
+                ))
+                .map_err(err)?;
+        }
+        let body_h = h.saturating_sub(head);
+        let areas: Vec<DrawingArea<DB, Shift>> = if self.panels.len() == 2 {
+            let (a, b) = body.split_vertically(body_h * 58 / 100);
+            vec![a, b]
+        } else {
+            vec![body]
+        };
+        let last = areas.len() - 1;
+        // One width of tick labels for every panel, so the charts line up.
+        let widest = self
+            .panels
+            .iter()
+            .flat_map(|p| {
+                p.points.iter().flat_map(move |pt| {
+                    let l = pt
+                        .limits
+                        .map_or([pt.value; 3], |l| [l.ucl, l.lcl, pt.value]);
+                    l.into_iter()
+                        .map(move |v| fixed(v, p.decimals).chars().count() + 1)
+                })
+            })
+            .max()
+            .unwrap_or(6) as u32;
+        for (i, (panel, area)) in self.panels.iter().zip(areas.iter()).enumerate() {
+            self.draw_panel(panel, area, i == last, w, widest * 8 + 26)?;
+        }
+        Ok(())
+    }
+
+    fn draw_panel<DB: DrawingBackend>(
+        &self,
+        p: &Panel,
+        area: &DrawingArea<DB, Shift>,
+        time_axis: bool,
+        width: u32,
+        y_label_width: u32,
+    ) -> Result<(), String>
+    where
+        DB::ErrorType: 'static,
+    {
+        let err = |e: DrawingAreaErrorKind<DB::ErrorType>| e.to_string();
+        if p.points.is_empty() {
+            return Ok(());
+        }
+        let d = p.decimals;
+        let first = p.points[0].number as f64;
+        let last = (p.points[p.points.len() - 1].number as f64).max(first + 1.0);
+        let (x0, x1) = (first - 0.5, last + 0.5);
+        // Every value drawn decides the range, so nothing is cut off.
+        // Each line: its label, colour, points, and whether it is dashed.
+        type Line = (String, RGBColor, Vec<(f64, f64)>, bool);
+        let mut lines: Vec<Line> = Vec::new();
+        let steps = |f: &dyn Fn(&Point) -> Option<f64>| -> Vec<(f64, f64)> {
+            let mut v = Vec::new();
+            for pt in &p.points {
+                if let Some(y) = f(pt) {
+                    let x = pt.number as f64;
+                    v.push((x - 0.5, y));
+                    v.push((x + 0.5, y));
+                }
+            }
+            v
+        };
+        if p.points.iter().any(|pt| pt.limits.is_some()) {
+            lines.push((
+                "UCL".into(),
+                LIMIT,
+                steps(&|pt| pt.limits.map(|l| l.ucl)),
+                false,
+            ));
+            lines.push((
+                "CL".into(),
+                CENTRE,
+                steps(&|pt| pt.limits.map(|l| l.center)),
+                false,
+            ));
+            lines.push((
+                "LCL".into(),
+                LIMIT,
+                steps(&|pt| pt.limits.map(|l| l.lcl)),
+                false,
+            ));
+            if p.zones {
+                for k in [2.0, 1.0, -1.0, -2.0] {
+                    let name = if k > 0.0 {
+                        format!("+{k}σ")
+                    } else {
+                        format!("−{}σ", -k)
+                    };
+                    lines.push((
+                        name,
+                        ZONE,
+                        steps(&|pt| match (pt.limits, pt.sigma) {
+                            (Some(l), Some(s)) => Some(l.center + k * s),
+                            _ => None,
+                        }),
+                        true,
+                    ));
+                }
+            }
+        }
+        if let Some(u) = p.usl {
+            lines.push(("USL".into(), SPEC, vec![(x0, u), (x1, u)], true));
+        }
+        if let Some(l) = p.lsl {
+            lines.push(("LSL".into(), SPEC, vec![(x0, l), (x1, l)], true));
+        }
+        let mut lo = f64::INFINITY;
+        let mut hi = f64::NEG_INFINITY;
+        let all = p
+            .points
+            .iter()
+            .map(|pt| pt.value)
+            .chain(lines.iter().flat_map(|l| l.2.iter().map(|v| v.1)));
+        for v in all.filter(|v| v.is_finite()) {
+            lo = lo.min(v);
+            hi = hi.max(v);
+        }
+        if !lo.is_finite() {
+            return Ok(());
+        }
+        let pad = ((hi - lo) * 0.08).max(hi.abs().max(1.0) * 1e-9);
+        let (lo, hi) = (lo - pad, hi + pad);
+        let tick = |y: &f64| fixed(*y, d);
+        let times: std::collections::BTreeMap<u64, i64> =
+            p.points.iter().map(|pt| (pt.number, pt.time_ms)).collect();
+        let tz = self.tz.clone();
+        let clock = move |x: &f64| -> String {
+            let n = x.round() as u64;
+            match times.get(&n) {
+                Some(&ms) => match jiff::Timestamp::from_millisecond(ms) {
+                    Ok(t) => t
+                        .to_zoned_datetime(tz.clone())
+                        .strftime("%H:%M")
+                        .to_string(),
+                    Err(_) => String::new(),
+                },
+                None => String::new(),
+            }
+        };
+        let span = self.day_span(p);
+        let mut chart = ChartBuilder::on(area)
+            .margin_left(8)
+            .margin_top(6)
+            .margin_right(LABEL_MARGIN)
+            .x_label_area_size(if time_axis { 44 } else { 22 })
+            .y_label_area_size(y_label_width)
+            .build_cartesian_2d(x0..x1, lo..hi)
+            .map_err(err)?;
+        let mut mesh = chart.configure_mesh();
+        mesh.disable_x_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(RGBColor(235, 235, 235))
+            .y_desc(p.what.as_str())
+            .y_labels(6)
+            .y_label_formatter(&tick)
+            .x_labels(8)
+            .label_style(("sans-serif", 12).into_font().color(&INK))
+            .axis_desc_style(("sans-serif", 12).into_font().color(&INK));
+        if time_axis {
+            mesh.x_label_formatter(&clock).x_desc(span.as_str());
+        } else {
+            mesh.x_label_formatter(&|_| String::new());
+        }
+        mesh.draw().map_err(err)?;
+        for (_, color, pts, dashed) in &lines {
+            if *dashed {
+                for pair in pts.chunks(2) {
+                    if let [a, b] = pair {
+                        dash(&mut chart, *a, *b, *color, x1 - x0)?;
+                    }
+                }
+            } else {
+                chart
+                    .draw_series(LineSeries::new(pts.iter().copied(), color.stroke_width(2)))
+                    .map_err(err)?;
+            }
+        }
+        chart
+            .draw_series(LineSeries::new(
+                p.points.iter().map(|pt| (pt.number as f64, pt.value)),
+                DATA.stroke_width(1),
+            ))
+            .map_err(err)?;
+        chart
+            .draw_series(p.points.iter().map(|pt| {
+                let at = (pt.number as f64, pt.value);
+                if pt.marked {
+                    Circle::new(at, 5, SIGNAL.filled())
+                } else {
+                    Circle::new(at, 3, DATA.filled())
+                }
+            }))
+            .map_err(err)?;
+        // Line labels in the right margin, at the height of each line's last value, moved
+        // apart so none covers another.
+        let coord = chart.as_coord_spec().clone();
+        let (ax, ay) = area.get_base_pixel();
+        let mut labels: Vec<(i32, String, RGBColor)> = lines
+            .iter()
+            .filter_map(|(name, color, pts, _)| {
+                let (_, y) = *pts.last()?;
+                let (_, py) = coord.translate(&(x1, y));
+                Some((py - ay, format!("{name} {}", fixed(y, d)), *color))
+            })
+            .collect();
+        labels.sort_by_key(|l| l.0);
+        let (_, area_h) = area.dim_in_pixel();
+        spread_apart(&mut labels, LABEL_GAP, 8, area_h as i32 - 8);
+        let lx = (width - LABEL_MARGIN + 6) as i32 - ax;
+        for (y, text, color) in labels {
+            area.draw(&Text::new(
+                text,
+                (lx, y - 6),
+                ("sans-serif", 11).into_font().color(&color),
+            ))
+            .map_err(err)?;
+        }
+        Ok(())
+    }
+
+    /// "local time, 2026-12-02 (Europe/Berlin)": the dates the panel spans, for the axis.
+    fn day_span(&self, p: &Panel) -> String {
+        let day = |ms: i64| {
+            jiff::Timestamp::from_millisecond(ms)
+                .map(|t| {
+                    t.to_zoned_datetime(self.tz.clone())
+                        .strftime("%Y-%m-%d")
+                        .to_string()
+                })
+                .unwrap_or_default()
+        };
+        let (a, b) = (
+            day(p.points[0].time_ms),
+            day(p.points[p.points.len() - 1].time_ms),
+        );
+        let zone = self.tz.iana_name().unwrap_or("local");
+        if a == b {
+            format!("local time, {a} ({zone})")
+        } else {
+            format!("local time, {a} to {b} ({zone})")
+        }
+    }
+}
+
+fn dash<DB: DrawingBackend>(
+    chart: &mut ChartContext<
+        DB,
+        Cartesian2d<plotters::coord::types::RangedCoordf64, plotters::coord::types::RangedCoordf64>,
+    >,
+    a: (f64, f64),
+    b: (f64, f64),
+    color: RGBColor,
+    width: f64,
+) -> Result<(), String>
+where
+    DB::ErrorType: 'static,
+{
+    let step = width / 90.0;
+    let mut x = a.0;
+    while x < b.0 {
+        let end = (x + step * 0.55).min(b.0);
+        let y = a.1 + (b.1 - a.1) * ((x - a.0) / (b.0 - a.0).max(f64::MIN_POSITIVE));
+        chart
+            .draw_series(LineSeries::new([(x, y), (end, y)], color.stroke_width(1)))
+            .map_err(|e| e.to_string())?;
+        x += step;
+    }
+    Ok(())
+}
+
+/// Moves sorted label heights apart to at least `gap`, keeping them within `top..=bottom`.
+fn spread_apart(labels: &mut [(i32, String, RGBColor)], gap: i32, top: i32, bottom: i32) {
+    for i in 0..labels.len() {
+        let min = if i == 0 { top } else { labels[i - 1].0 + gap };
+        labels[i].0 = labels[i].0.max(min);
+    }
+    let mut max = bottom;
+    for l in labels.iter_mut().rev() {
+        l.0 = l.0.min(max);
+        max = l.0 - gap;
+    }
+}
+
+fn spread_of(values: impl Iterator<Item = f64>) -> f64 {
+    let v: Vec<f64> = values.filter(|v| v.is_finite()).collect();
+    let lo = v.iter().copied().fold(f64::INFINITY, f64::min);
+    let hi = v.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    if hi > lo { (hi - lo) / 6.0 } else { 1.0 }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn berlin() -> jiff::tz::TimeZone {
+        jiff::tz::TimeZone::get("Europe/Berlin").expect("bundled tz data")
+    }
+
+    /// 2026-12-02T08:00:00Z, then one subgroup a minute.
+    const T0: i64 = 1_796_198_400_000;
+
+    fn panel(values: &[f64], limits: Limits, sigma: f64, zones: bool) -> Panel {
+        Panel {
+            what: "subgroup mean (mm)".into(),
+            points: values
+                .iter()
+                .enumerate()
+                .map(|(i, &v)| Point {
+                    number: i as u64 + 1,
+                    time_ms: T0 + 60_000 * i as i64,
+                    value: v,
+                    limits: Some(limits),
+                    sigma: Some(sigma),
+                    marked: v > limits.ucl,
+                })
+                .collect(),
+            zones,
+            lsl: None,
+            usl: None,
+            decimals: 4,
+        }
+    }
+
+    fn lim(center: f64, half: f64) -> Limits {
+        Limits {
+            center,
+            ucl: center + half,
+            lcl: center - half,
+        }
+    }
+
+    /// Every `<text>` element's anchor point, with its text.
+    fn texts(svg: &str) -> Vec<(f64, f64, String)> {
+        let mut out = Vec::new();
+        for part in svg.split("<text").skip(1) {
+            let attr = |name: &str| -> Option<f64> {
+                let at = part.find(&format!(" {name}=\""))? + name.len() + 3;
+                part[at..].split('"').next()?.parse().ok()
+            };
+            let body = part
+                .split_once('>')
+                .and_then(|(_, rest)| rest.split_once("</text>"))
+                .map(|(t, _)| t.trim().to_string())
+                .unwrap_or_default();
+            if let (Some(x), Some(y)) = (attr("x"), attr("y")) {
+                out.push((x, y, body));
+            }
+        }
+        out
+    }
+
+    fn picture(panels: Vec<Panel>) -> Picture {
+        Picture {
+            title: "Port depth (vb210-port)".into(),
+            note: Some("PROVISIONAL limits: learned by the daemon, not yet approved".into()),
+            panels,
+            tz: berlin(),
+        }
+    }
+
+    #[test]
+    fn nothing_is_cut_off_even_a_point_far_beyond_the_limits() {
+        let mut values = vec![21.45; 30];
+        values[17] = 21.90; // twenty standard errors out
+        let pic = picture(vec![panel(&values, lim(21.45, 0.02), 0.02 / 3.0, true)]);
+        let (w, h) = (860.0, 560.0);
+        let svg = pic.svg(w as u32, h as u32).unwrap();
+        for (x, y, t) in texts(&svg) {
+            // Glyphs are at most about 8 px wide at these sizes.
+            let right = x + 8.0 * t.chars().count() as f64;
+            assert!(
+                x >= 0.0 && y >= 0.0 && y <= h && right <= w + 1.0,
+                "text {t:?} at ({x}, {y}) reaches {right}, outside {w}×{h}"
+            );
+        }
+        // The far point is drawn inside the picture, and marked.
+        let circles: Vec<(f64, f64)> = svg
+            .split("<circle")
+            .skip(1)
+            .filter_map(|c| {
+                let g = |n: &str| -> Option<f64> {
+                    let at = c.find(&format!(" {n}=\""))? + n.len() + 3;
+                    c[at..].split('"').next()?.parse().ok()
+                };
+                Some((g("cx")?, g("cy")?))
+            })
+            .collect();
+        assert_eq!(circles.len(), 30);
+        assert!(
+            circles
+                .iter()
+                .all(|&(x, y)| (0.0..=w).contains(&x) && (0.0..=h).contains(&y))
+        );
+    }
+
+    #[test]
+    fn line_labels_do_not_cover_each_other_and_sit_beside_the_plot() {
+        // Limits and zone lines crowded within a few pixels of each other.
+        let values = vec![5.0, 5.001, 4.999, 5.0];
+        let pic = picture(vec![panel(&values, lim(5.0, 0.0003), 0.0001, true)]);
+        let svg = pic.svg(860, 560).unwrap();
+        let mut ys: Vec<f64> = texts(&svg)
+            .into_iter()
+            .filter(|(_, _, t)| {
+                ["UCL", "CL", "LCL", "+1σ", "+2σ", "−1σ", "−2σ"]
+                    .iter()
+                    .any(|k| t.starts_with(k))
+            })
+            .map(|(x, y, _)| {
+                assert!(
+                    x > 860.0 - LABEL_MARGIN as f64,
+                    "a line label inside the plot at x {x}"
+                );
+                y
+            })
+            .collect();
+        assert_eq!(ys.len(), 7, "UCL, CL, LCL and four zone lines are labelled");
+        ys.sort_by(f64::total_cmp);
+        for w in ys.windows(2) {
+            assert!(
+                w[1] - w[0] >= LABEL_GAP as f64 - 0.5,
+                "labels {ys:?} overlap"
+            );
+        }
+    }
+
+    #[test]
+    fn zone_lines_only_when_zone_rules_are_on() {
+        let values = vec![1.0, 1.1, 0.9];
+        let with = picture(vec![panel(&values, lim(1.0, 0.3), 0.1, true)]);
+        let without = picture(vec![panel(&values, lim(1.0, 0.3), 0.1, false)]);
+        assert!(with.svg(860, 560).unwrap().contains("+1σ"));
+        assert!(!without.svg(860, 560).unwrap().contains("+1σ"));
+    }
+
+    #[test]
+    fn the_time_axis_is_in_the_plants_local_time() {
+        let values = vec![1.0; 10];
+        let svg = picture(vec![panel(&values, lim(1.0, 0.3), 0.1, false)])
+            .svg(860, 560)
+            .unwrap();
+        // 08:00 UTC is 09:00 in Berlin in December.
+        assert!(
+            texts(&svg).iter().any(|(_, _, t)| t.starts_with("09:0")),
+            "no local clock time on the axis"
+        );
+        assert!(svg.contains("2026-12-02 (Europe/Berlin)"));
+        assert!(svg.contains("PROVISIONAL"));
+    }
+
+    #[test]
+    fn spec_limits_appear_only_where_single_readings_are_plotted() {
+        use crate::engine::{CharView, LimitsState};
+        use crate::rules::point::ChartBasis;
+        use crate::stats::variables::VariablesChart;
+        let recent = |n: usize| -> Vec<crate::archive::record::SubgroupSummary> {
+            (1..=12)
+                .map(|i| crate::archive::record::SubgroupSummary {
+                    number: i,
+                    time_ms: T0 + i as i64 * 60_000,
+                    n,
+                    mean: 12.0 + 0.001 * (i % 3) as f64,
+                    dispersion: Some(0.004),
+                })
+                .collect()
+        };
+        let view = |chart: VariablesChart, n: usize| {
+            let sigma = 0.002;
+            let kind = chart.dispersion_kind();
+            let basis = ChartBasis {
+                chart,
+                center: 12.001,
+                sigma,
+                nominal_n: n,
+                location: crate::stats::variables::location_limits(12.001, sigma, n),
+                dispersion: crate::stats::variables::dispersion_limits(kind, sigma, n.max(2))
+                    .unwrap(),
+                unit: "mm".into(),
+                decimals: Some(4),
+            };
+            CharView {
+                id: "bore".into(),
+                name: "Bore".into(),
+                unit: "mm".into(),
+                learning: false,
+                baseline: None,
+                limits: LimitsState::Learning,
+                standing: crate::alerts::Standing::InControl,
+                recent: recent(n),
+                location: Some(basis.location),
+                spec: Some(crate::stats::capability::Spec {
+                    lsl: Some(11.99),
+                    usl: Some(12.01),
+                    target: None,
+                }),
+                readings: 60,
+                decimals: Some(4),
+                basis: Some(basis),
+                zones: false,
+            }
+        };
+        let tz = berlin();
+        let means = Picture::of_view(&view(VariablesChart::XbarR, 5), &[], &tz).unwrap();
+        let singles = Picture::of_view(&view(VariablesChart::Individuals, 1), &[], &tz).unwrap();
+        assert_eq!(means.panels.len(), 2, "the location and the spread chart");
+        assert!(
+            means
+                .panels
+                .iter()
+                .all(|p| p.usl.is_none() && p.lsl.is_none())
+        );
+        assert_eq!(singles.panels[0].usl, Some(12.01));
+        assert_eq!(singles.panels[1].usl, None, "no spec on the moving range");
+        let svg = means.svg(860, 560).unwrap();
+        assert!(!svg.contains("USL") && svg.contains("subgroup range (mm)"));
+        assert!(singles.svg(860, 560).unwrap().contains("USL 12.0100"));
+        // The PNG is drawn too (the email's picture).
+        let png = means.png(860, 560).unwrap();
+        assert_eq!(&png[1..4], b"PNG");
+        // To look at them: LINEWARDEN_CHART_SAMPLES=/tmp cargo test --lib chart::
+        if let Ok(dir) = std::env::var("LINEWARDEN_CHART_SAMPLES") {
+            let dir = std::path::Path::new(&dir);
+            std::fs::write(dir.join("means.png"), &png).unwrap();
+            std::fs::write(dir.join("singles.png"), singles.png(860, 560).unwrap()).unwrap();
+        }
+    }
+}
