@@ -31,6 +31,9 @@ pub struct InputOptions {
     /// Readings per subgroup (single layout); 1 when not given.
     pub subgroup_size: Option<usize>,
     pub delimiter: u8,
+    /// Readings written with a decimal comma (`12,0026`), as spreadsheets in many countries
+    /// save them (then fields are usually separated by `;`).
+    pub decimal_comma: bool,
 }
 
 impl InputOptions {
@@ -42,6 +45,7 @@ impl InputOptions {
             subgroup_column: None,
             subgroup_size: None,
             delimiter: b',',
+            decimal_comma: false,
         }
     }
 }
@@ -68,9 +72,10 @@ pub enum InputError {
         message: String,
     },
     #[error(
-        "{file}:{line}:{column}: {} is not a number{}",
+        "{file}:{line}:{column}: {} is not a number{}{}",
         show(value),
-        col_name(name)
+        col_name(name),
+        comma_hint(value)
     )]
     NotNumeric {
         file: String,
@@ -131,6 +136,22 @@ fn show(value: &str) -> String {
     }
 }
 
+/// A value such as `12,0026` is a decimal comma: say so, and how to read the file.
+fn comma_hint(value: &str) -> &'static str {
+    let v = value.trim().trim_start_matches(['-', '+']);
+    let looks = v.split_once(',').is_some_and(|(a, b)| {
+        !a.is_empty()
+            && !b.is_empty()
+            && a.bytes().all(|c| c.is_ascii_digit())
+            && b.bytes().all(|c| c.is_ascii_digit())
+    });
+    if looks {
+        "; it is written with a decimal comma, so the file looks like a semicolon-separated export with decimal commas: read it with --delimiter ';' --decimal-comma"
+    } else {
+        ""
+    }
+}
+
 fn col_name(name: &Option<String>) -> String {
     name.as_ref()
         .map(|n| format!(" (column \"{n}\")"))
@@ -173,6 +194,7 @@ pub fn parse(text: &str, file: &str, opts: &InputOptions) -> Result<Parsed, Inpu
     let cx = Context {
         file,
         header: header.as_deref(),
+        decimal_comma: opts.decimal_comma,
     };
     let parsed = match opts.layout {
         Layout::Wide => wide(&cx, &rows, opts)?,
@@ -190,6 +212,7 @@ pub fn parse(text: &str, file: &str, opts: &InputOptions) -> Result<Parsed, Inpu
 struct Context<'a> {
     file: &'a str,
     header: Option<&'a [String]>,
+    decimal_comma: bool,
 }
 
 impl Context<'_> {
@@ -220,7 +243,12 @@ impl Context<'_> {
 
     fn number(&self, row: &Row, column: usize) -> Result<f64, InputError> {
         let raw = row.fields.get(column).map(String::as_str).unwrap_or("");
-        match raw.parse::<f64>() {
+        let text = if self.decimal_comma && !raw.contains('.') {
+            std::borrow::Cow::Owned(raw.replacen(',', ".", 1))
+        } else {
+            std::borrow::Cow::Borrowed(raw)
+        };
+        match text.parse::<f64>() {
             Ok(v) if v.is_finite() => Ok(v),
             Ok(_) => Err(InputError::NotFinite {
                 file: self.file.to_string(),

@@ -112,6 +112,7 @@ pub struct SigmaRecord {
 #[serde(deny_unknown_fields)]
 pub struct DispersionRecord {
     pub kind: DispersionKind,
+    #[serde(alias = "centre")]
     pub center: f64,
     pub ucl: f64,
     pub lcl: f64,

@@ -131,7 +131,10 @@ enum ArchiveCommand {
     },
     /// Print records as CSV or JSON lines.
     Export {
+        /// The archive directory.
         dir: PathBuf,
+        /// jsonl: one record per line, every field (for programs); csv: one row per record
+        /// (for a spreadsheet).
         #[arg(long, value_enum, default_value = "jsonl")]
         format: ExportFormat,
         /// Only records about this characteristic.
@@ -154,6 +157,7 @@ enum ArchiveCommand {
     },
     /// Count segments, records by kind and by characteristic.
     Stats {
+        /// The archive directory.
         dir: PathBuf,
         #[arg(long)]
         json: bool,
@@ -237,9 +241,13 @@ struct InputArgs {
     /// Consecutive readings per subgroup (single layout).
     #[arg(long, value_name = "N")]
     subgroup_size: Option<usize>,
-    /// Field separator.
-    #[arg(long, default_value = ",")]
-    delimiter: char,
+    /// Field separator: one character, or `tab` (also `\t`), `semicolon`, `comma`.
+    #[arg(long, default_value = ",", value_name = "CHAR")]
+    delimiter: String,
+    /// Readings use a decimal comma (`12,0026`), as semicolon-separated spreadsheet exports
+    /// in many countries do.
+    #[arg(long)]
+    decimal_comma: bool,
     /// Chart to estimate sigma with. Default: individuals for single readings, X̄-R for
     /// subgroups up to 10, X̄-S above.
     #[arg(long, value_enum)]
@@ -312,6 +320,15 @@ struct CapabilityArgs {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
+    if !matches!(cli.command, Command::Run { .. }) {
+        // A command whose output goes into a pipe that closes (`| head`) ends quietly, as
+        // other Unix tools do. Not the daemon: it writes to sockets, and a peer that goes
+        // away is an error it handles, never a reason to die.
+        // SAFETY: restoring the default action of a signal; no handler runs.
+        unsafe {
+            libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+        }
+    }
     let result = match cli.command {
         Command::Limits(a) => limits(a),
         Command::Capability(a) => capability_cmd(a),
@@ -337,10 +354,82 @@ fn main() -> ExitCode {
     match result {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
-            eprintln!("error: {e:#}");
+            eprintln!("error: {}", error_words(&e));
             ExitCode::FAILURE
         }
     }
+}
+
+/// The whole chain of causes, each said once: an error whose own text already carries its
+/// cause (`cannot read … : Permission denied (os error 13)`) does not get it repeated.
+fn error_words(e: &anyhow::Error) -> String {
+    let mut out = String::new();
+    for cause in e.chain() {
+        let text = cause.to_string();
+        if out.contains(&text) {
+            continue;
+        }
+        if !out.is_empty() {
+            out.push_str(": ");
+        }
+        out.push_str(&text);
+    }
+    out
+}
+
+/// The name in `known` closest to `given` (at most a third of its letters off), for "did you
+/// mean".
+fn nearest<'a>(given: &str, known: impl Iterator<Item = &'a str>) -> Option<&'a str> {
+    fn distance(a: &str, b: &str) -> usize {
+        let b: Vec<char> = b.chars().collect();
+        let mut row: Vec<usize> = (0..=b.len()).collect();
+        for (i, ca) in a.chars().enumerate() {
+            let mut prev = row[0];
+            row[0] = i + 1;
+            for j in 0..b.len() {
+                let here = row[j + 1];
+                row[j + 1] = (prev + usize::from(ca != b[j]))
+                    .min(row[j] + 1)
+                    .min(here + 1);
+                prev = here;
+            }
+        }
+        row[b.len()]
+    }
+    known
+        .map(|k| (distance(given, k), k))
+        .filter(|(d, _)| *d <= given.chars().count().div_ceil(3))
+        .min_by_key(|(d, _)| *d)
+        .map(|(_, k)| k)
+}
+
+/// Every characteristic the archive has records of.
+fn archived_characteristics(dir: &std::path::Path) -> Result<std::collections::BTreeSet<String>> {
+    use linewarden::archive::reader::{Filter, Reader};
+    let r = Reader::open(dir)?;
+    let mut known = std::collections::BTreeSet::new();
+    for e in r.iter(&Filter::default()).flatten() {
+        if let Some(c) = e.record.characteristic()
+            && !known.contains(c)
+        {
+            known.insert(c.to_string());
+        }
+    }
+    Ok(known)
+}
+
+/// The byte a `--delimiter` value names.
+fn delimiter_byte(given: &str) -> Result<u8> {
+    Ok(match given {
+        "tab" | "\\t" | "\t" => b'\t',
+        "semicolon" => b';',
+        "comma" => b',',
+        "space" => b' ',
+        s if s.len() == 1 && s.is_ascii() => s.as_bytes()[0],
+        other => bail!(
+            "--delimiter {other:?} is not one character; use a single character such as ';', or tab, semicolon, comma, space"
+        ),
+    })
 }
 
 /// Reads the input file and runs the study both commands share.
@@ -351,17 +440,18 @@ fn load_and_study(
     let name = input.input.display().to_string();
     let text = std::fs::read_to_string(&input.input)
         .with_context(|| format!("cannot read input file {name}"))?;
-    if !input.delimiter.is_ascii() {
-        bail!(
-            "--delimiter {:?} must be a single ASCII character",
-            input.delimiter
-        );
-    }
+    let delimiter = delimiter_byte(&input.delimiter)?;
     let mut opts = InputOptions::new(input.layout);
     opts.value_columns = input.value_column.clone();
     opts.subgroup_column = Some(input.subgroup_column.clone());
     opts.subgroup_size = input.subgroup_size;
-    opts.delimiter = input.delimiter as u8;
+    opts.delimiter = delimiter;
+    opts.decimal_comma = input.decimal_comma;
+    if opts.decimal_comma && delimiter == b',' {
+        bail!(
+            "--decimal-comma with ',' between fields cannot tell a field from a decimal; such files use ';' (--delimiter ';')"
+        );
+    }
     let parsed = input::parse(&text, &name, &opts)?;
     let chart = input.chart.map(VariablesChart::from).unwrap_or_else(|| {
         match parsed.subgroups.iter().map(Vec::len).max().unwrap_or(1) {
@@ -738,6 +828,19 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
             kind,
             allow_gaps,
         } => {
+            use linewarden::archive::Record;
+            for k in &kind {
+                if !Record::KINDS.contains(&k.as_str()) {
+                    bail!(
+                        "--kind {k:?} is not a kind of record{}; the kinds are: {}",
+                        nearest(k, Record::KINDS.iter().copied())
+                            .map(|n| format!(" (did you mean {n}?)"))
+                            .unwrap_or_default(),
+                        Record::KINDS.join(", ")
+                    );
+                }
+            }
+            let wanted = characteristic.clone();
             let filter = Filter {
                 from_seq: None,
                 since_ms: since
@@ -755,14 +858,22 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
             // With --allow-gaps each problem is said on standard error and the export goes on;
             // without it the first problem ends the export with an error (exit status 1).
             let left_out = std::cell::Cell::new(0usize);
-            let records = r.iter(&filter).filter_map(|e| match e {
-                Err(err) if allow_gaps => {
-                    eprintln!("linewarden: not exported: {err}");
-                    left_out.set(left_out.get() + 1);
-                    None
-                }
-                other => Some(other),
-            });
+            let exported = std::cell::Cell::new(0usize);
+            let records = r
+                .iter(&filter)
+                .inspect(|e| {
+                    if e.is_ok() {
+                        exported.set(exported.get() + 1);
+                    }
+                })
+                .filter_map(|e| match e {
+                    Err(err) if allow_gaps => {
+                        eprintln!("linewarden: not exported: {err}");
+                        left_out.set(left_out.get() + 1);
+                        None
+                    }
+                    other => Some(other),
+                });
             let stdout = std::io::stdout();
             let mut out = std::io::BufWriter::new(stdout.lock());
             use std::io::Write;
@@ -809,6 +920,29 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
                 eprintln!(
                     "linewarden: the archive has {} problem(s); what could be read was exported (--allow-gaps)",
                     left_out.get()
+                );
+            }
+            if exported.get() == 0 {
+                // Nothing matched: say why rather than print nothing and succeed.
+                if let Some(id) = &wanted {
+                    let known = archived_characteristics(&dir)?;
+                    if !known.contains(id) {
+                        bail!(
+                            "the archive {} has no records of characteristic {id:?}{}; it has: {}",
+                            dir.display(),
+                            nearest(id, known.iter().map(String::as_str))
+                                .map(|n| format!(" (did you mean {n}?)"))
+                                .unwrap_or_default(),
+                            if known.is_empty() {
+                                "none".to_string()
+                            } else {
+                                known.iter().cloned().collect::<Vec<_>>().join(", ")
+                            }
+                        );
+                    }
+                }
+                eprintln!(
+                    "linewarden: no records match (the filters are valid; the window or the kinds hold none)"
                 );
             }
             Ok(())

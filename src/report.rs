@@ -286,7 +286,9 @@ pub fn status(r: &crate::daemon::hub::StatusReport) -> String {
             }
         );
     }
-    let _ = writeln!(s, "\ncharacteristics:");
+    if !r.characteristics.is_empty() {
+        let _ = writeln!(s, "\ncharacteristics:");
+    }
     for c in &r.characteristics {
         let fmt = |v: f64| match c.decimals {
             Some(d) => crate::format::fixed(v, d),

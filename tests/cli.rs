@@ -287,7 +287,7 @@ fn bad_input_is_named_precisely() {
                 "--exclude".into(),
                 "26".into(),
             ],
-            "subgroup 26 is not in the data (subgroups are numbered 1..=25)".into(),
+            "subgroup 26 is not in the data (subgroups are numbered 1 to 25)".into(),
         ),
         (
             vec![
@@ -518,4 +518,138 @@ fn archive_verify_export_and_stats() {
         stdout(&o)
     );
     assert!(stderr(&o).contains("problem(s) found"));
+}
+
+/// The regressions: `--kind alerts` (plural), `--kind reading` and `--characteristic vb210-bor`
+/// printed nothing and exited 0. A kind that does not exist lists the kinds; a characteristic
+/// the archive does not have says so with the nearest id; both exit non-zero. A valid filter
+/// that matches nothing says so on standard error.
+#[test]
+fn export_never_answers_a_mistake_with_silence() {
+    let dir = tempfile::tempdir().unwrap();
+    let a = dir.path().join("archive");
+    small_archive(&a);
+    let d = a.to_str().unwrap();
+    let o = run(&["archive", "export", d, "--kind", "alerts"]);
+    assert!(!o.status.success());
+    let e = stderr(&o);
+    assert!(
+        e.contains("\"alerts\" is not a kind of record (did you mean alert?)"),
+        "{e}"
+    );
+    assert!(e.contains("reading-accepted, reading-rejected"), "{e}");
+    let o = run(&["archive", "export", d, "--kind", "reading"]);
+    assert!(
+        !o.status.success() && stderr(&o).contains("the kinds are"),
+        "{}",
+        stderr(&o)
+    );
+    let o = run(&["archive", "export", d, "--characteristic", "bor"]);
+    assert!(!o.status.success());
+    let e = stderr(&o);
+    assert!(
+        e.contains(
+            "has no records of characteristic \"bor\" (did you mean bore?); it has: bore, face"
+        ),
+        "{e}"
+    );
+    let o = run(&[
+        "archive",
+        "export",
+        d,
+        "--characteristic",
+        "bore",
+        "--kind",
+        "alert",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(stdout(&o).is_empty());
+    assert!(stderr(&o).contains("no records match"), "{}", stderr(&o));
+}
+
+/// The regression: `linewarden … | head` ended with `error: Broken pipe`. A reader that goes
+/// away ends the command quietly.
+#[test]
+fn a_closed_pipe_ends_quietly() {
+    use std::io::Read;
+    let dir = tempfile::tempdir().unwrap();
+    let a = dir.path().join("archive");
+    small_archive(&a);
+    let mut child = Command::new(env!("CARGO_BIN_EXE_linewarden"))
+        .args(["archive", "export", a.to_str().unwrap(), "--format", "csv"])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut first = [0u8; 16];
+    child.stdout.take().unwrap().read_exact(&mut first).unwrap();
+    // The pipe is closed here (the reader dropped), as `head` closes it.
+    let out = child.wait_with_output().unwrap();
+    let e = String::from_utf8_lossy(&out.stderr);
+    assert!(!e.contains("Broken pipe") && !e.contains("error"), "{e}");
+}
+
+/// The regression: an unreadable config printed its cause twice (`… Permission denied (os
+/// error 13): Permission denied (os error 13)`). Every message says each cause once.
+#[test]
+fn an_error_says_its_cause_once() {
+    let dir = tempfile::tempdir().unwrap();
+    // A directory where the file should be: unreadable as a file, for root as for anyone.
+    let o = run(&["check", "--config", dir.path().to_str().unwrap()]);
+    assert!(!o.status.success());
+    let e = stderr(&o);
+    assert_eq!(e.matches("(os error").count(), 1, "{e}");
+    let o = run(&["limits", "--input", "/nonexistent/baseline.csv"]);
+    let e = stderr(&o);
+    assert_eq!(e.matches("No such file or directory").count(), 1, "{e}");
+}
+
+/// The regressions: `--delimiter '\t'` and `--delimiter tab` were refused; a semicolon file with
+/// decimal commas only said `"12,0026" is not a number`; a subgroup out of range said `1..=25`.
+#[test]
+fn friendly_input_tabs_decimal_commas_and_ranges_in_words() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let tabbed = std::fs::read_to_string(DEMO).unwrap().replace(',', "\t");
+    let tsv = write(d, "baseline.tsv", &tabbed);
+    let plain = run(&["limits", "--input", DEMO, "--json"]);
+    assert!(plain.status.success(), "{}", stderr(&plain));
+    for delim in ["tab", "\\t", "\t"] {
+        let o = run(&["limits", "--input", &tsv, "--delimiter", delim, "--json"]);
+        assert!(o.status.success(), "--delimiter {delim:?}: {}", stderr(&o));
+        assert_eq!(stdout(&o), stdout(&plain), "--delimiter {delim:?}");
+    }
+    let o = run(&["limits", "--input", &tsv, "--delimiter", "tabs"]);
+    assert!(
+        stderr(&o).contains("is not one character"),
+        "{}",
+        stderr(&o)
+    );
+    // A spreadsheet export with ';' between fields and decimal commas.
+    let semi = std::fs::read_to_string(DEMO)
+        .unwrap()
+        .replace(',', ";")
+        .replace('.', ",");
+    let semi = write(d, "baseline-de.csv", &semi);
+    let o = run(&["limits", "--input", &semi, "--delimiter", ";"]);
+    assert!(!o.status.success());
+    let e = stderr(&o);
+    assert!(
+        e.contains("decimal comma") && e.contains("--decimal-comma"),
+        "{e}"
+    );
+    let o = run(&[
+        "limits",
+        "--input",
+        &semi,
+        "--delimiter",
+        ";",
+        "--decimal-comma",
+        "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert_eq!(stdout(&o), stdout(&plain));
+    let o = run(&["limits", "--input", DEMO, "--exclude", "26"]);
+    let e = stderr(&o);
+    assert!(e.contains("subgroups are numbered 1 to 25"), "{e}");
 }

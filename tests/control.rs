@@ -225,6 +225,12 @@ mode = "0600"
     );
     let (_, out, _) = common::peers::cli(&["status", "--socket", s]);
     assert!(!out.contains("PROVISIONAL"), "{out}");
+    // `--brief` leaves the characteristics out, header and all.
+    let (ok, out, _) = common::peers::cli(&["status", "--brief", "--socket", s]);
+    assert!(
+        ok && out.contains("light:") && !out.contains("characteristics:"),
+        "{out}"
+    );
     daemon.stop();
     let r = Reader::open(&d.join("archive")).unwrap();
     let approvals: Vec<_> = r

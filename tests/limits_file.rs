@@ -108,3 +108,34 @@ fn unknown_keys_and_bad_types_are_rejected_with_position() {
         "{err}"
     );
 }
+
+/// The regression: messages say "centre line" while the file insisted on `center`. Both
+/// spellings read the same; the file is written `center`.
+#[test]
+fn centre_and_center_both_read() {
+    let l = sample();
+    let text = l.to_toml().replace("center =", "centre =");
+    assert!(text.contains("centre ="));
+    assert_eq!(StoredLimits::parse(&text, "x.toml").unwrap(), l);
+}
+
+/// An approval must say who and when; a malformed one is refused with its place.
+#[test]
+fn an_approval_names_who_and_when() {
+    let mut l = sample();
+    l.provenance.source = "learning".into();
+    l.provenance.provisional = true;
+    assert!(l.is_provisional());
+    let text = l.to_toml();
+    assert!(text.contains("PROVISIONAL") && text.contains("provisional = true"));
+    let approved =
+        format!("{text}\n[approved]\nby = \"R. Okafor\"\nat = \"2026-12-02T09:14:03Z\"\n");
+    let back = StoredLimits::parse(&approved, "x.toml").unwrap();
+    assert!(!back.is_provisional());
+    let bad = format!("{text}\n[approved]\nby = \" \"\nat = \"yesterday\"\n");
+    let e = StoredLimits::parse(&bad, "x.toml").unwrap_err().to_string();
+    assert!(
+        e.contains("approved.by") && e.contains("approved.at") && e.contains("\"yesterday\""),
+        "{e}"
+    );
+}

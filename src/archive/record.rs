@@ -287,6 +287,23 @@ pub enum Record {
 }
 
 impl Record {
+    /// Every kind of record, as the `kind` field writes it.
+    pub const KINDS: &'static [&'static str] = &[
+        "reading-accepted",
+        "reading-rejected",
+        "subgroup-result",
+        "subgroup-discarded",
+        "flagged",
+        "alert",
+        "limits-installed",
+        "limits-approved",
+        "config-loaded",
+        "daemon-started",
+        "daemon-stopped",
+        "engine-state",
+        "checkpoint",
+    ];
+
     /// The record's kind, as written in the `kind` field.
     pub fn kind(&self) -> &'static str {
         match self {

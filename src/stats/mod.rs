@@ -54,7 +54,7 @@ pub enum StatsError {
     SpecOrder { lsl: f64, usl: f64 },
     #[error("capability needs at least one specification limit (LSL or USL)")]
     NoSpec,
-    #[error("subgroup {subgroup} is not in the data (subgroups are numbered 1..={total})")]
+    #[error("subgroup {subgroup} is not in the data (subgroups are numbered 1 to {total})")]
     UnknownSubgroup { subgroup: usize, total: usize },
 }
 
@@ -62,6 +62,8 @@ pub enum StatsError {
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Limits {
+    /// Written `center`; `centre`, as the messages spell the centre line, is read too.
+    #[serde(alias = "centre")]
     pub center: f64,
     pub ucl: f64,
     pub lcl: f64,

@@ -174,9 +174,13 @@ pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, Stat
             break est;
         }
         let left = included.iter().filter(|&&i| i).count() - out.len();
-        if left < 2 {
+        let mut tentative = included.clone();
+        for (i, _) in &out {
+            tentative[*i] = false;
+        }
+        if let Err(e) = variables::estimate(chart, subgroups, &tentative) {
             warnings.push(format!(
-                "automatic exclusion stopped: excluding {} more subgroup(s) would leave {left}; the process was probably not stable during the baseline",
+                "automatic exclusion stopped: excluding {} more subgroup(s) would leave {left}, too few to estimate from ({e}); the process was probably not stable during the baseline",
                 out.len()
             ));
             break est;
