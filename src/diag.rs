@@ -88,6 +88,54 @@ impl<'a> Locator<'a> {
         best
     }
 
+    /// The byte span of the key at the end of `path` (where a person typed the name), else
+    /// as [`Locator::span`].
+    pub fn key_span(&self, path: &str) -> Range<usize> {
+        let segs = segments(path);
+        let (Some(Seg::Key(last)), parent) = (segs.last(), path.rfind('.').map(|i| &path[..i]))
+        else {
+            return self.span(path);
+        };
+        let root = self
+            .root
+            .get_or_init(|| DeTable::parse(self.text).ok().map(|t| t.into_inner()));
+        let Some(root) = root else {
+            return 0..0;
+        };
+        let mut table = Some(root);
+        let mut value: Option<&DeValue> = None;
+        for seg in parent.map(segments).unwrap_or_default() {
+            let next = match (seg, table, value) {
+                (Seg::Key(k), Some(t), _) => t.get(k),
+                (Seg::Index(i), _, Some(DeValue::Array(a))) => a.get(i),
+                _ => None,
+            };
+            let Some(next) = next else {
+                return self.span(path);
+            };
+            value = Some(next.get_ref());
+            table = match next.get_ref() {
+                DeValue::Table(t) => Some(t),
+                _ => None,
+            };
+        }
+        table
+            .and_then(|t| t.iter().find(|(k, _)| k.get_ref() == last))
+            .map(|(k, _)| k.span())
+            .unwrap_or_else(|| self.span(path))
+    }
+
+    /// A problem at the key of `path` (an unknown key: the name is the mistake).
+    pub fn key_problem(&self, path: &str, message: impl Into<String>) -> Problem {
+        let (line, column) = self.line_col(self.key_span(path).start);
+        Problem {
+            line,
+            column,
+            path: path.to_string(),
+            message: message.into(),
+        }
+    }
+
     /// 1-based line and column of a byte offset.
     pub fn line_col(&self, offset: usize) -> (usize, usize) {
         let before = &self.text[..offset.min(self.text.len())];

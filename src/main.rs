@@ -1054,11 +1054,29 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
     for ch in &c.characteristics {
         let limits = match (&ch.limits, &ch.limits_path) {
             (Some(_), Some(p)) => format!("limits from {}", p.display()),
-            (None, Some(p)) => format!(
-                "learning: limits after {} subgroups, written to {}",
-                ch.baseline_subgroups,
-                p.display()
-            ),
+            (None, Some(p)) => {
+                // A typo in the path would quietly switch the characteristic to learning: say it.
+                let dir = p.parent().filter(|d| !d.as_os_str().is_empty());
+                eprintln!(
+                    "warning: {}: characteristic \"{}\": the limits file {} does not exist, so it will learn provisional limits from its first {} subgroups and write them there{}",
+                    path.display(),
+                    ch.id,
+                    p.display(),
+                    ch.baseline_subgroups,
+                    match dir {
+                        Some(d) if !d.is_dir() => format!(
+                            " (its directory {} does not exist yet; the daemon creates it)",
+                            d.display()
+                        ),
+                        _ => String::new(),
+                    }
+                );
+                format!(
+                    "learning: limits after {} subgroups, written to {}",
+                    ch.baseline_subgroups,
+                    p.display()
+                )
+            }
             _ => format!(
                 "learning: provisional limits after {} subgroups",
                 ch.baseline_subgroups

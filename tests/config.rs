@@ -88,7 +88,7 @@ fn unknown_keys_are_rejected_with_their_position() {
     std::fs::write(&path, "[daemon]\narchive_dir = \"a\"\nflush_ms = 5\n").unwrap();
     let err = config::load(&path).unwrap_err().to_string();
     assert!(
-        err.contains("cell.toml:3:1: unknown field `flush_ms`"),
+        err.contains("cell.toml:3:1: daemon.flush_ms: unknown field `flush_ms`"),
         "{err}"
     );
 }
@@ -264,4 +264,179 @@ fn a_time_zone_and_decimals_are_checked_where_they_are_written() {
     let cfg = config::load(&path).unwrap();
     assert_eq!(cfg.tz().iana_name(), Some("America/Chicago"));
     assert_eq!(cfg.characteristics[0].decimals, Some(3));
+}
+
+/// The regressions: a limits file whose unit (`in`) or specification differs from the config's,
+/// or whose UCL is not centre + 3σ/√n (so beyond-limits and the zone rules disagree), was
+/// accepted without a word; a typo in a `limits` path quietly switched the characteristic to
+/// learning. Each contradiction is now a problem with both values; limits set apart from sigma
+/// on purpose are accepted only with `limits_policy = "as-stored"` and a reason; `check` warns
+/// about a limits file that does not exist.
+#[test]
+fn a_limits_file_that_contradicts_the_config_is_refused_with_both_values() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let widened = "format = 1\ncharacteristic = \"bore\"\nchart = \"xbar-r\"\nsubgroup_size = 4\nunit = \"in\"\n[sigma]\nwithin = 0.004\noverall = 0.004\nmethod = \"average range / d2\"\n[location]\ncenter = 12.0\nucl = 12.009\nlcl = 11.994\n[dispersion]\nkind = \"range\"\ncenter = 0.008236\nucl = 0.018792\nlcl = 0.0\n[spec]\nlsl = 11.98\nusl = 12.02\n[provenance]\ncomputed_at = \"2026-12-01T08:00:00Z\"\nsource = \"test\"\ntool = \"linewarden test\"\nsubgroups_total = 25\nsubgroups_used = 25\nused = \"1-25\"\n";
+    std::fs::write(d.join("bore.toml"), widened).unwrap();
+    let cfg = |extra: &str| {
+        format!(
+            "[daemon]\narchive_dir = \"a\"\n\n[[characteristic]]\nid = \"bore\"\nunit = \"mm\"\nlimits = \"bore.toml\"\nsubgroup = {{ size = 4 }}\nspec = {{ lsl = 11.985, usl = 12.015 }}\n{extra}"
+        )
+    };
+    let path = d.join("cell.toml");
+    std::fs::write(&path, cfg("")).unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    assert!(
+        err.contains("unit \"mm\", but the stored limits") && err.contains("are in \"in\""),
+        "{err}"
+    );
+    assert!(
+        err.contains("spec lsl 11.985, usl 12.015, target none, but the stored limits")
+            && err.contains("spec lsl 11.98, usl 12.02"),
+        "{err}"
+    );
+    assert!(
+        err.contains("location.ucl is 12.009, but its sigma gives 12.006"),
+        "{err}"
+    );
+    assert_eq!(
+        err.matches("location.ucl is").count(),
+        1,
+        "each problem once: {err}"
+    );
+    // Widened on purpose: needs a reason; with one, only the unit and spec remain.
+    std::fs::write(&path, cfg("limits_policy = \"as-stored\"\n")).unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    assert!(err.contains("needs limits_reason"), "{err}");
+    assert!(!err.contains("location.ucl is"), "{err}");
+    let fixed = widened
+        .replace("unit = \"in\"", "unit = \"mm\"")
+        .replace("lsl = 11.98\nusl = 12.02", "lsl = 11.985\nusl = 12.015");
+    std::fs::write(d.join("bore.toml"), fixed).unwrap();
+    std::fs::write(
+        &path,
+        cfg("limits_policy = \"as-stored\"\nlimits_reason = \"upper limit widened for the known tool-wear slope, QE review 2026-11\"\n"),
+    )
+    .unwrap();
+    config::load(&path).unwrap();
+    std::fs::write(&path, cfg("limits_policy = \"as-written\"\n")).unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    assert!(
+        err.contains("\"as-written\" is not a limits policy"),
+        "{err}"
+    );
+
+    // A limits path with a typo: valid (the characteristic learns), and `check` says so.
+    std::fs::write(&path, cfg("").replace("bore.toml", "bore-limts/bore.toml")).unwrap();
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_linewarden"))
+        .args(["check", "--config", path.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(o.status.success());
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        e.contains("the limits file")
+            && e.contains("bore-limts/bore.toml does not exist, so it will learn"),
+        "{e}"
+    );
+}
+
+/// The regression: `check` on a file with six mistakes reported only the first unknown key.
+/// Now every unknown key and every value of the wrong type is found (reading goes on past
+/// each), along with every problem the validation finds, each once, each at its line:column.
+#[test]
+fn check_finds_every_mistake_at_once_each_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cell.toml");
+    let text = r#"[daemon]
+archive_dir = "a"
+flush_ms = 5
+max_segment_mb = "64"
+
+[[characteristic]]
+id = "bore"
+subgroup = { sise = 5 }
+valid_min = "11"
+decimals = 12
+
+[[characteristic]]
+id = "face"
+nmae = "Face height"
+subgroup = { size = 1 }
+learning = { subgroups = 1 }
+
+[[source]]
+id = "replay"
+kind = "replay"
+file = "feed.jsonl"
+speeed = 2
+
+[alerts]
+stop = { acknowledge = "yes" }
+"#;
+    std::fs::write(&path, text).unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    let expected = [
+        "cell.toml:3:1: daemon.flush_ms: unknown field `flush_ms`",
+        "cell.toml:4:18: daemon.max_segment_mb: invalid type: string \"64\"",
+        "characteristic[0].subgroup.sise: unknown field `sise`",
+        "cell.toml:9:13: characteristic[0].valid_min: invalid type: string \"11\"",
+        "characteristic[0].decimals: 12 decimals",
+        "cell.toml:14:1: characteristic[1].nmae: unknown field `nmae`",
+        "characteristic[1].learning.subgroups",
+        "source[0].speeed: unknown field `speeed`",
+        "alerts.stop.acknowledge: invalid type: string \"yes\"",
+    ];
+    for e in expected {
+        assert!(err.contains(e), "missing {e:?} in:\n{err}");
+    }
+    for path in [
+        "daemon.flush_ms",
+        "daemon.max_segment_mb",
+        "characteristic[0].subgroup",
+        "characteristic[0].valid_min",
+        "characteristic[1].nmae",
+        "source[0].speeed",
+        "alerts.stop.acknowledge",
+    ] {
+        let lines = err
+            .lines()
+            .filter(|l| l.contains(&format!(" {path}")))
+            .count();
+        assert_eq!(lines, 1, "{path} reported {lines} times:\n{err}");
+    }
+    // And the command line says the same, with a non-zero exit status.
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_linewarden"))
+        .args(["check", "--config", path.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(!o.status.success());
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        e.contains("unknown field `speeed`") && e.contains("12 decimals"),
+        "{e}"
+    );
+}
+
+/// The regression: a relative serial `port` was resolved against the working directory, not
+/// the config file, unlike every other path in it.
+#[test]
+fn a_relative_serial_port_is_the_config_files() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cell.toml");
+    std::fs::write(
+        &path,
+        "[daemon]\narchive_dir = \"a\"\n\n[[characteristic]]\nid = \"bore\"\nsubgroup = { size = 5 }\n\n[[source]]\nid = \"caliper\"\nkind = \"serial\"\nport = \"dev/caliper\"\ncharacteristic = \"bore\"\n",
+    )
+    .unwrap();
+    let cfg = config::load(&path).unwrap();
+    let port = cfg
+        .sources
+        .iter()
+        .find_map(|s| match s {
+            config::Source::Serial(g) => Some(g.port.clone()),
+            _ => None,
+        })
+        .unwrap();
+    assert_eq!(port, dir.path().join("dev/caliper").display().to_string());
 }

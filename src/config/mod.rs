@@ -132,6 +132,10 @@ pub struct RawCharacteristic {
     /// The stored limits file (relative to the config file). Without one, the characteristic
     /// learns its limits.
     pub limits: Option<String>,
+    /// "from-sigma" (default): the stored limits must be what their sigma gives; "as-stored":
+    /// take them as written (limits widened on purpose), with `limits_reason`.
+    pub limits_policy: Option<String>,
+    pub limits_reason: Option<String>,
     /// Readings outside this range cannot be real and are rejected.
     pub valid_min: Option<f64>,
     pub valid_max: Option<f64>,
@@ -492,17 +496,130 @@ pub fn load(path: &Path) -> Result<Config, ConfigError> {
 pub fn parse(text: &str, path: &Path) -> Result<Config, Problems> {
     let file = path.display().to_string();
     let loc = Locator::new(text);
-    let raw: RawConfig = toml::from_str(text).map_err(|e| Problems {
-        file: file.clone(),
-        problems: vec![loc.from_toml_error(&e)],
-    })?;
+    let (raw, mut p, removed) = deserialize_all(text, &loc);
+    let Some(raw) = raw else {
+        return Err(Problems { file, problems: p });
+    };
     let base = path.parent().unwrap_or(Path::new("."));
-    let mut p = Vec::new();
-    let cfg = build(&raw, base, path, &loc, &mut p);
+    let mut checked = Vec::new();
+    let cfg = build(&raw, base, path, &loc, &mut checked);
+    // A key already reported as unknown or of the wrong type was left out to go on checking;
+    // what its absence causes is not a second problem.
+    // Nor is a complaint about the table it was in (a subgroup table whose only key was
+    // misspelt is "unknown field `sise`", not also "say how readings form subgroups").
+    let parent = |r: &String| r.rfind('.').map(|i| r[..i].to_string());
+    p.extend(checked.into_iter().filter(|q| {
+        !removed.iter().any(|r| {
+            q.path == *r
+                || q.path.starts_with(&format!("{r}."))
+                || (!r.ends_with(']')
+                    && parent(r).as_deref() == Some(q.path.as_str())
+                    && q.path.contains('.'))
+        })
+    }));
     if p.is_empty() {
         Ok(cfg)
     } else {
         Err(Problems { file, problems: p })
+    }
+}
+
+/// Reads the raw config, finding every unknown key and every value of the wrong type (not
+/// only the first, where deserialization stops): each one is reported at its place, left out,
+/// and reading goes on. Returns the raw config when one could be read, the problems, and the
+/// paths left out.
+fn deserialize_all(text: &str, loc: &Locator) -> (Option<RawConfig>, Vec<Problem>, Vec<String>) {
+    let mut value = match text.parse::<toml::Table>() {
+        Ok(t) => toml::Value::Table(t),
+        Err(e) => return (None, vec![loc.from_toml_error(&e)], Vec::new()),
+    };
+    let mut problems = Vec::new();
+    let mut removed = Vec::new();
+    // Every round removes one key; a file has far fewer mistakes than this.
+    for _ in 0..200 {
+        let err = match serde_path_to_error::deserialize::<_, RawConfig>(value.clone()) {
+            Ok(raw) => return (Some(raw), problems, removed),
+            Err(e) => e,
+        };
+        let mut segs: Vec<PathSeg> = err
+            .path()
+            .iter()
+            .filter_map(|s| match s {
+                serde_path_to_error::Segment::Map { key } => Some(PathSeg::Key(key.clone())),
+                serde_path_to_error::Segment::Seq { index } => Some(PathSeg::Index(*index)),
+                _ => None,
+            })
+            .collect();
+        let message = err.inner().message().trim().to_string();
+        // "unknown field `sise`, expected …": the path is the table's; the key is in the words.
+        if let Some(field) = message
+            .strip_prefix("unknown field `")
+            .and_then(|r| r.split('`').next())
+            && segs.last() != Some(&PathSeg::Key(field.to_string()))
+        {
+            segs.push(PathSeg::Key(field.to_string()));
+        }
+        let at = path_text(&segs);
+        let missing = message.starts_with("missing field");
+        if message.starts_with("unknown field") {
+            problems.push(loc.key_problem(&at, message));
+        } else {
+            problems.push(loc.problem(&at, message));
+        }
+        if missing || segs.is_empty() || !remove_at(&mut value, &segs) {
+            return (None, problems, removed);
+        }
+        removed.push(at);
+    }
+    (None, problems, removed)
+}
+
+#[derive(Debug, Clone, PartialEq)]
+enum PathSeg {
+    Key(String),
+    Index(usize),
+}
+
+fn path_text(segs: &[PathSeg]) -> String {
+    let mut s = String::new();
+    for seg in segs {
+        match seg {
+            PathSeg::Key(k) => {
+                if !s.is_empty() {
+                    s.push('.');
+                }
+                s.push_str(k);
+            }
+            PathSeg::Index(i) => s.push_str(&format!("[{i}]")),
+        }
+    }
+    s
+}
+
+/// Removes the value at `segs`; false when the path does not lead anywhere.
+fn remove_at(v: &mut toml::Value, segs: &[PathSeg]) -> bool {
+    let Some((last, parents)) = segs.split_last() else {
+        return false;
+    };
+    let mut cur = v;
+    for seg in parents {
+        cur = match (seg, cur) {
+            (PathSeg::Key(k), toml::Value::Table(t)) => match t.get_mut(k) {
+                Some(x) => x,
+                None => return false,
+            },
+            (PathSeg::Index(i), toml::Value::Array(a)) => match a.get_mut(*i) {
+                Some(x) => x,
+                None => return false,
+            },
+            _ => return false,
+        };
+    }
+    match (last, cur) {
+        (PathSeg::Key(k), toml::Value::Table(t)) => t.remove(k).is_some(),
+        // An element of the wrong type: leave an empty table in its place would change the
+        // shape; say it and stop instead.
+        _ => false,
     }
 }
 
@@ -758,7 +875,8 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
                 }
                 sources.push(Source::Serial(Box::new(SerialGauge {
                     id: s.id.clone(),
-                    port: port.clone(),
+                    // A relative device path is the config file's, like every path in it.
+                    port: resolve(port).display().to_string(),
                     baud: s.baud.unwrap_or(9600),
                     data_bits,
                     parity,
@@ -1214,6 +1332,41 @@ fn build_mqtt(
     })
 }
 
+/// Where stored limits do not follow from their own sigma (centre ± 3σ/√n, and the
+/// dispersion chart's limits from σ) by more than a hundredth of a standard error: what, the
+/// value found, the value expected.
+fn limits_against_sigma(l: &StoredLimits) -> Vec<(&'static str, f64, f64)> {
+    use crate::stats::variables::{dispersion_limits, location_limits};
+    let mut out = Vec::new();
+    let sigma = l.sigma.within;
+    let n = l.subgroup_size;
+    // Within a hundredth of a standard error agrees: rounding to the gauge's resolution or to
+    // a table's constants passes; limits moved on purpose (3.5σ is half a standard error) do
+    // not.
+    let tol = 0.01 * sigma / (n.max(1) as f64).sqrt() + 1e-8 * l.location.center.abs();
+    let loc = location_limits(l.location.center, sigma, n);
+    for (what, found, expected) in [
+        ("location.ucl", l.location.ucl, loc.ucl),
+        ("location.lcl", l.location.lcl, loc.lcl),
+    ] {
+        if (found - expected).abs() > tol {
+            out.push((what, found, expected));
+        }
+    }
+    if let Ok(d) = dispersion_limits(l.dispersion.kind, sigma, n) {
+        for (what, found, expected) in [
+            ("dispersion.center", l.dispersion.center, d.center),
+            ("dispersion.ucl", l.dispersion.ucl, d.ucl),
+            ("dispersion.lcl", l.dispersion.lcl, d.lcl),
+        ] {
+            if (found - expected).abs() > 0.01 * sigma + 1e-8 * expected.abs() {
+                out.push((what, found, expected));
+            }
+        }
+    }
+    out
+}
+
 fn build_characteristic(
     c: &RawCharacteristic,
     at: &str,
@@ -1405,6 +1558,52 @@ fn build_characteristic(
                         format!("{who}: subgroups of {n}, but the stored limits are for subgroups of {}", l.subgroup_size),
                     ));
                 }
+                if let (Some(cu), Some(lu)) = (&c.unit, &l.unit)
+                    && !cu.is_empty()
+                    && !lu.is_empty()
+                    && cu != lu
+                {
+                    p.push(loc.problem(
+                        &format!("{at}.unit"),
+                        format!(
+                            "{who}: unit \"{cu}\", but the stored limits in {} are in \"{lu}\"",
+                            lp.display()
+                        ),
+                    ));
+                }
+                // The limits of the two sides must agree; a target only where both give one.
+                if let (Some(cs), Some(ls)) = (&c.spec, &l.spec)
+                    && (cs.lsl != ls.lsl
+                        || cs.usl != ls.usl
+                        || matches!((cs.target, ls.target), (Some(a), Some(b)) if a != b))
+                {
+                    let words = |s: &Spec| {
+                        let f = |v: Option<f64>| v.map_or("none".to_string(), crate::format::num);
+                        format!("lsl {}, usl {}, target {}", f(s.lsl), f(s.usl), f(s.target))
+                    };
+                    p.push(loc.problem(
+                        &format!("{at}.spec"),
+                        format!(
+                            "{who}: spec {}, but the stored limits in {} were computed with spec {}; recompute them or make the two agree",
+                            words(cs),
+                            lp.display(),
+                            words(ls)
+                        ),
+                    ));
+                }
+                if c.limits_policy.as_deref() != Some("as-stored") {
+                    for (what, found, expected) in limits_against_sigma(&l) {
+                        p.push(loc.problem(
+                            &format!("{at}.limits"),
+                            format!(
+                                "{who}: in {}, {what} is {}, but its sigma gives {}; the beyond-limits rule and the zone rules would disagree. Recompute the limits, or, if they were set apart from sigma on purpose, say limits_policy = \"as-stored\" with limits_reason",
+                                lp.display(),
+                                crate::format::num(found),
+                                crate::format::num(expected)
+                            ),
+                        ));
+                    }
+                }
                 Some(l)
             }
             Err(e) => {
@@ -1415,6 +1614,18 @@ fn build_characteristic(
         // A named file that does not exist yet: the characteristic learns and writes it there.
         _ => None,
     };
+    match (c.limits_policy.as_deref(), c.limits_reason.as_deref()) {
+        (None | Some("from-sigma"), _) => {}
+        (Some("as-stored"), Some(r)) if !r.trim().is_empty() => {}
+        (Some("as-stored"), _) => p.push(loc.problem(
+            &format!("{at}.limits_policy"),
+            format!("{who}: limits_policy = \"as-stored\" needs limits_reason = \"...\": why the limits differ from what their sigma gives"),
+        )),
+        (Some(other), _) => p.push(loc.problem(
+            &format!("{at}.limits_policy"),
+            format!("{who}: \"{other}\" is not a limits policy; use \"from-sigma\" (the default) or \"as-stored\""),
+        )),
+    }
     let chart = limits.as_ref().map_or(chart, |l| l.chart);
     if let Some(d) = c.decimals
         && d > 10

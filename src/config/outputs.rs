@@ -401,7 +401,7 @@ pub(super) fn build_outputs(
                 for (n, g) in [("broker", o.broker.is_some()), ("smtp", o.smtp.is_some())] {
                     unused(n, g);
                 }
-                build_light(o, &at, loc, p).map(|s| OutputKind::StackLight(Box::new(s)))
+                build_light(o, &at, resolve, loc, p).map(|s| OutputKind::StackLight(Box::new(s)))
             }
             "log" => Some(OutputKind::Log),
             other => {
@@ -534,7 +534,13 @@ fn build_email(
     })
 }
 
-fn build_light(o: &RawOutput, at: &str, loc: &Locator, p: &mut Vec<Problem>) -> Option<StackLight> {
+fn build_light(
+    o: &RawOutput,
+    at: &str,
+    resolve: &impl Fn(&str) -> PathBuf,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<StackLight> {
     let link = match (o.modbus.as_deref(), &o.port) {
         (Some("rtu"), Some(port)) => {
             let parity = o.parity.clone().unwrap_or_else(|| "even".into());
@@ -552,7 +558,8 @@ fn build_light(o: &RawOutput, at: &str, loc: &Locator, p: &mut Vec<Problem>) -> 
                 ));
             }
             ModbusLink::Rtu {
-                port: port.clone(),
+                // A relative device path is the config file's, like every path in it.
+                port: resolve(port).display().to_string(),
                 baud: o.baud.unwrap_or(19200),
                 parity,
                 stop_bits,
