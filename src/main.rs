@@ -99,21 +99,50 @@ struct DaemonArgs {
     /// The control socket.
     #[arg(long, value_name = "PATH", conflicts_with = "config")]
     socket: Option<PathBuf>,
-    /// The daemon's config file (its [control] socket is used).
+    /// The daemon's config file (its [control] socket is used). Default: LINEWARDEN_CONFIG,
+    /// else /etc/linewarden/cell.toml, else the socket /run/linewarden/control.sock.
     #[arg(long, value_name = "FILE")]
     config: Option<PathBuf>,
 }
+
+/// Where the installed daemon's config and control socket are (systemd/linewarden.service).
+const INSTALLED_CONFIG: &str = "/etc/linewarden/cell.toml";
+const INSTALLED_SOCKET: &str = "/run/linewarden/control.sock";
 
 impl DaemonArgs {
     fn socket(&self) -> Result<PathBuf> {
         if let Some(s) = &self.socket {
             return Ok(s.clone());
         }
-        let path = self
+        let given = self
             .config
             .clone()
-            .or_else(|| std::env::var_os("LINEWARDEN_CONFIG").map(PathBuf::from))
-            .unwrap_or_else(|| PathBuf::from("/etc/linewarden/linewarden.toml"));
+            .or_else(|| std::env::var_os("LINEWARDEN_CONFIG").map(PathBuf::from));
+        let path = match given {
+            Some(p) => p,
+            None => {
+                // As installed: the unit's config, else (a user who may use the socket but
+                // not read the config) the socket where the unit's runtime directory puts it.
+                let installed = PathBuf::from(INSTALLED_CONFIG);
+                match linewarden::config::load(&installed) {
+                    Ok(cfg) => {
+                        if let Some(c) = cfg.control {
+                            return Ok(c.socket);
+                        }
+                        bail!("{INSTALLED_CONFIG} has no [control] socket = \"...\"")
+                    }
+                    Err(e) => {
+                        let socket = PathBuf::from(INSTALLED_SOCKET);
+                        if socket.exists() {
+                            return Ok(socket);
+                        }
+                        bail!(
+                            "no daemon to talk to: {e:#}, and there is no {INSTALLED_SOCKET}; say --config FILE or --socket PATH"
+                        )
+                    }
+                }
+            }
+        };
         let cfg = linewarden::config::load(&path)?;
         cfg.control
             .map(|c| c.socket)
@@ -401,6 +430,41 @@ fn nearest<'a>(given: &str, known: impl Iterator<Item = &'a str>) -> Option<&'a 
         .filter(|(d, _)| *d <= given.chars().count().div_ceil(3))
         .min_by_key(|(d, _)| *d)
         .map(|(_, k)| k)
+}
+
+/// Each characteristic's unit, as its readings or its limits in the archive give it, for CSV
+/// rows whose record carries none.
+fn archived_units(dir: &std::path::Path) -> Result<std::collections::HashMap<String, String>> {
+    use linewarden::archive::Record;
+    use linewarden::archive::reader::{Filter, Reader};
+    let r = Reader::open(dir)?;
+    let filter = Filter {
+        kinds: vec!["limits-installed".into(), "reading-accepted".into()],
+        ..Filter::default()
+    };
+    let mut units = std::collections::HashMap::new();
+    for e in r.iter(&filter).flatten() {
+        let (c, u) = match &e.record {
+            Record::ReadingAccepted {
+                characteristic,
+                unit: Some(u),
+                ..
+            } => (characteristic, u.clone()),
+            Record::LimitsInstalled {
+                characteristic,
+                new,
+                ..
+            } => match &new.unit {
+                Some(u) => (characteristic, u.clone()),
+                None => continue,
+            },
+            _ => continue,
+        };
+        if !u.is_empty() && !units.contains_key(c) {
+            units.insert(c.clone(), u);
+        }
+    }
+    Ok(units)
 }
 
 /// Every characteristic the archive has records of.
@@ -886,32 +950,12 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
                     out.flush()?;
                 }
                 ExportFormat::Csv => {
+                    let units = archived_units(&dir)?;
                     let mut w = csv::Writer::from_writer(out);
-                    w.write_record([
-                        "seq",
-                        "time",
-                        "kind",
-                        "characteristic",
-                        "value",
-                        "unit",
-                        "source",
-                        "part",
-                        "detail",
-                    ])?;
+                    w.write_record(CSV_COLUMNS)?;
                     for e in records {
                         let e = e?;
-                        let row = csv_row(&e);
-                        w.write_record([
-                            e.seq.to_string(),
-                            format_ms(e.time_ms),
-                            e.record.kind().to_string(),
-                            e.record.characteristic().unwrap_or("").to_string(),
-                            row.0,
-                            row.1,
-                            row.2,
-                            row.3,
-                            row.4,
-                        ])?;
+                        w.write_record(csv_row(&e, &units))?;
                     }
                     w.flush()?;
                 }
@@ -981,9 +1025,52 @@ fn archive_cmd(a: ArchiveCommand) -> Result<()> {
 }
 
 /// value, unit, source, part, detail for one CSV row.
-fn csv_row(e: &linewarden::archive::Envelope) -> (String, String, String, String, String) {
+/// The CSV export's columns, for a spreadsheet: every field its own column.
+const CSV_COLUMNS: [&str; 20] = [
+    "seq",
+    "time",
+    "kind",
+    "characteristic",
+    "value",
+    "unit",
+    "source",
+    "part",
+    "subgroup",
+    "n",
+    "spread",
+    "lcl",
+    "center",
+    "ucl",
+    "verdict",
+    "alert",
+    "event",
+    "rule",
+    "severity",
+    "detail",
+];
+
+/// One record as a CSV row (see [`CSV_COLUMNS`]); `units` gives a characteristic's unit where
+/// the record itself carries none.
+fn csv_row(
+    e: &linewarden::archive::Envelope,
+    units: &std::collections::HashMap<String, String>,
+) -> Vec<String> {
     use linewarden::archive::Record as R;
-    let s = |v: &Option<String>| v.clone().unwrap_or_default();
+    let mut row = vec![String::new(); CSV_COLUMNS.len()];
+    let col = |name: &str| CSV_COLUMNS.iter().position(|c| *c == name).unwrap_or(0);
+    let mut set = |name: &str, v: String| row[col(name)] = v;
+    set("seq", e.seq.to_string());
+    set("time", format_ms(e.time_ms));
+    set("kind", e.record.kind().to_string());
+    let ch = e.record.characteristic().unwrap_or("").to_string();
+    let unit_of = |given: &Option<String>| {
+        given
+            .clone()
+            .filter(|u| !u.is_empty())
+            .or_else(|| units.get(&ch).cloned())
+            .unwrap_or_default()
+    };
+    set("characteristic", ch.clone());
     match &e.record {
         R::ReadingAccepted {
             value,
@@ -991,60 +1078,89 @@ fn csv_row(e: &linewarden::archive::Envelope) -> (String, String, String, String
             source,
             part,
             ..
-        } => (
-            value.to_string(),
-            s(unit),
-            source.clone(),
-            s(part),
-            String::new(),
-        ),
+        } => {
+            set("value", value.to_string());
+            set("unit", unit_of(unit));
+            set("source", source.clone());
+            set("part", part.clone().unwrap_or_default());
+        }
         R::ReadingRejected {
             source,
             raw,
             reason,
             ..
-        } => (
-            String::new(),
-            String::new(),
-            source.clone(),
-            String::new(),
-            format!("{reason} (raw: {raw})"),
-        ),
+        } => {
+            set("source", source.clone());
+            set("detail", format!("{reason} (raw: {raw})"));
+        }
         R::SubgroupResult {
             subgroup,
+            location,
             violations,
+            partial,
             ..
-        } => (
-            subgroup.mean.to_string(),
-            String::new(),
-            String::new(),
-            String::new(),
-            format!(
-                "subgroup {} of {}{}",
-                subgroup.number,
-                subgroup.n,
-                if violations.is_empty() {
-                    String::new()
+        } => {
+            set("value", subgroup.mean.to_string());
+            set("unit", unit_of(&None));
+            set("subgroup", subgroup.number.to_string());
+            set("n", subgroup.n.to_string());
+            set(
+                "spread",
+                subgroup
+                    .dispersion
+                    .map(|d| d.to_string())
+                    .unwrap_or_default(),
+            );
+            if let Some(l) = location {
+                set("lcl", l.lcl.to_string());
+                set("center", l.center.to_string());
+                set("ucl", l.ucl.to_string());
+            }
+            set(
+                "verdict",
+                if location.is_none() {
+                    "learning".to_string()
+                } else if violations.is_empty() {
+                    "in control".to_string()
                 } else {
                     format!(
-                        "; {}",
+                        "signal: {}",
                         violations
                             .iter()
                             .map(|v| v.rule.as_str())
                             .collect::<Vec<_>>()
                             .join(", ")
                     )
-                }
-            ),
-        ),
-        other => (
-            String::new(),
-            String::new(),
-            String::new(),
-            String::new(),
-            serde_json::to_string(other).unwrap_or_default(),
-        ),
+                },
+            );
+            if *partial {
+                set("detail", "partial subgroup (its wait ran out)".into());
+            }
+        }
+        R::Alert {
+            alert_id, event, ..
+        } => {
+            set("alert", alert_id.clone());
+            let v = serde_json::to_value(event).unwrap_or_default();
+            let text = |k: &str| v.get(k).and_then(|x| x.as_str()).unwrap_or("").to_string();
+            set("event", text("event"));
+            set("rule", text("rule"));
+            set("severity", text("severity"));
+            let detail = match text("event").as_str() {
+                "acknowledged" => format!("by {}{}", text("by"), {
+                    let n = text("note");
+                    if n.is_empty() { n } else { format!(": {n}") }
+                }),
+                "delivered" => format!("to {} (version {})", text("output"), v["version"]),
+                _ => text("message"),
+            };
+            set("detail", detail);
+        }
+        other => {
+            set("detail", serde_json::to_string(other).unwrap_or_default());
+        }
     }
+    row
 }
 
 fn check_cmd(path: &std::path::Path) -> Result<()> {

@@ -485,7 +485,7 @@ fn archive_verify_export_and_stats() {
     let lines: Vec<&str> = text.lines().collect();
     assert_eq!(
         lines[0],
-        "seq,time,kind,characteristic,value,unit,source,part,detail"
+        "seq,time,kind,characteristic,value,unit,source,part,subgroup,n,spread,lcl,center,ucl,verdict,alert,event,rule,severity,detail"
     );
     assert_eq!(lines.len(), 1 + 5, "{text}"); // minutes 10, 12, 14, 16, 18
     assert!(
@@ -652,4 +652,139 @@ fn friendly_input_tabs_decimal_commas_and_ranges_in_words() {
     let o = run(&["limits", "--input", DEMO, "--exclude", "26"]);
     let e = stderr(&o);
     assert!(e.contains("subgroups are numbered 1 to 25"), "{e}");
+}
+
+/// The regression: the CSV export left `unit` empty when the feed carried none (the
+/// characteristic has one), gave subgroup rows only a mean, and alert rows as raw JSON. Every
+/// field is now a column a spreadsheet can sort on.
+#[test]
+fn csv_export_is_spreadsheet_ready() {
+    use linewarden::archive::Record;
+    use linewarden::archive::writer::{Writer, WriterConfig};
+    let dir = tempfile::tempdir().unwrap();
+    let a = dir.path().join("archive");
+    let (mut w, _) = Writer::open(WriterConfig::new(&a)).unwrap();
+    let t0 = 1_796_112_000_000i64;
+    let rec = |v: serde_json::Value| -> Record { serde_json::from_value(v).unwrap() };
+    let records = [
+        rec(
+            serde_json::json!({"kind": "reading-accepted", "source": "g", "characteristic": "bore",
+            "value": 12.001, "unit": "mm", "arrival_ms": t0}),
+        ),
+        rec(
+            serde_json::json!({"kind": "reading-accepted", "source": "g", "characteristic": "bore",
+            "value": 12.004, "arrival_ms": t0, "part": "VB00187"}),
+        ),
+        rec(
+            serde_json::json!({"kind": "subgroup-result", "characteristic": "bore",
+            "subgroup": {"number": 32, "time_ms": t0, "n": 5, "mean": 12.0064, "dispersion": 0.0131},
+            "readings": [1, 2], "location": {"center": 12.0012, "ucl": 12.0059, "lcl": 11.9966},
+            "violations": [{"rule": "beyond-limits", "severity": "stop", "message": "m",
+                "points": [], "statistic": 12.0064, "limit": 12.0059, "side": "above"}]}),
+        ),
+        rec(
+            serde_json::json!({"kind": "alert", "alert_id": "bore-32-beyond-limits-up",
+            "characteristic": "bore", "event": "raised", "rule": "beyond-limits",
+            "severity": "stop", "message": "subgroup mean 12.0064 mm is above the upper control limit 12.0059 mm",
+            "statistic": 12.0064, "limit": 12.0059, "at_ms": t0}),
+        ),
+        rec(
+            serde_json::json!({"kind": "alert", "alert_id": "bore-32-beyond-limits-up",
+            "characteristic": "bore", "event": "acknowledged", "by": "R. Tech",
+            "note": "insert changed", "at_ms": t0}),
+        ),
+    ];
+    for r in &records {
+        w.append(r, t0).unwrap();
+    }
+    w.flush().unwrap();
+    drop(w);
+    let o = run(&["archive", "export", a.to_str().unwrap(), "--format", "csv"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let mut r = csv::Reader::from_reader(o.stdout.as_slice());
+    let head = r.headers().unwrap().clone();
+    let rows: Vec<std::collections::HashMap<String, String>> = r
+        .records()
+        .map(|x| {
+            head.iter()
+                .zip(x.unwrap().iter())
+                .map(|(h, v)| (h.to_string(), v.to_string()))
+                .collect()
+        })
+        .collect();
+    assert_eq!(
+        rows[1]["unit"], "mm",
+        "the unit comes from the characteristic"
+    );
+    assert_eq!(rows[1]["part"], "VB00187");
+    let sg = &rows[2];
+    assert_eq!(
+        [
+            &sg["subgroup"],
+            &sg["n"],
+            &sg["value"],
+            &sg["spread"],
+            &sg["lcl"],
+            &sg["center"],
+            &sg["ucl"],
+            &sg["unit"]
+        ],
+        [
+            "32", "5", "12.0064", "0.0131", "11.9966", "12.0012", "12.0059", "mm"
+        ]
+    );
+    assert_eq!(sg["verdict"], "signal: beyond-limits");
+    let raised = &rows[3];
+    assert_eq!(
+        [
+            &raised["alert"],
+            &raised["event"],
+            &raised["rule"],
+            &raised["severity"]
+        ],
+        [
+            "bore-32-beyond-limits-up",
+            "raised",
+            "beyond-limits",
+            "stop"
+        ]
+    );
+    assert!(
+        raised["detail"].starts_with("subgroup mean 12.0064 mm"),
+        "{}",
+        raised["detail"]
+    );
+    assert_eq!(rows[4]["detail"], "by R. Tech: insert changed");
+    assert!(
+        !rows.iter().any(|r| r["detail"].starts_with('{')),
+        "no raw JSON in a cell"
+    );
+}
+
+/// The regression: `status` and `ack` looked for /etc/linewarden/linewarden.toml while the unit
+/// and the README use cell.toml, so the README's `ack vb210-bore --by "your name"` failed as
+/// written. With no options they now look where the unit puts things, and say so when nothing
+/// is there.
+#[test]
+fn status_without_options_looks_where_the_unit_puts_the_daemon() {
+    if Path::new("/etc/linewarden/cell.toml").exists()
+        || Path::new("/run/linewarden/control.sock").exists()
+    {
+        eprintln!("skipped: this machine has an installed linewarden");
+        return;
+    }
+    let o = Command::new(env!("CARGO_BIN_EXE_linewarden"))
+        .args(["status"])
+        .env_remove("LINEWARDEN_CONFIG")
+        .output()
+        .unwrap();
+    assert!(!o.status.success());
+    let e = stderr(&o);
+    assert!(
+        e.contains("/etc/linewarden/cell.toml")
+            && e.contains("/run/linewarden/control.sock")
+            && e.contains("--socket PATH"),
+        "{e}"
+    );
+    assert_eq!(e.matches("(os error").count(), 1, "{e}");
 }

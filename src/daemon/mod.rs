@@ -512,6 +512,8 @@ pub async fn run(
                         Ok(out) => {
                             tracing::info!(component = "engine", characteristic = %characteristic, "limits approved by {by} via {via}");
                             carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
+                            // The retained state says where the limits come from: refresh it now.
+                            fx.dirty.insert(characteristic.clone());
                             hub::ApproveReply { ok: true, error: None }
                         }
                         Err(e) => {
