@@ -136,60 +136,52 @@ async fn answer(stream: tokio::net::UnixStream, requests: mpsc::Sender<Request>)
 }
 
 async fn handle(req: ClientRequest, requests: &mpsc::Sender<Request>) -> serde_json::Value {
-    let gone = || serde_json::json!({"ok": false, "error": "the daemon is stopping"});
+    let via = || "the control socket".to_string();
     match req {
         ClientRequest::Status { brief } => {
-            let (tx, rx) = oneshot::channel();
-            if requests
-                .send(Request::Status { brief, reply: tx })
-                .await
-                .is_err()
-            {
-                return gone();
-            }
-            match rx.await {
-                Ok(s) => serde_json::to_value(s).unwrap_or_else(|_| gone()),
-                Err(_) => gone(),
-            }
+            engine_answer(requests, |reply| Request::Status { brief, reply }).await
         }
         ClientRequest::Ack { alert, by, note } => {
-            let (tx, rx) = oneshot::channel();
-            let r = Request::Ack {
+            engine_answer(requests, |reply| Request::Ack {
                 target: alert,
                 by,
                 note,
-                via: "the control socket".into(),
-                reply: tx,
-            };
-            if requests.send(r).await.is_err() {
-                return gone();
-            }
-            match rx.await {
-                Ok(a) => serde_json::to_value(a).unwrap_or_else(|_| gone()),
-                Err(_) => gone(),
-            }
+                via: via(),
+                reply,
+            })
+            .await
         }
         ClientRequest::Approve {
             characteristic,
             by,
             note,
         } => {
-            let (tx, rx) = oneshot::channel();
-            let r = Request::Approve {
+            engine_answer(requests, |reply| Request::Approve {
                 characteristic,
                 by,
                 note,
-                via: "the control socket".into(),
-                reply: tx,
-            };
-            if requests.send(r).await.is_err() {
-                return gone();
-            }
-            match rx.await {
-                Ok(a) => serde_json::to_value(a).unwrap_or_else(|_| gone()),
-                Err(_) => gone(),
-            }
+                via: via(),
+                reply,
+            })
+            .await
         }
+    }
+}
+
+/// Sends the engine the request `make` builds around a reply channel, and gives its answer as
+/// JSON (or that the daemon is stopping).
+async fn engine_answer<T: Serialize>(
+    requests: &mpsc::Sender<Request>,
+    make: impl FnOnce(oneshot::Sender<T>) -> Request,
+) -> serde_json::Value {
+    let gone = || serde_json::json!({"ok": false, "error": "the daemon is stopping"});
+    let (tx, rx) = oneshot::channel();
+    if requests.send(make(tx)).await.is_err() {
+        return gone();
+    }
+    match rx.await {
+        Ok(a) => serde_json::to_value(a).unwrap_or_else(|_| gone()),
+        Err(_) => gone(),
     }
 }
 

@@ -842,7 +842,9 @@ async fn carry_out(
                 decimals,
             } => {
                 summary.subgroups += 1;
-                fx.decimals.insert(characteristic.clone(), decimals);
+                if fx.decimals.get(characteristic.as_str()) != Some(&decimals) {
+                    fx.decimals.insert(characteristic.clone(), decimals);
+                }
                 let on = if provisional {
                     " on provisional limits"
                 } else {
