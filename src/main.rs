@@ -1168,25 +1168,56 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
     println!("{}: valid", path.display());
     println!("  archive      {}", c.archive_dir.display());
     for ch in &c.characteristics {
+        let missing = ch
+            .configured_limits
+            .as_ref()
+            .filter(|f| Some(*f) != ch.limits_path.as_ref());
         let limits = match (&ch.limits, &ch.limits_path) {
+            (Some(l), Some(p)) if Some(p) != ch.configured_limits.as_ref() => {
+                let state = if l.is_provisional() {
+                    "provisional".to_string()
+                } else if let Some(a) = &l.approved {
+                    format!("approved by {} at {}", a.by, a.at)
+                } else {
+                    "approved".to_string()
+                };
+                if let Some(f) = missing {
+                    eprintln!(
+                        "warning: {}: characteristic \"{}\": the limits file {} does not exist; the limits learned at {} ({state}) in {} are used",
+                        path.display(),
+                        ch.id,
+                        f.display(),
+                        l.provenance.computed_at,
+                        p.display()
+                    );
+                }
+                format!("learned limits ({state}) from {}", p.display())
+            }
             (Some(_), Some(p)) => format!("limits from {}", p.display()),
             (None, Some(p)) => {
                 // A typo in the path would quietly switch the characteristic to learning: say it.
-                let dir = p.parent().filter(|d| !d.as_os_str().is_empty());
-                eprintln!(
-                    "warning: {}: characteristic \"{}\": the limits file {} does not exist, so it will learn provisional limits from its first {} subgroups and write them there{}",
-                    path.display(),
-                    ch.id,
-                    p.display(),
-                    ch.baseline_subgroups,
-                    match dir {
-                        Some(d) if !d.is_dir() => format!(
-                            " (its directory {} does not exist yet; the daemon creates it)",
-                            d.display()
-                        ),
-                        _ => String::new(),
-                    }
-                );
+                if let Some(f) = missing.or(ch.configured_limits.as_ref()) {
+                    let dir = p.parent().filter(|d| !d.as_os_str().is_empty());
+                    eprintln!(
+                        "warning: {}: characteristic \"{}\": the limits file {} does not exist, so it will learn provisional limits from its first {} subgroups and write them to {}{}",
+                        path.display(),
+                        ch.id,
+                        f.display(),
+                        ch.baseline_subgroups,
+                        if f == p {
+                            "it".to_string()
+                        } else {
+                            p.display().to_string()
+                        },
+                        match dir {
+                            Some(d) if !d.is_dir() => format!(
+                                " (its directory {} does not exist yet; the daemon creates it)",
+                                d.display()
+                            ),
+                            _ => String::new(),
+                        }
+                    );
+                }
                 format!(
                     "learning: limits after {} subgroups, written to {}",
                     ch.baseline_subgroups,
@@ -1237,7 +1268,63 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
             ),
         }
     }
+    // What the daemon writes must be writable by the user running this (the unit runs check as
+    // the service user): the archive, and where learned limits go.
+    let mut places = vec![("the archive", c.archive_dir.clone())];
+    for ch in &c.characteristics {
+        if let (None, Some(p)) = (&ch.limits, &ch.limits_path)
+            && let Some(d) = p.parent()
+            && !places.iter().any(|(_, q)| q == d)
+        {
+            places.push(("learned limits", d.to_path_buf()));
+        }
+    }
+    for (what, dir) in places {
+        if let Err(e) = writable(&dir) {
+            eprintln!(
+                "warning: {}: {what}: {} cannot be written by this user ({e}); the daemon, running as this user, could not write there",
+                path.display(),
+                dir.display()
+            );
+        }
+    }
     Ok(())
+}
+
+/// Whether this user can create or write in `dir`: the directory itself when it exists, else
+/// the nearest existing directory above it (where the daemon would create it).
+fn writable(dir: &std::path::Path) -> std::result::Result<(), String> {
+    use std::os::unix::ffi::OsStrExt;
+    let mut at = if dir.as_os_str().is_empty() {
+        std::path::Path::new(".")
+    } else {
+        dir
+    };
+    while !at.exists() {
+        match at.parent() {
+            Some(p) if !p.as_os_str().is_empty() => at = p,
+            _ => {
+                at = std::path::Path::new(".");
+                break;
+            }
+        }
+    }
+    if !at.is_dir() {
+        return Err(format!("{} is not a directory", at.display()));
+    }
+    let c = std::ffi::CString::new(at.as_os_str().as_bytes()).map_err(|e| e.to_string())?;
+    // SAFETY: a NUL-terminated path; access(2) only reads it.
+    let r = unsafe { libc::access(c.as_ptr(), libc::W_OK | libc::X_OK) };
+    if r == 0 {
+        Ok(())
+    } else {
+        let e = std::io::Error::last_os_error();
+        Err(if at == dir {
+            e.to_string()
+        } else {
+            format!("{e} in {}, where it would be created", at.display())
+        })
+    }
 }
 
 fn status_cmd(to: &DaemonArgs, json: bool, brief: bool) -> Result<()> {

@@ -5,13 +5,29 @@ use std::path::Path;
 
 use linewarden::config;
 
+mod common;
+
 #[test]
 fn every_example_config_is_valid() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("config");
     let mut n = 0;
     for entry in std::fs::read_dir(&dir).unwrap() {
         let p = entry.unwrap().path();
-        if p.extension().and_then(|e| e.to_str()) == Some("toml") {
+        if p.file_name().and_then(|e| e.to_str()) == Some("cell.toml") {
+            // The installed starting config names the state directory: check it with that
+            // moved into a temporary one (tests/install.rs checks it installed, as root).
+            let tmp = tempfile::tempdir().unwrap();
+            std::fs::create_dir_all(tmp.path().join("inbox")).unwrap();
+            let text = std::fs::read_to_string(&p).unwrap().replace(
+                "\"/var/lib/linewarden",
+                &format!("\"{}", tmp.path().display()),
+            );
+            assert!(text.contains("learned_limits_dir"));
+            std::fs::write(tmp.path().join("cell.toml"), text).unwrap();
+            config::load(&tmp.path().join("cell.toml"))
+                .unwrap_or_else(|e| panic!("{}:\n{e}", p.display()));
+            n += 1;
+        } else if p.extension().and_then(|e| e.to_str()) == Some("toml") {
             config::load(&p).unwrap_or_else(|e| panic!("{}:\n{e}", p.display()));
             n += 1;
         }
@@ -439,4 +455,60 @@ fn a_relative_serial_port_is_the_config_files() {
         })
         .unwrap();
     assert_eq!(port, dir.path().join("dev/caliper").display().to_string());
+}
+
+/// Learned limits go to `learned_limits_dir` (named after the configured file, or the id), an
+/// engineer's existing file wins over them, and two characteristics cannot share a file there.
+#[test]
+fn learned_limits_dir_places_learned_files_and_an_engineers_file_wins() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let text = r#"
+[daemon]
+archive_dir = "archive"
+learned_limits_dir = "state/limits"
+
+[[characteristic]]
+id = "bore"
+unit = "mm"
+limits = "etc-limits/bore.toml"
+subgroup = { size = 4 }
+
+[[characteristic]]
+id = "face"
+subgroup = { size = 1 }
+"#;
+    std::fs::write(d.join("cell.toml"), text).unwrap();
+    let c = linewarden::config::load(&d.join("cell.toml")).unwrap();
+    assert_eq!(
+        c.learned_limits_dir.as_deref(),
+        Some(d.join("state/limits").as_path())
+    );
+    assert_eq!(
+        c.characteristics[0].limits_path.as_deref(),
+        Some(d.join("state/limits/bore.toml").as_path())
+    );
+    assert_eq!(
+        c.characteristics[1].limits_path.as_deref(),
+        Some(d.join("state/limits/face.toml").as_path())
+    );
+    std::fs::create_dir_all(d.join("etc-limits")).unwrap();
+    std::fs::write(d.join("etc-limits/bore.toml"), common::BORE_LIMITS).unwrap();
+    let c = linewarden::config::load(&d.join("cell.toml")).unwrap();
+    assert_eq!(
+        c.characteristics[0].limits_path.as_deref(),
+        Some(d.join("etc-limits/bore.toml").as_path())
+    );
+    assert!(c.characteristics[0].limits.is_some());
+
+    let clash = text.replace(
+        "id = \"face\"",
+        "id = \"face\"\nlimits = \"other/bore.toml\"",
+    );
+    std::fs::write(d.join("clash.toml"), clash).unwrap();
+    std::fs::remove_file(d.join("etc-limits/bore.toml")).unwrap();
+    let e = linewarden::config::load(&d.join("clash.toml"))
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("is also characteristic \"bore\"'s"), "{e}");
 }

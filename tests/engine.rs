@@ -496,3 +496,61 @@ preset = "western-electric"
         Err(ApproveError::NotProvisional { .. })
     ));
 }
+
+/// What was missing: limits read from a file at start were in no record, so a verdict could not
+/// be traced to its limits, and limits taken as stored left their reason only in the config.
+/// Now the first start records them, a restart with the same limits records nothing, a changed
+/// file is recorded with the old and the new, and an as-stored reason is in the record.
+#[test]
+fn limits_in_force_are_recorded_once_and_again_when_they_change() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = config_with_limits(dir.path());
+    let mut log = Log::new();
+    let e = Engine::new(&cfg, T0);
+    let first = e.limits_records(&log.tail);
+    assert_eq!(first.len(), 1);
+    for o in first {
+        match o {
+            Output::Record(r @ Record::LimitsInstalled { .. }) => {
+                if let Record::LimitsInstalled { old, reason, .. } = &r {
+                    assert!(old.is_none());
+                    assert!(reason.starts_with("read from the limits file"), "{reason}");
+                }
+                log.append(r);
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+    // A restart on the same file: nothing new.
+    let again = Engine::new(&config::load(&cfg.path).unwrap(), T0);
+    assert!(again.limits_records(&log.tail).is_empty());
+
+    // The engineer widens the limits on purpose and says why.
+    let widened = common::BORE_LIMITS
+        .replace("ucl = 12.006", "ucl = 12.008")
+        .replace("lcl = 11.994", "lcl = 11.992");
+    std::fs::write(dir.path().join("bore.toml"), widened).unwrap();
+    let text = std::fs::read_to_string(&cfg.path).unwrap().replace(
+        "limits = \"bore.toml\"",
+        "limits = \"bore.toml\"\nlimits_policy = \"as-stored\"\nlimits_reason = \"customer agreed wider limits, deviation D-17\"",
+    );
+    std::fs::write(&cfg.path, text).unwrap();
+    let changed = Engine::new(&config::load(&cfg.path).unwrap(), T0);
+    let out = changed.limits_records(&log.tail);
+    assert_eq!(out.len(), 1);
+    match &out[0] {
+        Output::Record(Record::LimitsInstalled {
+            old, new, reason, ..
+        }) => {
+            assert_eq!(old.as_ref().unwrap().location.ucl, 12.006);
+            assert_eq!(new.location.ucl, 12.008);
+            assert!(
+                reason.contains("replacing the limits recorded before")
+                    && reason.contains("taken as stored")
+                    && reason.contains("deviation D-17"),
+                "{reason}"
+            );
+        }
+        other => panic!("{other:?}"),
+    }
+}

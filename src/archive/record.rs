@@ -170,6 +170,10 @@ pub struct CharacteristicTail {
     /// restart uses them even when that file could not be written.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub installed: Option<(String, Box<StoredLimits>)>,
+    /// The limits the archive last recorded in force (learned, or read from a file), with
+    /// any approval since: a start or reload that finds other limits records the change.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub in_force: Option<Box<StoredLimits>>,
 }
 
 /// Everything the archive records.
@@ -411,15 +415,24 @@ impl Tail {
                 file,
                 ..
             } => {
-                self.entry(characteristic).installed =
-                    file.as_ref().map(|f| (f.clone(), new.clone()));
+                let t = self.entry(characteristic);
+                // Only limits the daemon learned are installed again from the archive; an
+                // engineer's file that was removed means "learn afresh".
+                if new.provenance.provisional || new.provenance.source == "learning" {
+                    t.installed = file.as_ref().map(|f| (f.clone(), new.clone()));
+                }
+                t.in_force = Some(new.clone());
             }
             Record::LimitsApproved {
                 characteristic,
                 approval,
                 ..
             } => {
-                if let Some((_, l)) = &mut self.entry(characteristic).installed {
+                let t = self.entry(characteristic);
+                if let Some((_, l)) = &mut t.installed {
+                    l.approved = Some(approval.clone());
+                }
+                if let Some(l) = &mut t.in_force {
                     l.approved = Some(approval.clone());
                 }
             }

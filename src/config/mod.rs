@@ -45,6 +45,10 @@ pub struct RawConfig {
 pub struct RawDaemon {
     /// The archive directory (relative paths are relative to the config file).
     pub archive_dir: String,
+    /// Where the daemon writes the limits it learns, one file per characteristic
+    /// (`<id>.toml`); relative paths are relative to the config file. When not given, learned
+    /// limits are written at the characteristic's `limits` path.
+    pub learned_limits_dir: Option<String>,
     #[serde(default = "default_flush_ms")]
     pub flush_interval_ms: u64,
     #[serde(default = "default_segment_mb")]
@@ -265,7 +269,13 @@ pub struct Characteristic {
     pub valid: Option<(f64, f64)>,
     pub spec: Option<Spec>,
     pub rules: RuleSet,
+    /// The `limits` file as configured (resolved), whether or not it exists.
+    pub configured_limits: Option<PathBuf>,
+    /// The limits file in use: the configured one when it exists, else where learned limits
+    /// are read from and written to.
     pub limits_path: Option<PathBuf>,
+    /// Why the limits are taken as stored (`limits_policy = "as-stored"`), when they are.
+    pub limits_reason: Option<String>,
     pub limits: Option<StoredLimits>,
     pub baseline_subgroups: usize,
     /// The cap on alert severity while the limits are provisional.
@@ -449,6 +459,8 @@ pub enum Source {
 pub struct Config {
     pub path: PathBuf,
     pub archive_dir: PathBuf,
+    /// Where learned limits are written (`<id>.toml`), when configured.
+    pub learned_limits_dir: Option<PathBuf>,
     pub flush_interval_ms: u64,
     pub max_segment_bytes: u64,
     pub characteristics: Vec<Characteristic>,
@@ -653,6 +665,17 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
             ),
         ));
     }
+    let learned_limits_dir = match raw.daemon.learned_limits_dir.as_deref() {
+        Some(d) if d.trim().is_empty() => {
+            p.push(loc.problem(
+                "daemon.learned_limits_dir",
+                "an empty directory name; name a directory (for an installed daemon, /var/lib/linewarden/limits) or leave the key out",
+            ));
+            None
+        }
+        Some(d) => Some(resolve(d)),
+        None => None,
+    };
     if raw.characteristic.is_empty() {
         p.push(loc.problem(
             "",
@@ -675,7 +698,29 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
         } else if !ids.insert(c.id.clone()) {
             p.push(loc.problem(&format!("{at}.id"), format!("{who} is configured twice")));
         }
-        if let Some(ch) = build_characteristic(c, &at, &who, &resolve, loc, p) {
+        if let Some(ch) = build_characteristic(
+            c,
+            &at,
+            &who,
+            &resolve,
+            learned_limits_dir.as_deref(),
+            loc,
+            p,
+        ) {
+            if let Some(lp) = &ch.limits_path
+                && let Some(other) = chars
+                    .iter()
+                    .find(|o: &&Characteristic| o.limits_path.as_ref() == Some(lp))
+            {
+                p.push(loc.problem(
+                    &format!("{at}.limits"),
+                    format!(
+                        "{who}: its limits file {} is also characteristic \"{}\"'s; give each its own file name",
+                        lp.display(),
+                        other.id
+                    ),
+                ));
+            }
             chars.push(ch);
         }
     }
@@ -923,6 +968,7 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
     Config {
         path: path.to_path_buf(),
         archive_dir: resolve(&raw.daemon.archive_dir),
+        learned_limits_dir,
         flush_interval_ms: raw.daemon.flush_interval_ms,
         max_segment_bytes: raw.daemon.max_segment_mb * 1024 * 1024,
         characteristics: chars,
@@ -1372,6 +1418,7 @@ fn build_characteristic(
     at: &str,
     who: &str,
     resolve: &impl Fn(&str) -> PathBuf,
+    learned_dir: Option<&Path>,
     loc: &Locator,
     p: &mut Vec<Problem>,
 ) -> Option<Characteristic> {
@@ -1526,7 +1573,23 @@ fn build_characteristic(
             _ => {}
         }
     }
-    let limits_path = c.limits.as_deref().map(resolve);
+    // The engineer's file when it exists; else the learned file (read when there, learned and
+    // written when not) in the learned-limits directory, or at the configured path.
+    let configured_limits = c.limits.as_deref().map(resolve);
+    let limits_path = match (&configured_limits, learned_dir) {
+        (Some(f), _) if f.exists() => Some(f.clone()),
+        // Named after the configured file, so that pointing `limits` at a new name learns
+        // afresh, as it does without the directory.
+        (f, Some(d)) => Some(
+            d.join(
+                f.as_ref()
+                    .and_then(|f| f.file_name())
+                    .map(|n| n.to_os_string())
+                    .unwrap_or_else(|| format!("{}.toml", c.id).into()),
+            ),
+        ),
+        (f, None) => f.clone(),
+    };
     let limits = match &limits_path {
         Some(lp) if lp.exists() => match StoredLimits::load(lp) {
             Ok(l) => {
@@ -1649,6 +1712,11 @@ fn build_characteristic(
         valid,
         spec: c.spec,
         rules,
+        limits_reason: match c.limits_policy.as_deref() {
+            Some("as-stored") => c.limits_reason.clone(),
+            _ => None,
+        },
+        configured_limits,
         limits_path,
         limits,
         baseline_subgroups: c.learning.subgroups,

@@ -162,7 +162,9 @@ pub async fn run(
         ])
         .await?;
     let mut fx = Effects::default();
-    carry_out(&archive, &cfg, engine.restore(&tail), &mut summary, &mut fx).await?;
+    let mut restored = engine.restore(&tail);
+    restored.extend(engine.limits_records(&tail));
+    carry_out(&archive, &cfg, restored, &mut summary, &mut fx).await?;
     drop(tail);
     crate::fsutil::release_memory();
 
@@ -578,6 +580,8 @@ pub async fn run(
                         for note in engine.reconfigure(&new, &tail, now_ms()) {
                             tracing::info!(component = "daemon", "reload: {note}");
                         }
+                        let changed = engine.limits_records(&tail);
+                        carry_out(&archive, &new, changed, &mut summary, &mut fx).await?;
                         let text = std::fs::read(&new.path).unwrap_or_default();
                         archive.append(vec![Record::ConfigLoaded {
                             path: new.path.display().to_string(),

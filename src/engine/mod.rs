@@ -655,6 +655,47 @@ impl Engine {
         out
     }
 
+    /// Records for every characteristic whose limits in force are not the ones the archive
+    /// last recorded (`tail`): a first start, an engineer's new limits file, limits taken as
+    /// stored with their reason. Called after a start and after a reload, so the record says
+    /// which limits every verdict was made against.
+    pub fn limits_records(&self, tail: &Tail) -> Vec<Output> {
+        let mut out = Vec::new();
+        for (id, c) in &self.chars {
+            let Mode::Monitoring { limits, .. } = &c.mode else {
+                continue;
+            };
+            let recorded = tail
+                .characteristics
+                .get(id)
+                .and_then(|t| t.in_force.as_deref());
+            if recorded == Some(&**limits) {
+                continue;
+            }
+            let file = c.cfg.limits_path.as_ref().map(|p| p.display().to_string());
+            let mut reason = match &file {
+                Some(f) => format!("read from the limits file {f}"),
+                None => "configured".to_string(),
+            };
+            if recorded.is_some() {
+                reason.push_str(", replacing the limits recorded before");
+            }
+            if let Some(r) = &c.cfg.limits_reason {
+                reason.push_str(&format!(
+                    "; taken as stored (limits_policy = \"as-stored\"): {r}"
+                ));
+            }
+            out.push(Output::Record(Record::LimitsInstalled {
+                characteristic: id.clone(),
+                old: recorded.map(|l| Box::new(l.clone())),
+                new: limits.clone(),
+                reason,
+                file,
+            }));
+        }
+        out
+    }
+
     /// The state of every characteristic, as records to append (at shutdown, say).
     pub fn snapshot(&self) -> Vec<Record> {
         self.chars.values().map(CharEngine::saved_record).collect()
