@@ -61,13 +61,30 @@ pub fn fixed_pair(value: f64, limit: f64, decimals: usize) -> (String, String) {
 /// [`fixed_pair`] for figures without set decimals: six significant digits, trailing zeros
 /// trimmed, and more digits where the two would otherwise print equal.
 pub fn sig_pair(value: f64, limit: f64) -> (String, String) {
-    let mut digits = 6;
+    sig_pair_at(value, limit, 6)
+}
+
+/// [`sig_pair`] starting from `digits` significant digits (Cpk 1.3298 against 1.33 prints
+/// `1.3298` and `1.33`, never `1.33` against `1.33`).
+pub fn sig_pair_at(value: f64, limit: f64, digits: usize) -> (String, String) {
+    let mut digits = digits;
     loop {
         let (a, b) = (sig(value, digits), sig(limit, digits));
         if a != b || value == limit || digits >= 17 {
             return (a, b);
         }
         digits += 1;
+    }
+}
+
+/// An expected nonconforming rate in parts per million: three significant digits, and
+/// `< 0.001` below a thousandth of a ppm (a figure like 0.000000000000331 ppm claims a
+/// precision no normal model of real parts has).
+pub fn ppm(p: f64) -> String {
+    if p > 0.0 && p < 0.001 {
+        "< 0.001".to_string()
+    } else {
+        sig(p, 3)
     }
 }
 

@@ -12,7 +12,7 @@ use linewarden::limits_file::{StoredLimits, valid_id};
 use linewarden::report;
 use linewarden::stats::capability::{self, Capability, Spec};
 use linewarden::stats::study::{self, Study, StudyOptions};
-use linewarden::stats::variables::VariablesChart;
+use linewarden::stats::variables::{SigmaEstimator, VariablesChart};
 
 #[derive(Parser)]
 #[command(
@@ -310,6 +310,11 @@ struct ExcludeArgs {
     /// Cap on rounds of automatic exclusion.
     #[arg(long, default_value_t = 10)]
     max_iterations: usize,
+    /// How sigma is estimated from the subgroups: auto (the chart's published estimator),
+    /// mean-range or burr-weighted-range (X̄-R), mean-sd or pooled-sd (X̄-S). They differ only
+    /// when subgroup sizes vary.
+    #[arg(long, value_name = "NAME", default_value = "auto")]
+    sigma_estimator: String,
 }
 
 #[derive(Args)]
@@ -525,6 +530,23 @@ fn load_and_study(
         }
     });
     let mut options = StudyOptions::new(chart);
+    let Some(estimator) = SigmaEstimator::parse(&exclude.sigma_estimator) else {
+        bail!(
+            "--sigma-estimator {:?} is not an estimator; use one of: {}",
+            exclude.sigma_estimator,
+            SigmaEstimator::NAMES.join(", ")
+        );
+    };
+    if !estimator.fits(chart) {
+        bail!(
+            "--sigma-estimator {} is not for the {} chart: {} take the X̄-R chart's ranges, {} the X̄-S chart's standard deviations",
+            exclude.sigma_estimator,
+            chart.name(),
+            "mean-range and burr-weighted-range",
+            "mean-sd and pooled-sd"
+        );
+    }
+    options.sigma_estimator = estimator;
     options.exclude = exclude.exclude.clone();
     options.auto_exclude = exclude.auto_exclude;
     options.max_iterations = exclude.max_iterations;
@@ -595,6 +617,9 @@ fn limits(a: LimitsArgs) -> Result<()> {
     }
     warnings.extend(s.warnings.iter().cloned());
     if a.json {
+        if let Some(c) = &cap {
+            warnings.extend(c.warnings.iter().cloned());
+        }
         for w in &warnings {
             eprintln!("warning: {w}");
         }
@@ -625,11 +650,14 @@ fn capability_cmd(a: CapabilityArgs) -> Result<()> {
     let cap = capability_of(&s, &subgroups, &spec, a.spec.capable_at)?;
     warnings.extend(s.warnings.iter().cloned());
     if a.json {
+        // Every warning, the capability's own (normality) included: the text report has them.
+        warnings.extend(cap.warnings.iter().cloned());
         for w in &warnings {
             eprintln!("warning: {w}");
         }
         let mut v = capability_json(&cap);
         v["sigma_within_method"] = json!(s.estimate.sigma_method);
+        v["sigma_method"] = json!(s.estimate.sigma_key);
         v["chart"] = json!(s.chart.name());
         v["warnings"] = json!(warnings);
         println!("{}", serde_json::to_string_pretty(&v)?);
@@ -655,6 +683,7 @@ fn study_json(s: &Study) -> serde_json::Value {
         })).collect::<Vec<_>>(),
         "sigma_within": s.estimate.sigma_within,
         "sigma_within_method": s.estimate.sigma_method,
+        "sigma_method": s.estimate.sigma_key,
         "sigma_overall": s.estimate.sigma_overall,
         "location": s.location,
         "dispersion": {

@@ -188,7 +188,7 @@ pub fn capability(spec: &Spec, c: &Capability) -> String {
         None,
         "overall sigma and distance from target",
     );
-    let ppm = |v: Option<f64>| v.map(|p| sig(p, 3)).unwrap_or_else(|| "-".to_string());
+    let ppm = |v: Option<f64>| v.map(crate::format::ppm).unwrap_or_else(|| "-".to_string());
     let _ = writeln!(
         out,
         "  expected nonconforming (normal model): {} ppm below LSL, {} ppm above USL from overall sigma; {} and {} ppm from within sigma",
@@ -216,9 +216,9 @@ pub fn capability(spec: &Spec, c: &Capability) -> String {
             let _ = writeln!(out, "  normality: not checked (too few readings)");
         }
     }
-    let t = sig(c.threshold, 3);
-    let lower = sig(c.cpk_ci95[0], 3);
-    let cpk = sig(c.cpk, 3);
+    // Each figure printed with as many digits as its comparison needs to read true.
+    let (cpk, t) = crate::format::sig_pair_at(c.cpk, c.threshold, 3);
+    let (lower, _) = crate::format::sig_pair_at(c.cpk_ci95[0], c.threshold, 3);
     let _ = match c.verdict {
         Verdict::Capable => writeln!(
             out,

@@ -51,10 +51,10 @@ fn western_electric_rules_together() {
 fn tabular_cusum_montgomery_table() {
     // Montgomery, Introduction to SQC, ch. 9, ARL of the tabular CUSUM with k = 1/2:
     // h = 4: 168 in control, 8.38 at a one-sigma shift; h = 5: 465 and 10.4.
-    within(cusum_arl(0.5, 4.0, 0.0, 0.0, 96), 168.0, 0.01, "h=4 ARL0");
-    within(cusum_arl(0.5, 4.0, 0.0, 1.0, 96), 8.38, 0.01, "h=4 ARL(1)");
-    within(cusum_arl(0.5, 5.0, 0.0, 0.0, 96), 465.0, 0.01, "h=5 ARL0");
-    within(cusum_arl(0.5, 5.0, 0.0, 1.0, 96), 10.4, 0.01, "h=5 ARL(1)");
+    within(cusum_arl(0.5, 4.0, 0.0, 96), 168.0, 0.01, "h=4 ARL0");
+    within(cusum_arl(0.5, 4.0, 1.0, 96), 8.38, 0.01, "h=4 ARL(1)");
+    within(cusum_arl(0.5, 5.0, 0.0, 96), 465.0, 0.01, "h=5 ARL0");
+    within(cusum_arl(0.5, 5.0, 1.0, 96), 10.4, 0.01, "h=5 ARL(1)");
     let set = single(RuleKind::Cusum {
         k: 0.5,
         h: 5.0,
@@ -63,6 +63,43 @@ fn tabular_cusum_montgomery_table() {
     let r = arl::arl(&set, &[0.0], &ArlOptions::default()).unwrap();
     assert_eq!(r[0].method, Method::IntegralEquation);
     within(r[0].arl, 465.0, 0.01, "via arl()");
+}
+
+/// What broke: with a head start the two-sided ARL was the one-sided head-start ARL halved,
+/// 447.92 for k = 0.5, h = 5, head start h/2, named "integral-equation". Both sums start at
+/// h/2 together, so that combination does not hold. Now it is simulated with its interval and
+/// named so. Reference: an independent simulation gives 429.1 ± 1.4 (h = 5) and 148.9 ± 0.5
+/// (h = 4); Lucas and Crosier (Technometrics 24(3), 1982) give about 430 for h = 5 (from
+/// memory). The one-sided head-start ARL itself is still computed: its integral equation holds.
+#[test]
+fn two_sided_cusum_with_a_head_start_is_simulated_not_halved() {
+    let opts = ArlOptions {
+        runs: 40_000,
+        ..ArlOptions::default()
+    };
+    for (h, reference, its_ci, old) in [(5.0, 429.1, 1.4, 447.92), (4.0, 148.9, 0.5, 158.19)] {
+        let set = single(RuleKind::Cusum {
+            k: 0.5,
+            h,
+            head_start: 0.5,
+        });
+        let r = &arl::arl(&set, &[0.0], &opts).unwrap()[0];
+        assert_eq!(r.method, Method::MonteCarlo, "h = {h}");
+        let [lo, hi] = r.ci95.unwrap();
+        let half = (hi - lo) / 2.0;
+        assert!(
+            (r.arl - reference).abs() <= half + its_ci,
+            "h = {h}: {} ± {half}, reference {reference} ± {its_ci}",
+            r.arl
+        );
+        assert!(
+            old > hi + its_ci,
+            "h = {h}: the old figure {old} is not excluded ({lo}, {hi})"
+        );
+    }
+    // The one-sided scheme's head start (no interplay of two sums): halving it was the error.
+    let one = arl::one_sided_cusum(0.5, 5.0, 2.5, 0.0);
+    assert!((one / 2.0 - 447.92).abs() < 0.05, "{one}");
 }
 
 #[test]

@@ -788,3 +788,68 @@ fn status_without_options_looks_where_the_unit_puts_the_daemon() {
     );
     assert_eq!(e.matches("(os error").count(), 1, "{e}");
 }
+
+/// What broke: `capability --json` gave `"warnings": []` while the text named the failed
+/// normality test; and the verdict read `Cpk 1.33 is below 1.33`. Every warning is in the JSON,
+/// and a figure compared with a threshold prints with the digits that make the comparison true.
+#[test]
+fn capability_json_carries_the_normality_warning_and_comparisons_read_true() {
+    let dir = tempfile::tempdir().unwrap();
+    // Strongly skewed readings (an exponential shape), one per row.
+    let mut text = String::from("value\n");
+    for i in 1..=60 {
+        let u = (i as f64 - 0.5) / 60.0;
+        text.push_str(&format!("{:.5}\n", 10.0 - 0.01 * (1.0 - u).ln()));
+    }
+    let f = dir.path().join("skewed.csv");
+    std::fs::write(&f, text).unwrap();
+    let p = f.to_str().unwrap();
+    let o = run(&[
+        "capability",
+        "--input",
+        p,
+        "--layout",
+        "single",
+        "--lsl",
+        "9.9",
+        "--usl",
+        "10.2",
+        "--json",
+    ]);
+    let (out, err) = (stdout(&o), stderr(&o));
+    assert!(o.status.success(), "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).unwrap();
+    let w = v["warnings"].as_array().unwrap();
+    assert!(
+        w.iter()
+            .any(|s| s.as_str().unwrap().contains("do not look normal")),
+        "{out}"
+    );
+    assert_eq!(v["sigma_method"], "mean-moving-range");
+    let o = run(&[
+        "capability",
+        "--input",
+        p,
+        "--layout",
+        "single",
+        "--lsl",
+        "9.9",
+        "--usl",
+        "10.2",
+    ]);
+    let (out, err) = (stdout(&o), stderr(&o));
+    assert!(o.status.success(), "{err}");
+    assert!(
+        out.contains("adjusted for the estimated mean and sigma"),
+        "{out}"
+    );
+    for line in out.lines().filter(|l| l.contains("verdict")) {
+        // "Cpk X is below T" never with X printed equal to T.
+        if let Some(rest) = line.split("Cpk ").nth(1) {
+            let words: Vec<&str> = rest.split_whitespace().collect();
+            if let (Some(x), Some(t)) = (words.first(), words.get(3)) {
+                assert_ne!(x.trim_end_matches(','), t.trim_end_matches(','), "{line}");
+            }
+        }
+    }
+}

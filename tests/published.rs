@@ -451,3 +451,51 @@ fn u_and_np_charts_follow_their_definitions() {
     assert!((np.limits[0].ucl - (4.0 + 3.0 * (100.0 * pbar * (1.0 - pbar)).sqrt())).abs() < 1e-12);
     assert!(attributes::study(AttributeChart::Np, &samples, &[], false, 10).is_err());
 }
+
+/// What broke: with unequal subgroup sizes sigma was the plain mean of Rᵢ/d2(nᵢ) (or sᵢ/c4(nᵢ)),
+/// weighting a subgroup of 3 like one of 5; no published estimator does that. Now X̄-R takes
+/// Burr's weighted estimator (Burr, J. Quality Technology 1(3), 1969: weights d2²/d3²) and X̄-S
+/// the pooled standard deviation (Montgomery, Introduction to SQC, the X̄-S chart with variable
+/// sample size), unbiased by c4(ν+1) (common practice). Checked by hand against the
+/// definitions with Montgomery's Appendix VI constants (d2(3) = 1.693, d3(3) = 0.888,
+/// d2(5) = 2.326, d3(5) = 0.864, c4(7) = 0.9594): subgroups {1, 2, 3} (R = 2, s = 1) and
+/// {2, 4, 6, 8, 10} (R = 8, s = √10).
+#[test]
+fn unequal_subgroup_sizes_use_burr_and_pooled_estimators() {
+    use linewarden::stats::variables::SigmaEstimator;
+    let subgroups = vec![vec![1.0, 2.0, 3.0], vec![2.0, 4.0, 6.0, 8.0, 10.0]];
+    let run = |chart, e| {
+        let mut o = StudyOptions::new(chart);
+        o.sigma_estimator = e;
+        study::run(&subgroups, &o).unwrap().estimate
+    };
+    // Burr: (3.6349·2/1.693 + 7.2477·8/2.326) / (3.6349 + 7.2477) = 2.6852.
+    let (w3, w5) = ((1.693f64 / 0.888).powi(2), (2.326f64 / 0.864).powi(2));
+    let burr = (w3 * 2.0 / 1.693 + w5 * 8.0 / 2.326) / (w3 + w5);
+    let e = run(VariablesChart::XbarR, SigmaEstimator::Auto);
+    assert_eq!(e.sigma_key, "burr-weighted-range");
+    assert!(
+        (e.sigma_within - burr).abs() / burr < 1e-3,
+        "{} vs {burr}",
+        e.sigma_within
+    );
+    // The plain mean, still offered: (2/1.693 + 8/2.326)/2 = 2.3103; it differs.
+    let m = run(VariablesChart::XbarR, SigmaEstimator::MeanRange);
+    assert!((m.sigma_within - 2.3103).abs() < 2e-3, "{}", m.sigma_within);
+    // Pooled: √((2·1 + 4·10)/6) = √7 = 2.64575, / c4(7) = 0.9594 → 2.7577.
+    let e = run(VariablesChart::XbarS, SigmaEstimator::Auto);
+    assert_eq!(e.sigma_key, "pooled-sd");
+    let pooled = 7f64.sqrt() / 0.9594;
+    assert!(
+        (e.sigma_within - pooled).abs() / pooled < 1e-3,
+        "{} vs {pooled}",
+        e.sigma_within
+    );
+    // Equal sizes keep the classical estimators: R̄/d2 and s̄/c4.
+    let equal = vec![vec![1.0, 2.0, 4.0], vec![2.0, 5.0, 6.0]];
+    let mut o = StudyOptions::new(VariablesChart::XbarR);
+    o.sigma_estimator = SigmaEstimator::Auto;
+    let e = study::run(&equal, &o).unwrap().estimate;
+    assert_eq!(e.sigma_key, "mean-range");
+    assert!((e.sigma_within - 3.5 / 1.693).abs() < 2e-3);
+}

@@ -141,8 +141,9 @@ pub fn capability(
     c.normality = anderson_darling(readings);
     match &c.normality {
         Some(ad) if ad.doubtful() => c.warnings.insert(0, format!(
-            "the readings do not look normal (Anderson–Darling A² = {}, p = {}): the ppm figures and confidence intervals assume a normal distribution and may be wrong",
-            num(ad.a2_adjusted),
+            "the readings do not look normal (Anderson–Darling A² = {}, adjusted for the estimated mean and sigma {}, p = {}): the ppm figures and confidence intervals assume a normal distribution and may be wrong",
+            crate::format::sig(ad.a2, 4),
+            crate::format::sig(ad.a2_adjusted, 4),
             crate::format::sig(ad.p_value, 3)
         )),
         None => c.warnings.insert(0, format!(

@@ -114,8 +114,9 @@ fn compute(n: usize) -> Factors {
     }
 }
 
-/// `c4(n)` from the gamma function; logarithms keep large `n` from overflowing.
-fn c4(n: usize) -> f64 {
+/// `c4(n)` from the gamma function; logarithms keep large `n` from overflowing. Defined for
+/// any `n ≥ 2` (the pooled standard deviation uses it at its degrees of freedom + 1).
+pub fn c4(n: usize) -> f64 {
     let nf = n as f64;
     (2.0 / (nf - 1.0)).sqrt() * (ln_gamma(nf / 2.0) - ln_gamma((nf - 1.0) / 2.0)).exp()
 }

@@ -31,6 +31,8 @@ pub struct StudyOptions {
     /// At most this fraction of the baseline may be excluded automatically; a study that would
     /// exclude more stops and says the baseline was not stable.
     pub max_excluded_fraction: f64,
+    /// How sigma is estimated from the subgroups (by default the chart's published estimator).
+    pub sigma_estimator: variables::SigmaEstimator,
 }
 
 impl StudyOptions {
@@ -44,6 +46,7 @@ impl StudyOptions {
             exclusion_sigmas: 3.0,
             exclude_on_dispersion: true,
             max_excluded_fraction: 1.0,
+            sigma_estimator: variables::SigmaEstimator::Auto,
         }
     }
 }
@@ -152,7 +155,7 @@ pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, Stat
     let mut warnings = Vec::new();
 
     let est = loop {
-        let est = variables::estimate(chart, subgroups, &included)?;
+        let est = variables::estimate_with(chart, subgroups, &included, options.sigma_estimator)?;
         let iteration = trials.len() + 1;
         trials.push(Trial {
             iteration,
@@ -178,7 +181,9 @@ pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, Stat
         for (i, _) in &out {
             tentative[*i] = false;
         }
-        if let Err(e) = variables::estimate(chart, subgroups, &tentative) {
+        if let Err(e) =
+            variables::estimate_with(chart, subgroups, &tentative, options.sigma_estimator)
+        {
             warnings.push(format!(
                 "automatic exclusion stopped: excluding {} more subgroup(s) would leave {left}, too few to estimate from ({e}); the process was probably not stable during the baseline",
                 out.len()

@@ -124,6 +124,62 @@ fn check_shapes(chart: VariablesChart, subgroups: &[Vec<f64>]) -> Result<(), Sta
     Ok(())
 }
 
+/// How the within-subgroup sigma is estimated from subgroups (of possibly unequal sizes).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum SigmaEstimator {
+    /// The published estimator for the chart: X̄-R Burr's weighted ranges (the plain average
+    /// range / d2 when all subgroups are the same size, to which it is then equal); X̄-S the
+    /// average s / c4 for equal sizes, the pooled standard deviation for unequal ones;
+    /// individuals the average moving range / d2(2).
+    #[default]
+    Auto,
+    /// Mean of Rᵢ/d2(nᵢ): each term unbiased, all weighted alike.
+    MeanRange,
+    /// Burr (J. Quality Technology 1(3), 1969): Σ fᵢ·Rᵢ/d2(nᵢ) / Σ fᵢ with fᵢ = d2(nᵢ)²/d3(nᵢ)²,
+    /// each subgroup weighted by the inverse variance of its estimate.
+    BurrWeightedRange,
+    /// Mean of sᵢ/c4(nᵢ).
+    MeanSd,
+    /// The pooled standard deviation √(Σ(nᵢ−1)sᵢ² / Σ(nᵢ−1)) (Montgomery, Introduction to
+    /// SQC, the X̄-S chart with variable sample size), divided by c4(Σ(nᵢ−1)+1) to remove its
+    /// small bias (common practice).
+    PooledSd,
+}
+
+impl SigmaEstimator {
+    /// The names `--sigma-estimator` takes.
+    pub const NAMES: [&'static str; 5] = [
+        "auto",
+        "mean-range",
+        "burr-weighted-range",
+        "mean-sd",
+        "pooled-sd",
+    ];
+
+    pub fn parse(name: &str) -> Option<Self> {
+        Some(match name {
+            "auto" => SigmaEstimator::Auto,
+            "mean-range" => SigmaEstimator::MeanRange,
+            "burr-weighted-range" => SigmaEstimator::BurrWeightedRange,
+            "mean-sd" => SigmaEstimator::MeanSd,
+            "pooled-sd" => SigmaEstimator::PooledSd,
+            _ => return None,
+        })
+    }
+
+    /// Whether this estimator belongs to `chart`.
+    pub fn fits(self, chart: VariablesChart) -> bool {
+        match self {
+            SigmaEstimator::Auto => true,
+            SigmaEstimator::MeanRange | SigmaEstimator::BurrWeightedRange => {
+                chart == VariablesChart::XbarR
+            }
+            SigmaEstimator::MeanSd | SigmaEstimator::PooledSd => chart == VariablesChart::XbarS,
+        }
+    }
+}
+
 /// The process centre and within-subgroup sigma estimated from the included subgroups.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct Estimate {
@@ -136,6 +192,9 @@ pub struct Estimate {
     pub sigma_overall: f64,
     /// How `sigma_within` was obtained, in words.
     pub sigma_method: &'static str,
+    /// The same as a stable name: `mean-range`, `burr-weighted-range`, `mean-sd`, `pooled-sd`,
+    /// `mean-moving-range`.
+    pub sigma_key: &'static str,
     /// The mean of the plotted dispersion statistic over the included subgroups (R̄, s̄ or MR̄).
     pub mean_dispersion: f64,
     /// Number of included subgroups.
@@ -144,16 +203,30 @@ pub struct Estimate {
     pub readings: usize,
 }
 
-/// Estimates the centre and sigma from the subgroups whose `included` flag is set.
-///
-/// With unequal subgroup sizes the within sigma is the mean of `R_i/d2(n_i)` (or `s_i/c4(n_i)`),
-/// each term an unbiased estimate of sigma on its own (common practice). For individuals, a
-/// moving range counts only when both of its points are included.
+/// Estimates the centre and sigma from the subgroups whose `included` flag is set, with the
+/// chart's published estimator ([`SigmaEstimator::Auto`]).
 pub fn estimate(
     chart: VariablesChart,
     subgroups: &[Vec<f64>],
     included: &[bool],
 ) -> Result<Estimate, StatsError> {
+    estimate_with(chart, subgroups, included, SigmaEstimator::Auto)
+}
+
+/// [`estimate`] with a chosen sigma estimator (one that [fits](SigmaEstimator::fits) the
+/// chart; another is taken as `Auto`). For individuals, a moving range counts only when both
+/// of its points are included.
+pub fn estimate_with(
+    chart: VariablesChart,
+    subgroups: &[Vec<f64>],
+    included: &[bool],
+    estimator: SigmaEstimator,
+) -> Result<Estimate, StatsError> {
+    let estimator = if estimator.fits(chart) {
+        estimator
+    } else {
+        SigmaEstimator::Auto
+    };
     let stats = point_stats(chart, subgroups)?;
     let used: Vec<usize> = (0..subgroups.len()).filter(|&i| included[i]).collect();
     let needed = 2;
@@ -171,25 +244,59 @@ pub fn estimate(
     let sigma_overall = sample_sd(&all);
 
     let constant_n = used.iter().all(|&i| stats[i].n == stats[used[0]].n);
-    let (sigma_within, mean_dispersion, sigma_method) = match chart {
+    let (sigma_within, mean_dispersion, sigma_method, sigma_key) = match chart {
         VariablesChart::XbarR | VariablesChart::XbarS => {
             let by_r = chart == VariablesChart::XbarR;
-            let mut unbiased = 0.0;
-            let mut plain = 0.0;
+            let chosen = match (estimator, by_r, constant_n) {
+                (SigmaEstimator::Auto, true, true) => SigmaEstimator::MeanRange,
+                (SigmaEstimator::Auto, true, false) => SigmaEstimator::BurrWeightedRange,
+                (SigmaEstimator::Auto, false, true) => SigmaEstimator::MeanSd,
+                (SigmaEstimator::Auto, false, false) => SigmaEstimator::PooledSd,
+                (e, _, _) => e,
+            };
+            let (mut plain, mut mean_terms) = (0.0, 0.0);
+            let (mut weighted, mut weights) = (0.0, 0.0);
+            let (mut squares, mut dof) = (0.0, 0.0);
             for &i in &used {
                 let f = factors(stats[i].n)?;
                 let d = stats[i].dispersion.unwrap_or(0.0); // always Some for subgroup charts
                 plain += d;
-                unbiased += d / if by_r { f.d2 } else { f.c4 };
+                mean_terms += d / if by_r { f.d2 } else { f.c4 };
+                let w = (f.d2 / f.d3).powi(2);
+                weighted += w * d / f.d2;
+                weights += w;
+                let nu = (stats[i].n - 1) as f64;
+                squares += nu * d * d;
+                dof += nu;
             }
             let k = used.len() as f64;
-            let method = match (by_r, constant_n) {
-                (true, true) => "average range / d2",
-                (true, false) => "mean of range / d2(n) over subgroups",
-                (false, true) => "average standard deviation / c4",
-                (false, false) => "mean of standard deviation / c4(n) over subgroups",
+            let (sigma, method, key) = match chosen {
+                SigmaEstimator::BurrWeightedRange => (
+                    weighted / weights,
+                    "Burr's weighted ranges: sum of (d2/d3)²·R/d2 over sum of (d2/d3)²",
+                    "burr-weighted-range",
+                ),
+                SigmaEstimator::PooledSd => (
+                    (squares / dof).sqrt() / super::constants::c4(dof as usize + 1),
+                    "pooled standard deviation / c4(degrees of freedom + 1)",
+                    "pooled-sd",
+                ),
+                SigmaEstimator::MeanRange if constant_n => {
+                    (mean_terms / k, "average range / d2", "mean-range")
+                }
+                SigmaEstimator::MeanRange => (
+                    mean_terms / k,
+                    "mean of range / d2(n) over subgroups",
+                    "mean-range",
+                ),
+                _ if constant_n => (mean_terms / k, "average standard deviation / c4", "mean-sd"),
+                _ => (
+                    mean_terms / k,
+                    "mean of standard deviation / c4(n) over subgroups",
+                    "mean-sd",
+                ),
             };
-            (unbiased / k, plain / k, method)
+            (sigma, plain / k, method, key)
         }
         VariablesChart::Individuals => {
             let mrs: Vec<f64> = (1..subgroups.len())
@@ -207,6 +314,7 @@ pub fn estimate(
                 mr_bar / factors(2)?.d2,
                 mr_bar,
                 "average moving range / d2(2)",
+                "mean-moving-range",
             )
         }
     };
@@ -225,6 +333,7 @@ pub fn estimate(
         sigma_within,
         sigma_overall,
         sigma_method,
+        sigma_key,
         mean_dispersion,
         subgroups: used.len(),
         readings: all.len(),
