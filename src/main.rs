@@ -658,6 +658,8 @@ fn capability_cmd(a: CapabilityArgs) -> Result<()> {
         let mut v = capability_json(&cap);
         v["sigma_within_method"] = json!(s.estimate.sigma_method);
         v["sigma_method"] = json!(s.estimate.sigma_key);
+        v["stability"] = json!(s.stability);
+        v["autocorrelation"] = json!(s.autocorrelation);
         v["chart"] = json!(s.chart.name());
         v["warnings"] = json!(warnings);
         println!("{}", serde_json::to_string_pretty(&v)?);
@@ -684,6 +686,8 @@ fn study_json(s: &Study) -> serde_json::Value {
         "sigma_within": s.estimate.sigma_within,
         "sigma_within_method": s.estimate.sigma_method,
         "sigma_method": s.estimate.sigma_key,
+        "stability": s.stability,
+        "autocorrelation": s.autocorrelation,
         "sigma_overall": s.estimate.sigma_overall,
         "location": s.location,
         "dispersion": {

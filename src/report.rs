@@ -42,10 +42,10 @@ pub fn study(source: &str, s: &Study, cap: Option<(&Spec, &Capability)>) -> Stri
         "Baseline study: {} chart, {size}",
         chart_title(s.chart)
     );
-    let _ = writeln!(out, "  {:<20} {source}", "source");
+    let _ = writeln!(out, "  {:<24} {source}", "source");
     let _ = writeln!(
         out,
-        "  {:<20} {} read, {} used, {} excluded",
+        "  {:<24} {} read, {} used, {} excluded",
         "subgroups",
         s.subgroups_total,
         s.subgroups_used,
@@ -53,18 +53,62 @@ pub fn study(source: &str, s: &Study, cap: Option<(&Spec, &Capability)>) -> Stri
     );
     let _ = writeln!(
         out,
-        "  {:<20} {} ({})",
-        "sigma within",
+        "  {:<24} {}, from {}",
+        "spread inside subgroups",
         num(s.estimate.sigma_within),
         s.estimate.sigma_method
     );
     let _ = writeln!(
         out,
-        "  {:<20} {} (sample standard deviation of all {} used readings)",
-        "sigma overall",
+        "  {:<24} {}, the standard deviation of all {} used readings together",
+        "spread of all readings",
         num(s.estimate.sigma_overall),
         s.estimate.readings
     );
+    let beyond = &s.stability.beyond_trial_limits;
+    let _ = writeln!(
+        out,
+        "  {:<24} {}",
+        "stable?",
+        match (beyond.is_empty(), s.stability.judged) {
+            (true, true) => "no used subgroup is beyond these limits".to_string(),
+            (true, false) => format!(
+                "no used subgroup is beyond these limits, but {} subgroups are too few to judge (20 or more, common practice)",
+                s.subgroups_used
+            ),
+            (false, _) => format!(
+                "no: subgroup(s) {} beyond these limits",
+                beyond
+                    .iter()
+                    .map(|n| n.to_string())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+        }
+    );
+    if let Some(a) = &s.autocorrelation {
+        // The larger lag sets the digits, so that "beyond" or "within" reads true.
+        let big = if a.lag1.abs() >= a.lag2.abs() {
+            a.lag1
+        } else {
+            a.lag2
+        };
+        let (_, bound) = crate::format::sig_pair_at(big.abs(), a.bound, 3);
+        let digits = bound.trim_start_matches("0.").len().max(3);
+        let _ = writeln!(
+            out,
+            "  {:<24} {} {} at lag 1 and {} at lag 2, {} ±{bound} (the 95% bound for independent points)",
+            "independent?",
+            if a.significant {
+                "no: the plotted points are autocorrelated,"
+            } else {
+                "no sign of dependence: autocorrelation"
+            },
+            crate::format::sig(a.lag1, digits),
+            crate::format::sig(a.lag2, digits),
+            if a.significant { "beyond" } else { "within" },
+        );
+    }
     let _ = writeln!(out, "\nControl limits");
     let loc_label = if s.chart == VariablesChart::Individuals {
         "individuals chart"
@@ -163,37 +207,53 @@ pub fn capability(spec: &Spec, c: &Capability) -> String {
                 );
             }
         };
-    row(&mut out, "Cp", c.cp, c.cp_ci95, "within-subgroup sigma");
+    row(
+        &mut out,
+        "Cp",
+        c.cp,
+        c.cp_ci95,
+        "from the spread inside subgroups",
+    );
     row(
         &mut out,
         "Cpk",
         Some(c.cpk),
         Some(c.cpk_ci95),
-        "within-subgroup sigma",
+        "from the spread inside subgroups",
     );
     row(&mut out, "Cpu", c.cpu, None, "");
     row(&mut out, "Cpl", c.cpl, None, "");
-    row(&mut out, "Pp", c.pp, c.pp_ci95, "overall sigma");
+    row(
+        &mut out,
+        "Pp",
+        c.pp,
+        c.pp_ci95,
+        "from the spread of all readings",
+    );
     row(
         &mut out,
         "Ppk",
         Some(c.ppk),
         Some(c.ppk_ci95),
-        "overall sigma",
+        "from the spread of all readings",
     );
     row(
         &mut out,
         "Cpm",
         c.cpm,
         None,
-        "overall sigma and distance from target",
+        "from the spread of all readings and the distance from target",
     );
     let ppm = |v: Option<f64>| v.map(crate::format::ppm).unwrap_or_else(|| "-".to_string());
     let _ = writeln!(
         out,
-        "  expected nonconforming (normal model): {} ppm below LSL, {} ppm above USL from overall sigma; {} and {} ppm from within sigma",
+        "  parts outside the specification, if the readings are normal: {} ppm below the LSL and {} ppm above the USL, judged from the spread of all readings",
         ppm(c.ppm_below),
         ppm(c.ppm_above),
+    );
+    let _ = writeln!(
+        out,
+        "  judged from the spread inside subgroups instead (what the process would give without the variation between subgroups): {} ppm below, {} ppm above",
         ppm(c.ppm_below_within),
         ppm(c.ppm_above_within)
     );

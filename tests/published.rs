@@ -499,3 +499,58 @@ fn unequal_subgroup_sizes_use_burr_and_pooled_estimators() {
     assert_eq!(e.sigma_key, "mean-range");
     assert!((e.sigma_within - 3.5 / 1.693).abs() < 2e-3);
 }
+
+/// The study's autocorrelation of the plotted points against a reference library:
+/// statsmodels 0.15.0 `acf(x, nlags=2, adjusted=False, fft=False)` on these 40 individuals
+/// (an AR(1) series with φ = 0.6, generated with numpy's default_rng(2026), printed to 4
+/// decimals) gives 0.32169284368720735 and 0.16201610327112204; the 95% bound for independent
+/// points is 1.96/√40 = 0.3099 (Box and Jenkins). Lag 1 is beyond it: the study warns.
+#[test]
+fn autocorrelation_matches_statsmodels_acf_and_is_warned_about() {
+    #[rustfmt::skip]
+    let x = [
+        10.0000, 9.9921, 9.9976, 9.9796, 10.0017, 10.0074, 10.0015, 9.9978, 10.0017, 9.9984,
+        9.9968, 10.0053, 10.0083, 10.0043, 10.0017, 10.0027, 9.9955, 9.9932, 10.0014, 9.9995,
+        9.9860, 9.9868, 9.9987, 9.9969, 9.9966, 10.0044, 10.0209, 10.0054, 10.0167, 9.9977,
+        10.0004, 9.9885, 10.0066, 10.0123, 10.0188, 10.0024, 10.0083, 9.9998, 9.9953, 10.0022,
+    ];
+    let a = study::autocorrelation(&x).unwrap();
+    assert!((a.lag1 - 0.32169284368720735).abs() < 1e-12, "{}", a.lag1);
+    assert!((a.lag2 - 0.16201610327112204).abs() < 1e-12, "{}", a.lag2);
+    assert!((a.bound - 0.3099032106965012).abs() < 1e-12);
+    assert!(a.significant);
+    let subgroups: Vec<Vec<f64>> = x.iter().map(|v| vec![*v]).collect();
+    let s = study::run(&subgroups, &StudyOptions::new(VariablesChart::Individuals)).unwrap();
+    assert_eq!(s.autocorrelation, Some(a));
+    assert!(
+        s.warnings
+            .iter()
+            .any(|w| w.contains("autocorrelated (lag-1 autocorrelation 0.322")),
+        "{:?}",
+        s.warnings
+    );
+}
+
+/// What was missing: `limits` without `--auto-exclude` said nothing about subgroups beyond its
+/// own limits, though capability assumes a stable process. Now they are listed, as a warning
+/// and in `stability`.
+#[test]
+fn a_study_lists_subgroups_beyond_its_own_limits() {
+    let mut subgroups: Vec<Vec<f64>> = (0..25)
+        .map(|i| {
+            let b = 10.0 + 0.0005 * (((i * 7) % 5) as f64 - 2.0);
+            vec![b + 0.002, b - 0.001, b + 0.001, b - 0.002]
+        })
+        .collect();
+    subgroups[12] = vec![10.010, 10.007, 10.009, 10.006];
+    let s = study::run(&subgroups, &StudyOptions::new(VariablesChart::XbarR)).unwrap();
+    assert_eq!(s.stability.beyond_trial_limits, vec![13]);
+    assert!(s.stability.judged);
+    assert!(
+        s.warnings
+            .iter()
+            .any(|w| w.contains("not shown to be stable: subgroup(s) 13")),
+        "{:?}",
+        s.warnings
+    );
+}

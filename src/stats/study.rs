@@ -89,6 +89,54 @@ pub struct StudyPoint {
     pub dispersion_limits: Limits,
 }
 
+/// Whether the baseline showed a stable process: capability assumes one.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Stability {
+    /// Enough subgroups were used to judge (20, common practice for a baseline).
+    pub judged: bool,
+    /// Included subgroups (numbered from 1) beyond the study's own 3-sigma limits, on either
+    /// chart.
+    pub beyond_trial_limits: Vec<usize>,
+}
+
+/// The autocorrelation of the plotted points (included subgroups, in order): Shewhart limits
+/// and every ARL assume independent points.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Autocorrelation {
+    /// Lag-1 and lag-2 sample autocorrelations, r_k = Σ(x_t − x̄)(x_{t+k} − x̄) / Σ(x_t − x̄)²
+    /// (Box and Jenkins; the estimator of common reference libraries).
+    pub lag1: f64,
+    pub lag2: f64,
+    /// The approximate 95% bound for independent points, 1.96/√N.
+    pub bound: f64,
+    /// Either lag beyond the bound.
+    pub significant: bool,
+}
+
+/// The sample autocorrelations at lags 1 and 2 of `x`, with the bound 1.96/√N; `None` for
+/// fewer than 4 points or points that do not vary.
+pub fn autocorrelation(x: &[f64]) -> Option<Autocorrelation> {
+    let n = x.len();
+    if n < 4 {
+        return None;
+    }
+    let m = x.iter().sum::<f64>() / n as f64;
+    let d: Vec<f64> = x.iter().map(|v| v - m).collect();
+    let c0: f64 = d.iter().map(|v| v * v).sum();
+    if c0 <= 0.0 {
+        return None;
+    }
+    let r = |k: usize| d.windows(k + 1).map(|w| w[0] * w[k]).sum::<f64>() / c0;
+    let (lag1, lag2) = (r(1), r(2));
+    let bound = 1.96 / (n as f64).sqrt();
+    Some(Autocorrelation {
+        lag1,
+        lag2,
+        bound,
+        significant: lag1.abs() > bound || lag2.abs() > bound,
+    })
+}
+
 /// The outcome of a baseline study.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Study {
@@ -106,6 +154,8 @@ pub struct Study {
     pub dispersion: Limits,
     pub trials: Vec<Trial>,
     pub points: Vec<StudyPoint>,
+    pub stability: Stability,
+    pub autocorrelation: Option<Autocorrelation>,
     pub warnings: Vec<String>,
 }
 
@@ -241,6 +291,57 @@ pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, Stat
             dispersion_limits: dispersion_limits(kind, est.sigma_within, s.n)?,
         });
     }
+    // Stability: included subgroups beyond the study's own limits (3 sigma, both charts).
+    let at_limits = StudyOptions {
+        exclusion_sigmas: 3.0,
+        exclude_on_dispersion: true,
+        ..StudyOptions::new(chart)
+    };
+    let mut beyond_trial_limits = Vec::new();
+    for i in (0..total).filter(|&i| included[i]) {
+        if out_of_control(&stats[i], &est, kind, &at_limits)?.is_some() {
+            beyond_trial_limits.push(i + 1);
+        }
+    }
+    let stability = Stability {
+        judged: est.subgroups >= RECOMMENDED_SUBGROUPS,
+        beyond_trial_limits,
+    };
+    if !stability.beyond_trial_limits.is_empty() {
+        let list: Vec<String> = stability
+            .beyond_trial_limits
+            .iter()
+            .map(|n| n.to_string())
+            .collect();
+        warnings.push(format!(
+            "the process was not shown to be stable: subgroup(s) {} are beyond this study's own limits, and the limits and capability assume a stable process; find their causes and leave them out (--exclude), or use --auto-exclude",
+            list.join(", ")
+        ));
+    }
+    let plotted: Vec<f64> = (0..total)
+        .filter(|&i| included[i])
+        .map(|i| stats[i].mean)
+        .collect();
+    let autocorrelation = autocorrelation(&plotted);
+    if let Some(a) = autocorrelation
+        && a.significant
+    {
+        let (lag, r) = if a.lag1.abs() > a.bound {
+            (1, a.lag1)
+        } else {
+            (2, a.lag2)
+        };
+        let effect = if r > 0.0 {
+            "positively correlated points make sigma from ranges too small and the limits too tight, so the line alarms far more often than the rules' false-alarm rate says"
+        } else {
+            "negatively correlated points make the limits too wide, so real shifts are caught later than the rules' ARL says"
+        };
+        warnings.push(format!(
+            "the plotted points are autocorrelated (lag-{lag} autocorrelation {}, beyond ±{} for independent points): Shewhart limits and every ARL assume independence; {effect}. Sample less often, or model the dependence (for example an EWMA of residuals)",
+            crate::format::sig(r, 3),
+            crate::format::sig(a.bound, 3)
+        ));
+    }
     let min = stats.iter().map(|s| s.n).min().unwrap_or(0);
     let max = stats.iter().map(|s| s.n).max().unwrap_or(0);
     Ok(Study {
@@ -256,6 +357,8 @@ pub fn run(subgroups: &[Vec<f64>], options: &StudyOptions) -> Result<Study, Stat
         dispersion: dispersion_limits(kind, est.sigma_within, nominal)?,
         trials,
         points,
+        stability,
+        autocorrelation,
         warnings,
     })
 }
