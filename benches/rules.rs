@@ -27,6 +27,7 @@ fn rule_set() -> RuleSet {
             k: 0.5,
             h: 5.0,
             head_start: 0.0,
+            restart_on_acknowledge: true,
         },
     });
     set

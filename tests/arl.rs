@@ -59,6 +59,7 @@ fn tabular_cusum_montgomery_table() {
         k: 0.5,
         h: 5.0,
         head_start: 0.0,
+        restart_on_acknowledge: true,
     });
     let r = arl::arl(&set, &[0.0], &ArlOptions::default()).unwrap();
     assert_eq!(r[0].method, Method::IntegralEquation);
@@ -82,6 +83,7 @@ fn two_sided_cusum_with_a_head_start_is_simulated_not_halved() {
             k: 0.5,
             h,
             head_start: 0.5,
+            restart_on_acknowledge: true,
         });
         let r = &arl::arl(&set, &[0.0], &opts).unwrap()[0];
         assert_eq!(r.method, Method::MonteCarlo, "h = {h}");

@@ -554,3 +554,92 @@ fn limits_in_force_are_recorded_once_and_again_when_they_change() {
         other => panic!("{other:?}"),
     }
 }
+
+fn config_with_cusum(dir: &Path, restart: &str) -> config::Config {
+    std::fs::write(dir.join("bore.toml"), common::BORE_LIMITS).unwrap();
+    let text = format!(
+        r#"
+[daemon]
+archive_dir = "archive"
+
+[[characteristic]]
+id = "bore"
+unit = "mm"
+limits = "bore.toml"
+subgroup = {{ size = 4 }}
+[characteristic.rules]
+[[characteristic.rules.rule]]
+kind = "cusum"
+k = 0.5
+h = 5
+{restart}
+"#
+    );
+    let path = dir.join("cell.toml");
+    std::fs::write(&path, text).unwrap();
+    config::load(&path).unwrap()
+}
+
+/// The CUSUM after a signal: acknowledging its alert (the corrective action) restarts both
+/// sums at the head start, so the next subgroup on target ends the condition and the alert
+/// clears; with `restart = "never"` the old evidence holds the sum above h for several more
+/// subgroups. The restart is saved at once, so an engine rebuilt from the record agrees.
+#[test]
+fn acknowledging_a_cusum_alert_restarts_its_sums() {
+    for (restart, fires_after_ack) in [("", false), ("restart = \"never\"", true)] {
+        let dir = tempfile::tempdir().unwrap();
+        let cfg = config_with_cusum(dir.path(), restart);
+        let mut e = Engine::new(&cfg, T0);
+        let mut log = Log::new();
+        let mut t = T0;
+        let mut subgroup = |e: &mut Engine, log: &mut Log, mean: f64| {
+            let mut fired = Vec::new();
+            for _ in 0..4 {
+                t += 1;
+                fired.extend(feed(e, log, "bore", mean, t));
+            }
+            fired
+        };
+        // Means 2 standard errors high (SE = 0.004/√4): the upper sum gains 1.5 a subgroup and
+        // passes h = 5 at the fourth.
+        let mut fired = Vec::new();
+        for _ in 0..4 {
+            fired = subgroup(&mut e, &mut log, 12.004);
+        }
+        assert_eq!(fired, ["cusum"], "{restart}");
+        let id = e
+            .alerts()
+            .active()
+            .find(|a| a.rule == "cusum")
+            .map(|a| a.id.clone())
+            .unwrap();
+        let (_, outs) = e
+            .acknowledge(&id, "R. Tech", Some("insert changed"), T0 + 100)
+            .unwrap();
+        let saved = outs
+            .iter()
+            .any(|o| matches!(o, Output::Record(Record::EngineState { .. })));
+        assert_eq!(saved, !fires_after_ack, "{restart}");
+        for o in outs {
+            if let Output::Record(r) = o {
+                log.append(r);
+            }
+        }
+        // Back on target.
+        let fired = subgroup(&mut e, &mut log, 12.0);
+        assert_eq!(!fired.is_empty(), fires_after_ack, "{restart}: {fired:?}");
+        // Rebuilt from the record, the engine is where this one is.
+        let mut again = Engine::new(&cfg, T0);
+        again.restore(&log.tail);
+        let one = subgroup(&mut e, &mut log, 12.004);
+        let mut log2 = Log::new();
+        log2.tail = log.tail.clone();
+        let mut t2 = t;
+        let mut two = Vec::new();
+        for _ in 0..4 {
+            t2 += 1;
+            two.extend(feed(&mut again, &mut log2, "bore", 12.004, t2));
+        }
+        assert_eq!(one, two, "{restart}");
+    }
+}

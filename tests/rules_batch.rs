@@ -55,6 +55,7 @@ fn rule_set() -> RuleSet {
             k: 0.5,
             h: 4.0,
             head_start: 0.5,
+            restart_on_acknowledge: true,
         },
     });
     set.rules.push(Rule {
@@ -148,7 +149,9 @@ fn batch(set: &RuleSet, b: &ChartBasis, pts: &[Plotted]) -> BTreeSet<(u64, Strin
                         .fold(0.0, |acc, v| lambda * v + (1.0 - lambda) * acc);
                     e.abs() > width * (lambda / (2.0 - lambda)).sqrt()
                 }
-                RuleKind::Cusum { k, h, head_start } => {
+                RuleKind::Cusum {
+                    k, h, head_start, ..
+                } => {
                     let (mut hi, mut lo) = (head_start * h, head_start * h);
                     for v in hist {
                         hi = f64::max(0.0, hi + v - k);

@@ -535,7 +535,33 @@ impl Engine {
         };
         let mut ids: Vec<String> = events.iter().map(|e| e.alert_id.clone()).collect();
         ids.dedup();
-        Ok((ids, events.into_iter().map(alert_record).collect()))
+        let mut out: Vec<Output> = events.into_iter().map(alert_record).collect();
+        // The acknowledgement is the corrective action: a CUSUM whose alert it was starts again
+        // from its head start, and its state is saved at once so a restart agrees.
+        let mut restarted: Vec<(String, String)> = Vec::new();
+        for id in &ids {
+            if let Some(a) = self.alerts.get(id)
+                && !restarted.contains(&(a.characteristic.clone(), a.rule.clone()))
+                && let Some(c) = self.chars.get_mut(&a.characteristic)
+                && let Mode::Monitoring { points, .. } = &mut c.mode
+                && points.restart_after_acknowledgement(&a.rule)
+            {
+                restarted.push((a.characteristic.clone(), a.rule.clone()));
+            }
+        }
+        for (characteristic, rule) in restarted {
+            if let Some(c) = self.chars.get(&characteristic) {
+                out.push(Output::Record(c.saved_record()));
+                out.push(Output::Log {
+                    level: Level::Info,
+                    characteristic,
+                    message: format!(
+                        "the {rule} sums start again from the head start after the acknowledgement (restart = \"on-acknowledge\")"
+                    ),
+                });
+            }
+        }
+        Ok((ids, out))
     }
 
     /// An output delivered `version` of alert `id`.

@@ -122,7 +122,11 @@ pub fn arl(set: &RuleSet, shifts: &[f64], opts: &ArlOptions) -> Result<Vec<ArlRe
     }
     // With a head start both sums start above zero together, and the two one-sided ARLs no
     // longer combine: that case is simulated (with its interval), not computed.
-    if let [RuleKind::Cusum { k, h, head_start }] = location[..]
+    if let [
+        RuleKind::Cusum {
+            k, h, head_start, ..
+        },
+    ] = location[..]
         && *head_start == 0.0
     {
         return Ok(shifts

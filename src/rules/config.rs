@@ -73,6 +73,8 @@ pub struct RawRule {
     pub k: Option<f64>,
     pub h: Option<f64>,
     pub head_start: Option<f64>,
+    /// CUSUM: `"on-acknowledge"` (the default) or `"never"`.
+    pub restart: Option<String>,
     pub repeats: Option<u32>,
     pub min: Option<f64>,
     pub max: Option<f64>,
@@ -110,7 +112,14 @@ pub enum RuleKind {
     /// The EWMA of the standardized points beyond its asymptotic limits.
     Ewma { lambda: f64, width: f64 },
     /// A tabular CUSUM sum beyond its decision interval.
-    Cusum { k: f64, h: f64, head_start: f64 },
+    Cusum {
+        k: f64,
+        h: f64,
+        head_start: f64,
+        /// Both sums go back to the head start when an alert of this rule is acknowledged (the
+        /// corrective action), so old evidence does not hold the alert after the fix.
+        restart_on_acknowledge: bool,
+    },
     /// A single reading outside the specification limits.
     OutsideSpec,
     /// The same reading `repeats` times running.
@@ -422,10 +431,24 @@ fn build(raw: &RawRule, here: &str, loc: &Locator) -> Result<Rule, Vec<Problem>>
             let k = p.real_from("k", 0.0, 3.0, None);
             let h = p.real("h", 0.0, 20.0, None);
             let head_start = p.real_from("head_start", 0.0, 0.99, Some(0.0));
+            p.used.push("restart");
+            let restart_on_acknowledge = match p.raw.restart.as_deref() {
+                None | Some("on-acknowledge") => true,
+                Some("never") => false,
+                Some(other) => {
+                    let other = other.to_string();
+                    p.bad(
+                        "restart",
+                        format!("\"{other}\" is not a restart; use \"on-acknowledge\" (the default: both sums back to the head start when its alert is acknowledged) or \"never\""),
+                    );
+                    true
+                }
+            };
             Some(RuleKind::Cusum {
                 k: k.unwrap_or(0.5),
                 h: h.unwrap_or(5.0),
                 head_start: head_start.unwrap_or(0.0),
+                restart_on_acknowledge,
             })
         }
         "outside-spec" => Some(RuleKind::OutsideSpec),
@@ -618,7 +641,7 @@ impl Checker<'_, '_> {
     /// Reports parameters given that the kind does not take.
     fn unused(&mut self, kind: &str) {
         let r = self.raw;
-        let given: [(&'static str, bool); 16] = [
+        let given: [(&'static str, bool); 17] = [
             ("chart", r.chart.is_some()),
             ("count", r.count.is_some()),
             ("window", r.window.is_some()),
@@ -630,6 +653,7 @@ impl Checker<'_, '_> {
             ("k", r.k.is_some()),
             ("h", r.h.is_some()),
             ("head_start", r.head_start.is_some()),
+            ("restart", r.restart.is_some()),
             ("repeats", r.repeats.is_some()),
             ("min", r.min.is_some()),
             ("max", r.max.is_some()),

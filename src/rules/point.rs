@@ -276,6 +276,25 @@ impl PointEvaluator {
         self.state.last_z = None;
     }
 
+    /// Restarts the rule `id` after its alert was acknowledged (the corrective action), when it
+    /// is a CUSUM that says so: both sums back to the head start (zero without one). True when
+    /// a state was restarted.
+    pub fn restart_after_acknowledgement(&mut self, id: &str) -> bool {
+        let mut restarted = false;
+        for (r, st) in self.rules.iter().zip(self.state.rules.iter_mut()) {
+            if r.id == id
+                && let RuleKind::Cusum {
+                    restart_on_acknowledge: true,
+                    ..
+                } = r.kind
+            {
+                *st = initial(&r.kind);
+                restarted = true;
+            }
+        }
+        restarted
+    }
+
     /// The rules evaluated, in order.
     pub fn rules(&self) -> &[Rule] {
         &self.rules
@@ -660,9 +679,9 @@ fn initial(kind: &RuleKind) -> RuleState {
             let d = ewma_design(*lambda, *width);
             RuleState::Ewma(EwmaState::start(&d))
         }
-        RuleKind::Cusum { k, h, head_start } => {
-            RuleState::Cusum(CusumState::start(&cusum_design(*k, *h, *head_start)))
-        }
+        RuleKind::Cusum {
+            k, h, head_start, ..
+        } => RuleState::Cusum(CusumState::start(&cusum_design(*k, *h, *head_start))),
         _ => RuleState::Stateless,
     }
 }
@@ -789,7 +808,12 @@ fn advance(
             let e = st.update(&d, z);
             d.asymptotic().beyond(e)
         }
-        (RuleKind::Cusum { k, h, head_start }, RuleState::Cusum(st)) => {
+        (
+            RuleKind::Cusum {
+                k, h, head_start, ..
+            },
+            RuleState::Cusum(st),
+        ) => {
             let s = st.update(&cusum_design(*k, *h, *head_start), z);
             s.upper || s.lower
         }
