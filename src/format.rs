@@ -67,14 +67,18 @@ pub fn sig_pair(value: f64, limit: f64) -> (String, String) {
 /// [`sig_pair`] starting from `digits` significant digits (Cpk 1.3298 against 1.33 prints
 /// `1.3298` and `1.33`, never `1.33` against `1.33`).
 pub fn sig_pair_at(value: f64, limit: f64, digits: usize) -> (String, String) {
-    let mut digits = digits;
-    loop {
-        let (a, b) = (sig(value, digits), sig(limit, digits));
-        if a != b || value == limit || digits >= 17 {
-            return (a, b);
-        }
-        digits += 1;
+    let d = pair_digits(value, limit, digits);
+    (sig(value, d), sig(limit, d))
+}
+
+/// The significant digits, from `digits` up, at which `value` and `limit` print apart (or
+/// equal, when they are): what [`sig_pair_at`] prints with, for figures printed beside them.
+pub fn pair_digits(value: f64, limit: f64, digits: usize) -> usize {
+    let mut d = digits;
+    while sig(value, d) == sig(limit, d) && value != limit && d < 17 {
+        d += 1;
     }
+    d
 }
 
 /// An expected nonconforming rate in parts per million: three significant digits, and

@@ -1229,7 +1229,7 @@ fn check_cmd(path: &std::path::Path) -> Result<()> {
             (Some(_), Some(p)) => format!("limits from {}", p.display()),
             (None, Some(p)) => {
                 // A typo in the path would quietly switch the characteristic to learning: say it.
-                if let Some(f) = missing.or(ch.configured_limits.as_ref()) {
+                if let Some(f) = ch.configured_limits.as_ref() {
                     let dir = p.parent().filter(|d| !d.as_os_str().is_empty());
                     eprintln!(
                         "warning: {}: characteristic \"{}\": the limits file {} does not exist, so it will learn provisional limits from its first {} subgroups and write them to {}{}",

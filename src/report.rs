@@ -93,8 +93,8 @@ pub fn study(source: &str, s: &Study, cap: Option<(&Spec, &Capability)>) -> Stri
         } else {
             a.lag2
         };
-        let (_, bound) = crate::format::sig_pair_at(big.abs(), a.bound, 3);
-        let digits = bound.trim_start_matches("0.").len().max(3);
+        let digits = crate::format::pair_digits(big.abs(), a.bound, 3);
+        let bound = crate::format::sig(a.bound, digits);
         let _ = writeln!(
             out,
             "  {:<24} {} {} at lag 1 and {} at lag 2, {} ±{bound} (the 95% bound for independent points)",

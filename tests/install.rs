@@ -132,6 +132,18 @@ fn point_into(root: &Path) {
     std::fs::set_permissions(&run, std::fs::Permissions::from_mode(0o750)).unwrap();
 }
 
+/// A temporary root with linewarden installed and its config pointed into it, or `None` when
+/// `test` must skip (not root).
+fn installed(test: &str) -> Option<tempfile::TempDir> {
+    if !root_or_skip(test) {
+        return None;
+    }
+    let dir = temp_root();
+    install(dir.path());
+    point_into(dir.path());
+    Some(dir)
+}
+
 #[test]
 fn install_script_lays_out_owners_and_modes_and_is_idempotent() {
     if !root_or_skip("install_script_lays_out_owners_and_modes_and_is_idempotent") {
@@ -250,13 +262,11 @@ fn spawn_logged(mut c: Command, log: &Path) -> Child {
 fn installed_daemon_runs_as_the_service_user_with_a_read_only_config() {
     use linewarden::archive::reader::{Filter, Reader};
     use linewarden::archive::record::Record;
-    if !root_or_skip("installed_daemon_runs_as_the_service_user_with_a_read_only_config") {
+    let Some(dir) = installed("installed_daemon_runs_as_the_service_user_with_a_read_only_config")
+    else {
         return;
-    }
-    let dir = temp_root();
+    };
     let r = dir.path();
-    install(r);
-    point_into(r);
     let cfg = r.join("etc/linewarden/cell.toml");
     let cfg_s = cfg.to_str().unwrap();
     let etc = r.join("etc");
@@ -372,13 +382,12 @@ fn installed_daemon_runs_as_the_service_user_with_a_read_only_config() {
 /// the service cannot write there.
 #[test]
 fn check_warns_when_learned_limits_would_go_where_the_service_cannot_write() {
-    if !root_or_skip("check_warns_when_learned_limits_would_go_where_the_service_cannot_write") {
+    let Some(dir) =
+        installed("check_warns_when_learned_limits_would_go_where_the_service_cannot_write")
+    else {
         return;
-    }
-    let dir = temp_root();
+    };
     let r = dir.path();
-    install(r);
-    point_into(r);
     let cfg = r.join("etc/linewarden/cell.toml");
     let text = std::fs::read_to_string(&cfg).unwrap();
     let text: String = text
