@@ -92,6 +92,17 @@ pub fn ppm(p: f64) -> String {
     }
 }
 
+/// A p-value: three significant digits, and `< 0.0001` below that (the approximations behind
+/// small p-values are not exact, and a printed `p = 0` would claim an impossibility).
+/// Written to follow "p": `= 0.0312` or `< 0.0001`.
+pub fn p_words(p: f64) -> String {
+    if p < 0.0001 {
+        "< 0.0001".to_string()
+    } else {
+        format!("= {}", sig(p, 3))
+    }
+}
+
 /// Decimals that show the figures of a chart whose plotted points have standard deviation
 /// `spread`: one significant digit past the spread's first (a mean with sigma 0.002 mm prints
 /// as 12.0043), at most 8. Common practice: show one digit more than the variation resolves.

@@ -297,6 +297,10 @@ struct SpecArgs {
     /// Cpk a capable process must reach.
     #[arg(long, default_value_t = capability::DEFAULT_THRESHOLD)]
     capable_at: f64,
+    /// Pp, Ppk and ppm by the percentile method (ISO 22514-2) from a fitted model: normal,
+    /// lognormal, weibull, box-cox, or best (the smallest Anderson–Darling statistic).
+    #[arg(long, value_name = "NAME")]
+    distribution: Option<String>,
 }
 
 #[derive(Args)]
@@ -560,6 +564,9 @@ fn spec_of(a: &SpecArgs) -> Result<Option<Spec>> {
         if a.target.is_some() {
             bail!("--target needs --lsl and/or --usl");
         }
+        if a.distribution.is_some() {
+            bail!("--distribution needs --lsl and/or --usl");
+        }
         return Ok(None);
     }
     let spec = Spec {
@@ -576,6 +583,13 @@ fn spec_of(a: &SpecArgs) -> Result<Option<Spec>> {
     if !(a.capable_at > 0.0 && a.capable_at.is_finite()) {
         bail!("--capable-at {} must be a positive number", a.capable_at);
     }
+    if let Some(name) = &a.distribution
+        && capability::DistributionChoice::parse(name).is_none()
+    {
+        bail!(
+            "--distribution {name:?} is not a model linewarden fits; use normal, lognormal, weibull, box-cox or best"
+        );
+    }
     Ok(Some(spec))
 }
 
@@ -583,15 +597,18 @@ fn capability_of(
     s: &Study,
     subgroups: &[Vec<f64>],
     spec: &Spec,
-    threshold: f64,
+    args: &SpecArgs,
 ) -> Result<Capability> {
     let readings = s.included_readings(subgroups);
-    Ok(capability::capability(
-        &readings,
-        s.estimate.sigma_within,
-        spec,
-        threshold,
-    )?)
+    let mut c = capability::capability(&readings, s.estimate.sigma_within, spec, args.capable_at)?;
+    if let Some(name) = &args.distribution {
+        let Some(choice) = capability::DistributionChoice::parse(name) else {
+            bail!("--distribution {name:?} is not a model linewarden fits");
+        };
+        capability::percentile_method(&mut c, &readings, spec, choice)
+            .with_context(|| format!("--distribution {name}"))?;
+    }
+    Ok(c)
 }
 
 fn limits(a: LimitsArgs) -> Result<()> {
@@ -605,7 +622,7 @@ fn limits(a: LimitsArgs) -> Result<()> {
     let spec = spec_of(&a.spec)?;
     let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
     let cap = match &spec {
-        Some(spec) => Some(capability_of(&s, &subgroups, spec, a.spec.capable_at)?),
+        Some(spec) => Some(capability_of(&s, &subgroups, spec, &a.spec)?),
         None => None,
     };
     let source = a.input.input.display().to_string();
@@ -647,7 +664,7 @@ fn capability_cmd(a: CapabilityArgs) -> Result<()> {
         bail!("capability needs --lsl and/or --usl");
     };
     let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
-    let cap = capability_of(&s, &subgroups, &spec, a.spec.capable_at)?;
+    let cap = capability_of(&s, &subgroups, &spec, &a.spec)?;
     warnings.extend(s.warnings.iter().cloned());
     if a.json {
         // Every warning, the capability's own (normality) included: the text report has them.

@@ -223,19 +223,20 @@ pub fn capability(spec: &Spec, c: &Capability) -> String {
     );
     row(&mut out, "Cpu", c.cpu, None, "");
     row(&mut out, "Cpl", c.cpl, None, "");
-    row(
-        &mut out,
-        "Pp",
-        c.pp,
-        c.pp_ci95,
-        "from the spread of all readings",
-    );
+    let overall_note = match &c.distribution {
+        Some(d) => format!(
+            "from the fitted {} model's quantiles (percentile method, ISO 22514-2; bootstrap interval)",
+            family_words(d.name)
+        ),
+        None => "from the spread of all readings".to_string(),
+    };
+    row(&mut out, "Pp", c.pp, c.pp_ci95, &overall_note);
     row(
         &mut out,
         "Ppk",
         Some(c.ppk),
         Some(c.ppk_ci95),
-        "from the spread of all readings",
+        &overall_note,
     );
     row(
         &mut out,
@@ -244,18 +245,35 @@ pub fn capability(spec: &Spec, c: &Capability) -> String {
         None,
         "from the spread of all readings and the distance from target",
     );
-    let ppm = |v: Option<f64>| v.map(crate::format::ppm).unwrap_or_else(|| "-".to_string());
+    // Only the sides the specification has: a one-sided specification has no ppm on the other.
+    let sides = |below: Option<f64>, above: Option<f64>, long: bool| {
+        let (b, a) = if long {
+            ("below the LSL", "above the USL")
+        } else {
+            ("below", "above")
+        };
+        let parts: Vec<String> = [(below, b), (above, a)]
+            .into_iter()
+            .filter_map(|(v, side)| v.map(|v| format!("{} ppm {side}", crate::format::ppm(v))))
+            .collect();
+        parts.join(" and ")
+    };
+    let overall = sides(c.ppm_below, c.ppm_above, true);
+    let _ = match &c.distribution {
+        Some(d) => writeln!(
+            out,
+            "  parts outside the specification, from the fitted {} model: {overall}",
+            family_words(d.name),
+        ),
+        None => writeln!(
+            out,
+            "  parts outside the specification, if the readings are normal: {overall}, judged from the spread of all readings",
+        ),
+    };
     let _ = writeln!(
         out,
-        "  parts outside the specification, if the readings are normal: {} ppm below the LSL and {} ppm above the USL, judged from the spread of all readings",
-        ppm(c.ppm_below),
-        ppm(c.ppm_above),
-    );
-    let _ = writeln!(
-        out,
-        "  judged from the spread inside subgroups instead (what the process would give without the variation between subgroups): {} ppm below, {} ppm above",
-        ppm(c.ppm_below_within),
-        ppm(c.ppm_above_within)
+        "  judged from the spread inside subgroups instead (what the process would give without the variation between subgroups): {}",
+        sides(c.ppm_below_within, c.ppm_above_within, false)
     );
     match &c.normality {
         Some(ad) => {
@@ -266,31 +284,90 @@ pub fn capability(spec: &Spec, c: &Capability) -> String {
             };
             let _ = writeln!(
                 out,
-                "  normality: Anderson–Darling A² = {} (adjusted {}), p = {}: {verdict}",
+                "  normality: Anderson–Darling A² = {} (adjusted {}), p {}: {verdict}",
                 sig(ad.a2, 4),
                 sig(ad.a2_adjusted, 4),
-                sig(ad.p_value, 3)
+                crate::format::p_words(ad.p_value)
             );
         }
         None => {
             let _ = writeln!(out, "  normality: not checked (too few readings)");
         }
     }
+    if let Some(d) = &c.distribution {
+        model_lines(&mut out, d);
+    }
     // Each figure printed with as many digits as its comparison needs to read true.
-    let (cpk, t) = crate::format::sig_pair_at(c.cpk, c.threshold, 3);
-    let (lower, _) = crate::format::sig_pair_at(c.cpk_ci95[0], c.threshold, 3);
+    let (index, value, lower, head) = match c.distribution {
+        Some(_) => ("Ppk", c.ppk, c.ppk_ci95[0], "verdict (percentile method)"),
+        None => ("Cpk", c.cpk, c.cpk_ci95[0], "verdict"),
+    };
+    let (value, t) = crate::format::sig_pair_at(value, c.threshold, 3);
+    let (lower, _) = crate::format::sig_pair_at(lower, c.threshold, 3);
     let _ = match c.verdict {
         Verdict::Capable => writeln!(
             out,
-            "  verdict: capable: Cpk {cpk} reaches {t}, and so does its 95% lower bound {lower}"
+            "  {head}: capable: {index} {value} reaches {t}, and so does its 95% lower bound {lower}"
         ),
         Verdict::CapableUnproven => writeln!(
             out,
-            "  verdict: capable but not yet proven: Cpk {cpk} reaches {t}, but its 95% lower bound {lower} does not; collect more data"
+            "  {head}: capable but not yet proven: {index} {value} reaches {t}, but its 95% lower bound {lower} does not; collect more data"
         ),
-        Verdict::NotCapable => writeln!(out, "  verdict: not capable: Cpk {cpk} is below {t}"),
+        Verdict::NotCapable => {
+            writeln!(out, "  {head}: not capable: {index} {value} is below {t}")
+        }
     };
     out
+}
+
+fn family_words(key: &str) -> &'static str {
+    crate::stats::distributions::Family::from_key(key)
+        .map(|f| f.words())
+        .unwrap_or("fitted")
+}
+
+/// The fitted model of the percentile method: parameters, quantiles, and how well each
+/// candidate fitted.
+fn model_lines(out: &mut String, d: &crate::stats::capability::DistributionFit) {
+    let params: Vec<String> = d
+        .parameters
+        .iter()
+        .map(|(k, v)| format!("{} {}", k.replace('_', " "), sig(*v, 4)))
+        .collect();
+    let how = if d.chosen_by == "named" {
+        "as asked"
+    } else {
+        "the best fit of those tried"
+    };
+    let _ = writeln!(
+        out,
+        "  model: {} ({}), {how}; Anderson–Darling A² {} against it",
+        family_words(d.name),
+        params.join(", "),
+        sig(d.ad_statistic, 3)
+    );
+    let [lo, mid, hi] = d.quantiles;
+    let _ = writeln!(
+        out,
+        "    its 0.135% point {}, median {}, 99.865% point {}",
+        sig(lo, 4),
+        sig(mid, 4),
+        sig(hi, 4)
+    );
+    let fits: Vec<String> = d
+        .candidates
+        .iter()
+        .map(|c| match c.ad_statistic {
+            Some(a) => format!("{} {}", family_words(c.name), sig(a, 3)),
+            None => format!("{} not fitted", family_words(c.name)),
+        })
+        .collect();
+    let _ = writeln!(
+        out,
+        "    A² of each model tried (smaller fits better): {}",
+        fits.join(", ")
+    );
+    let _ = writeln!(out, "    intervals: {}", d.interval_method);
 }
 
 /// A standalone capability report (the `capability` command), with its warnings.

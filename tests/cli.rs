@@ -853,3 +853,140 @@ fn capability_json_carries_the_normality_warning_and_comparisons_read_true() {
         }
     }
 }
+
+#[test]
+fn percentile_capability_from_a_fitted_model_and_its_bad_requests() {
+    let dir = tempfile::tempdir().unwrap();
+    // Right-skewed readings (a lognormal shape), one per row; all above zero.
+    let mut text = String::from("value\n");
+    for i in 1..=60 {
+        let u = (i as f64 - 0.5) / 60.0;
+        let z = statrs::distribution::ContinuousCDF::inverse_cdf(
+            &statrs::distribution::Normal::standard(),
+            u,
+        );
+        text.push_str(&format!("{:.4}\n", (0.3 * z).exp()));
+    }
+    let good = write(dir.path(), "skewed.csv", &text);
+    let base = |extra: &[&str]| {
+        let mut args = vec![
+            "capability",
+            "--input",
+            &good,
+            "--layout",
+            "single",
+            "--lsl",
+            "0.2",
+            "--usl",
+            "3.0",
+        ];
+        args.extend_from_slice(extra);
+        run(&args)
+    };
+    let o = base(&["--distribution", "best", "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_str(&stdout(&o)).unwrap();
+    assert_eq!(v["method"], "percentile");
+    assert_eq!(v["verdict_on"], "ppk");
+    assert_eq!(v["distribution"]["name"], "lognormal", "{v}");
+    assert!(
+        v["distribution"]["parameters"]["log_sigma"]
+            .as_f64()
+            .unwrap()
+            > 0.0
+    );
+    assert!(v["distribution"]["ad_statistic"].as_f64().unwrap() < 0.5);
+    for key in ["pp", "ppk", "ppm_below", "ppm_above", "pp_ci95", "ppk_ci95"] {
+        assert!(!v[key].is_null(), "{key} missing: {v}");
+    }
+    // The text names the method, the model and the index the verdict judges.
+    let o = base(&["--distribution", "lognormal"]);
+    let out = stdout(&o);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(out.contains("model: lognormal"), "{out}");
+    assert!(out.contains("verdict (percentile method)"), "{out}");
+    assert!(out.contains("Ppk"), "{out}");
+
+    // A misspelt model is refused before any file is read, naming the value.
+    let o = base(&["--distribution", "weibul"]);
+    assert!(!o.status.success());
+    assert!(stderr(&o).contains("\"weibul\""), "{}", stderr(&o));
+    // No specification: nothing to judge against.
+    let o = run(&[
+        "limits",
+        "--input",
+        &good,
+        "--layout",
+        "single",
+        "--distribution",
+        "best",
+    ]);
+    assert!(!o.status.success());
+    assert!(
+        stderr(&o).contains("--distribution needs --lsl"),
+        "{}",
+        stderr(&o)
+    );
+
+    // A reading at or below zero: the positive models refuse it by value; `best` falls back on
+    // what can be fitted and says why the others were not.
+    let bad = write(
+        dir.path(),
+        "zero.csv",
+        &text.replacen("\n", "\n-0.0020\n", 1),
+    );
+    let args = |model: &'static str| {
+        vec![
+            "capability",
+            "--input",
+            bad.as_str(),
+            "--layout",
+            "single",
+            "--lsl",
+            "-1",
+            "--usl",
+            "3.0",
+            "--distribution",
+            model,
+            "--json",
+        ]
+    };
+    let o = run(&args("weibull"));
+    assert!(!o.status.success());
+    let err = stderr(&o);
+    assert!(
+        err.contains("--distribution weibull") && err.contains("-0.002"),
+        "{err}"
+    );
+    let o = run(&args("best"));
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_str(&stdout(&o)).unwrap();
+    assert_eq!(v["distribution"]["name"], "normal");
+    let candidates = v["distribution"]["candidates"].as_array().unwrap();
+    assert_eq!(candidates.len(), 4);
+    assert!(
+        candidates
+            .iter()
+            .filter(|c| c["ad_statistic"].is_null())
+            .all(|c| c["not_fitted"].as_str().unwrap().contains("above zero"))
+    );
+
+    // limits takes the same option, and its JSON carries the same capability object.
+    let o = run(&[
+        "limits",
+        "--input",
+        &good,
+        "--layout",
+        "single",
+        "--lsl",
+        "0.2",
+        "--usl",
+        "3.0",
+        "--distribution",
+        "best",
+        "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_str(&stdout(&o)).unwrap();
+    assert_eq!(v["capability"]["method"], "percentile");
+}

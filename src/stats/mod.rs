@@ -7,6 +7,7 @@ pub mod attributes;
 pub mod capability;
 pub mod constants;
 pub mod cusum;
+pub mod distributions;
 pub mod ewma;
 pub mod learning;
 pub mod normality;
@@ -56,6 +57,8 @@ pub enum StatsError {
     NoSpec,
     #[error("subgroup {subgroup} is not in the data (subgroups are numbered 1 to {total})")]
     UnknownSubgroup { subgroup: usize, total: usize },
+    #[error(transparent)]
+    Fit(#[from] distributions::FitError),
 }
 
 /// A centre line with its upper and lower control limits.
