@@ -77,7 +77,7 @@ fn payloads(c: &mut Criterion) {
     let plain = source(Payload::Plain);
     g.bench_function("plain", |b| {
         b.iter(|| {
-            linewarden::daemon::mqtt::parse(
+            linewarden::daemon::sources::mqtt::parse(
                 &plain,
                 black_box("cell4/vb210-bore/measure"),
                 black_box(b"12.0031"),
@@ -94,7 +94,7 @@ fn payloads(c: &mut Criterion) {
     let body = br#"{"value": 12.0031, "at": "2026-12-02T08:15:03.250Z", "part": "VB00417"}"#;
     g.bench_function("json (value, RFC 3339 time, part)", |b| {
         b.iter(|| {
-            linewarden::daemon::mqtt::parse(
+            linewarden::daemon::sources::mqtt::parse(
                 &json,
                 black_box("cell4/vb210-bore/measure"),
                 black_box(body),

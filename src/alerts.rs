@@ -16,8 +16,79 @@ use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
 
-use crate::archive::record::AlertEvent;
 use crate::rules::{Chart, PointRef, Severity, Side, Violation};
+
+/// An alert's life events, as the archive records them and the book applies them.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "event", rename_all = "kebab-case")]
+pub enum AlertEvent {
+    Raised {
+        rule: String,
+        severity: crate::rules::Severity,
+        message: String,
+        #[serde(default)]
+        level: Level,
+        #[serde(default)]
+        points: Vec<crate::rules::PointRef>,
+        statistic: f64,
+        limit: f64,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        reaction_plan: Option<String>,
+        at_ms: i64,
+        /// The chart the cause was seen on.
+        #[serde(default)]
+        chart: crate::rules::Chart,
+        /// Which way the process moved, where the rule has a side.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        side: Option<crate::rules::Side>,
+        /// The parts involved: the reading's part, or the parts of the subgroup that completed
+        /// the signal, when the source names parts.
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        parts: Vec<String>,
+        /// Raised against provisional limits; `capped_from` is the rule's own severity when
+        /// the cap lowered it.
+        #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+        provisional: bool,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        capped_from: Option<crate::rules::Severity>,
+    },
+    /// The same cause (rule, chart and side) fired again while the alert was not cleared.
+    Repeated {
+        count: u64,
+        at_ms: i64,
+        message: String,
+        #[serde(default)]
+        points: Vec<crate::rules::PointRef>,
+        statistic: f64,
+        /// The limit of this firing (older records did not carry it: the raise's stands).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        limit: Option<f64>,
+        #[serde(default, skip_serializing_if = "Vec::is_empty")]
+        parts: Vec<String>,
+    },
+    /// The condition is gone, but the alert waits for acknowledgement.
+    Gone {
+        at_ms: i64,
+    },
+    Acknowledged {
+        by: String,
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        note: Option<String>,
+        at_ms: i64,
+    },
+    Cleared {
+        at_ms: i64,
+    },
+    /// Left unacknowledged too long: the escalation outputs get it.
+    Escalated {
+        at_ms: i64,
+    },
+    /// An output delivered this version of the alert.
+    Delivered {
+        output: String,
+        version: u32,
+    },
+}
 
 /// Cleared alerts kept per characteristic (for status and for deliveries still pending).
 pub const KEEP_CLEARED: usize = 10;

@@ -14,7 +14,7 @@ use crate::archive::segment;
 /// frame through the gauge's pattern: a reading with a finite value, or a rejection with a
 /// reason.
 pub fn serial_frames(data: &[u8]) {
-    use crate::daemon::SourceEvent;
+    use crate::daemon::sources::SourceEvent;
     let Some(gauge) = serial_gauge() else {
         return;
     };
@@ -22,7 +22,7 @@ pub fn serial_frames(data: &[u8]) {
         return;
     };
     for frame in data.split(|b| *b == b'\n') {
-        match crate::daemon::serial::frame_event(&gauge, &re, "serial:fuzz", frame) {
+        match crate::daemon::sources::serial::frame_event(&gauge, &re, "serial:fuzz", frame) {
             Some(SourceEvent::Reading(r)) => assert!(r.value.is_finite()),
             Some(SourceEvent::Unreadable { reason, .. }) => assert!(!reason.is_empty()),
             Some(_) => panic!("a frame became something other than a reading or a rejection"),
@@ -75,7 +75,7 @@ pub fn mqtt_payload(data: &[u8]) {
     });
     for src in [&plain, &json] {
         for t in [topic.as_ref(), "cell/face/m"] {
-            match crate::daemon::mqtt::parse(src, t, payload) {
+            match crate::daemon::sources::mqtt::parse(src, t, payload) {
                 Ok(r) => assert!(!r.characteristic.is_empty()),
                 Err(u) => assert!(!u.reason.is_empty()),
             }
@@ -103,7 +103,7 @@ pub fn csv_report(data: &[u8]) {
     };
     for rows in [&per_part, &per_reading] {
         if let Ok((readings, bad)) =
-            crate::daemon::folder::parse(&text, "fuzz.csv", rows, Some("Serial"))
+            crate::daemon::sources::folder::parse(&text, "fuzz.csv", rows, Some("Serial"))
         {
             for r in &readings {
                 assert!(r.2.is_finite());

@@ -6,10 +6,21 @@
 //!   charts ([`stats::variables`]), attribute charts ([`stats::attributes`]), EWMA
 //!   ([`stats::ewma`]) and CUSUM ([`stats::cusum`]), baseline studies ([`stats::study`]) and
 //!   the policy the daemon learns limits with and its simulation ([`stats::learning`]),
-//!   capability ([`stats::capability`]) and normality ([`stats::normality`]). No I/O, no clock,
-//!   no tokio.
+//!   capability ([`stats::capability`]) with fitted models for readings that are not normal
+//!   ([`stats::distributions`]) and normality ([`stats::normality`]). No I/O, no clock, no
+//!   tokio.
 //! * [`rules`] — run rules evaluated incrementally per subgroup and per reading, their TOML
 //!   config and presets, and average run lengths ([`rules::arl`]). Pure, like [`stats`].
+//! * [`engine`] — the pure engine of a cell: reading checks, subgroup assembly, learning,
+//!   rules and the outputs they call for; its state rebuilt from the archive's tail.
+//! * [`alerts`] — the alert lifecycle (pure) and its event type, which the archive records.
+//! * [`config`] — the daemon's TOML configuration, parsed then validated with every problem
+//!   located, one module per section: the file and `[daemon]` in `config`,
+//!   [`config::characteristics`], [`config::sources`], [`config::outputs`].
+//! * [`daemon`] — the tokio shell around the engine: [`daemon::sources`] (replay, folder,
+//!   serial, MQTT, one module each, one event type), [`daemon::outputs`] (stack light, MQTT,
+//!   email), [`daemon::control`] (the status and acknowledgement socket), [`daemon::hub`] (what
+//!   the engine loop publishes to them), [`daemon::notify`] (systemd) and [`daemon::clock`].
 //! * [`archive`] — the append-only record of everything: framed, checksummed, sealed and
 //!   hash-chained segment files; the group-committing writer and its task; readers, `verify`,
 //!   export and state rebuild from checkpoints.
@@ -27,7 +38,12 @@
 //! * [`fuzz_checks`] — the bodies of the fuzz targets for every parser of outside input,
 //!   shared with the property tests that run them in `cargo test`.
 //!
-//! The binary (`src/main.rs`) is a thin command-line shell over these modules.
+//! The binary is a thin command-line shell over these modules: `src/main.rs` parses and
+//! dispatches, and `src/cli/` holds one module per command family (`study`: limits and
+//! capability; `arl`; `archive`; `daemon`: run, check, status, ack and approve).
+//!
+//! Dependencies run one way: `stats` ← `rules` ← `alerts` ← `archive` ← `engine` ← `daemon`,
+//! with `config` read by `engine` and `daemon`; no module imports one that imports it.
 
 pub mod alerts;
 pub mod archive;

@@ -12,9 +12,9 @@ use std::path::{Path, PathBuf};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
+use linewarden::alerts::AlertEvent;
 use linewarden::archive::Record;
 use linewarden::archive::reader::{Filter, Reader};
-use linewarden::archive::record::AlertEvent;
 
 mod common;
 use common::BORE_LIMITS;

@@ -53,7 +53,7 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
             Record::Alert {
                 characteristic,
                 event:
-                    linewarden::archive::record::AlertEvent::Raised {
+                    linewarden::alerts::AlertEvent::Raised {
                         severity,
                         provisional,
                         ..

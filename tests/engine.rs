@@ -296,7 +296,7 @@ fn raised(
     bool,
     Option<linewarden::rules::Severity>,
 )> {
-    use linewarden::archive::record::AlertEvent;
+    use linewarden::alerts::AlertEvent;
     outputs
         .iter()
         .filter_map(|o| match o {

@@ -167,7 +167,7 @@ fn rejected_reasons(archive: &Path) -> Vec<String> {
 #[test]
 fn a_row_whose_field_count_differs_from_the_header_is_never_read_by_position() {
     use linewarden::config::ReportRows;
-    use linewarden::daemon::folder::parse;
+    use linewarden::daemon::sources::folder::parse;
     let rows = ReportRows::PerPart {
         columns: vec![
             ("Bore".into(), "bore".into()),

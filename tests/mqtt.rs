@@ -491,7 +491,7 @@ fn mosquitto_oversized_messages_are_rejected_and_the_source_goes_on() {
 #[test]
 fn recent_keys_include_rejected_messages() {
     use linewarden::archive::writer::{Writer, WriterConfig};
-    use linewarden::daemon::mqtt::{message_key, recent_keys};
+    use linewarden::daemon::sources::mqtt::{message_key, recent_keys};
     let dir = tempfile::tempdir().unwrap();
     let (mut w, _) = Writer::open(WriterConfig::new(dir.path())).unwrap();
     let a = message_key(1, "cell4/bore/measure", b"12.001");

@@ -7,7 +7,7 @@ use std::path::PathBuf;
 
 use serde::{Deserialize, Serialize};
 
-use super::{Broker, Secret, build_broker, host_port, read_password};
+use super::sources::{Broker, Secret, build_broker, host_port, read_password};
 use crate::alerts::{Policies, Policy};
 use crate::diag::{Locator, Problem};
 use crate::limits_file::valid_id;

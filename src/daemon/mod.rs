@@ -9,74 +9,33 @@
 //!   when every source has ended or dropped its sender, saves the engine state, and drops its
 //!   archive handle, so the writer flushes last.
 //!
-//! * [`replay`] — plays a recorded feed file.
-//! * [`folder`] — CSV reports dropped into a watched folder.
-//! * [`serial`] — gauges on serial ports, reopened when unplugged.
-//! * [`notify`] — systemd readiness, watchdog and status notifications.
+//! * [`sources`] — where readings come from (replay, folder, serial, MQTT), one module each,
+//!   all sending the one [`SourceEvent`] type.
+//! * [`outputs`] — where alerts go (stack light, MQTT, email).
+//! * [`control`] — the control socket (status, acknowledgements, approvals); [`hub`] — the
+//!   views the engine loop publishes to outputs and control.
+//! * [`notify`] — systemd readiness, watchdog and status notifications; [`clock`] — the one
+//!   clock.
 
+pub mod clock;
 pub mod control;
-pub mod folder;
 pub mod hub;
-pub mod mqtt;
 pub mod notify;
 pub mod outputs;
-pub mod replay;
-pub mod serial;
+pub mod sources;
+
+pub use clock::now_ms;
+use sources::{SOURCE_QUEUE, SourceEvent};
 
 use std::time::Duration;
 
 use tokio::sync::{mpsc, watch};
-use tracing::Instrument;
 
 use crate::archive::writer::{self, ArchiveHandle, Writer, WriterConfig};
 use crate::archive::{ArchiveError, Record};
-use crate::config::{Config, Source};
+use crate::config::Config;
 use crate::engine::{Engine, Incoming, Level, Output};
 use crate::format::num;
-
-/// Events from sources, in the order they happened.
-#[derive(Debug)]
-pub enum SourceEvent {
-    Reading(Incoming),
-    /// Something arrived that is not a reading.
-    Unreadable {
-        source: String,
-        characteristic: Option<String>,
-        raw: String,
-        reason: String,
-        /// The message's key at its source (see `Record::ReadingRejected`), if it has one.
-        source_key: Option<String>,
-    },
-    /// The source has nothing more to send (a replay that finished).
-    Ended {
-        source: String,
-    },
-    /// Answered once everything sent before it is durable in the archive (a folder source
-    /// moves a report to done/ only then).
-    Barrier(tokio::sync::oneshot::Sender<()>),
-    /// A source connected (up) or lost its device or broker (down), with a word on why.
-    Health {
-        source: String,
-        up: bool,
-        detail: String,
-    },
-}
-
-/// The queue from all sources to the engine.
-pub const SOURCE_QUEUE: usize = 1024;
-
-/// Milliseconds since the Unix epoch, now. The daemon's one clock.
-pub fn now_ms() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_millis() as i64)
-        .unwrap_or(0)
-}
-
-/// The span every log line of a source task carries: its kind and id.
-fn source_span(component: &'static str, id: &str) -> tracing::Span {
-    tracing::info_span!("source", component, id = %id)
-}
 
 /// Why the daemon stopped with an error.
 #[derive(Debug, thiserror::Error)]
@@ -220,84 +179,9 @@ pub async fn run(
     }
     drop(req_tx);
 
-    let mut health: std::collections::BTreeMap<String, hub::SourceHealth> = Default::default();
     let (tx, mut rx) = mpsc::channel(SOURCE_QUEUE);
-    let mut sources = 0;
-    for s in &cfg.sources {
-        let name = match s {
-            Source::Replay { id, file, speed } => {
-                tokio::spawn(
-                    replay::run(
-                        id.clone(),
-                        file.clone(),
-                        *speed,
-                        tx.clone(),
-                        shutdown.clone(),
-                    )
-                    .instrument(source_span("replay", id)),
-                );
-                format!("replay:{id}")
-            }
-            Source::Folder {
-                id,
-                path,
-                rows,
-                part_column,
-                settle_ms,
-            } => {
-                let already =
-                    already_archived(&cfg.archive_dir, &folder::processing_dir(path)).await;
-                let src = folder::FolderSource {
-                    id: id.clone(),
-                    path: path.clone(),
-                    rows: rows.clone(),
-                    part_column: part_column.clone(),
-                    settle_ms: *settle_ms,
-                    already,
-                };
-                tokio::spawn(
-                    folder::run(src, tx.clone(), shutdown.clone())
-                        .instrument(source_span("folder", id)),
-                );
-                format!("folder:{id}")
-            }
-            Source::Serial(g) => {
-                tokio::spawn(
-                    serial::run((**g).clone(), tx.clone(), shutdown.clone())
-                        .instrument(source_span("serial", &g.id)),
-                );
-                format!("serial:{}", g.id)
-            }
-            Source::Mqtt(m) => {
-                let (dir, name) = (cfg.archive_dir.clone(), format!("mqtt:{}", m.id));
-                let known = tokio::task::spawn_blocking(move || mqtt::recent_keys(&dir, &name))
-                    .await
-                    .unwrap_or_default();
-                tokio::spawn(
-                    mqtt::run((**m).clone(), known, tx.clone(), shutdown.clone())
-                        .instrument(source_span("mqtt", &m.id)),
-                );
-                format!("mqtt:{}", m.id)
-            }
-        };
-        // Replay and folder sources are up from the start; serial and MQTT say when they are.
-        let up = matches!(s, Source::Replay { .. } | Source::Folder { .. });
-        health.insert(
-            name.clone(),
-            hub::SourceHealth {
-                source: name,
-                state: if up { "up" } else { "connecting" }.into(),
-                since_ms: now_ms(),
-                last_reading_ms: None,
-                readings: 0,
-                rejected: 0,
-                clock_skewed: 0,
-                detail: String::new(),
-            },
-        );
-        sources += 1;
-    }
-    drop(tx);
+    let mut health = sources::start(&cfg.sources, &cfg.archive_dir, tx, &shutdown).await;
+    let sources = health.len();
     let notifier = std::sync::Arc::new(notify::Notifier::from_env());
     // Progress: the engine loop stamps the time of every turn (a reading or the 1 s tick). The
     // watchdog is pinged only while the loop turns, or while the archive reports a full disk
@@ -728,55 +612,6 @@ async fn take_readings(
     carry_out(archive, cfg, out, summary, fx).await
 }
 
-/// Source keys the archive already holds for reports left in `processing/` by a crash (their
-/// content hash is the key's prefix). Reads the archive only when there are such files.
-async fn already_archived(
-    archive: &std::path::Path,
-    processing: &std::path::Path,
-) -> std::collections::HashSet<String> {
-    let (archive, processing) = (archive.to_path_buf(), processing.to_path_buf());
-    tokio::task::spawn_blocking(move || {
-        let mut prefixes = Vec::new();
-        for e in std::fs::read_dir(&processing)
-            .into_iter()
-            .flatten()
-            .flatten()
-        {
-            if let Ok(bytes) = std::fs::read(e.path()) {
-                prefixes.push(format!("{}:", crate::archive::segment::sha256_hex(&bytes)));
-            }
-        }
-        let mut keys = std::collections::HashSet::new();
-        if prefixes.is_empty() {
-            return keys;
-        }
-        let Ok(r) = crate::archive::reader::Reader::open(&archive) else {
-            return keys;
-        };
-        let filter = crate::archive::reader::Filter {
-            kinds: vec!["reading-accepted".into(), "reading-rejected".into()],
-            ..Default::default()
-        };
-        for e in r.iter(&filter).flatten() {
-            if let Record::ReadingAccepted {
-                source_key: Some(k),
-                ..
-            }
-            | Record::ReadingRejected {
-                source_key: Some(k),
-                ..
-            } = e.record
-                && prefixes.iter().any(|p| k.starts_with(p.as_str()))
-            {
-                keys.insert(k);
-            }
-        }
-        keys
-    })
-    .await
-    .unwrap_or_default()
-}
-
 /// Logs a rejected reading: the first ten, then one in a hundred (a noisy gauge must not flood
 /// the journal); every one is archived and counted.
 fn reject(logged: &mut u64, source: &str, raw: &str, reason: &str) {
@@ -828,7 +663,7 @@ async fn carry_out(
                         cfg,
                         &mut fx.journal,
                     );
-                    if !matches!(event, crate::archive::record::AlertEvent::Delivered { .. }) {
+                    if !matches!(event, crate::alerts::AlertEvent::Delivered { .. }) {
                         fx.alerts_changed = true;
                         fx.dirty.insert(characteristic.clone());
                         fx.alert_chars.insert(characteristic.clone());
@@ -929,12 +764,12 @@ async fn carry_out(
 fn log_alert(
     id: &str,
     characteristic: &str,
-    event: &crate::archive::record::AlertEvent,
+    event: &crate::alerts::AlertEvent,
     decimals: Option<usize>,
     cfg: &Config,
     journal: &mut std::collections::HashMap<String, Journal>,
 ) {
-    use crate::archive::record::AlertEvent as E;
+    use crate::alerts::AlertEvent as E;
     let latch = |s: crate::rules::Severity| cfg.alerts.policies.of(s).acknowledge;
     let parts_words = |parts: &[String]| match parts {
         [] => String::new(),

@@ -17,8 +17,8 @@ use tokio_modbus::slave::Slave;
 
 use super::{Feeds, backoff};
 use crate::config::{ModbusLink, Output, StackLight};
+use crate::daemon::clock::now_ms;
 use crate::daemon::hub::Light;
-use crate::daemon::now_ms;
 
 /// Engine loop silence after which the light shows "off".
 const STALL_MS: i64 = 5000;

@@ -21,8 +21,8 @@ use tokio::sync::{mpsc, oneshot};
 
 use super::{Feeds, Ledger};
 use crate::config::{Broker, Output};
+use crate::daemon::clock::now_ms;
 use crate::daemon::hub::Request;
-use crate::daemon::now_ms;
 
 /// What the event loop task tells the output loop.
 enum Heard {
@@ -62,7 +62,7 @@ pub fn alert_payload(a: &crate::alerts::Alert, first: bool) -> String {
 }
 
 pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
-    let mut opts = match crate::daemon::mqtt::options(&broker, false) {
+    let mut opts = match crate::daemon::sources::mqtt::options(&broker, false) {
         Ok(o) => o,
         Err(e) => {
             tracing::error!("cannot set up the connection to {}: {e}", broker.url());

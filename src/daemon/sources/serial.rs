@@ -14,8 +14,9 @@ use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio::sync::{mpsc, watch};
 use tokio_serial::SerialPortBuilderExt;
 
-use super::{SourceEvent, now_ms};
+use super::SourceEvent;
 use crate::config::SerialGauge;
+use crate::daemon::clock::now_ms;
 use crate::engine::Incoming;
 
 /// The longest frame kept while waiting for a terminator.

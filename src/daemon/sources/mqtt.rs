@@ -21,19 +21,12 @@ use std::time::Duration;
 use rumqttc::{AsyncClient, Event, EventLoop, MqttOptions, Packet, Publish, QoS, Transport};
 use tokio::sync::{mpsc, oneshot, watch};
 
-use super::{SourceEvent, now_ms};
+use super::SourceEvent;
 use crate::config::{Broker, Duplicates, MqttSource, Payload, TopicFilter};
+use crate::daemon::clock::now_ms;
 use crate::engine::Incoming;
 
-/// The largest packet MQTT 3.1.1 can carry (the remaining length field's maximum).
-///
-/// The client takes any packet up to this size. A smaller incoming limit would not protect
-/// anything: MQTT 3.1.1 has no way to tell the broker about it, so a larger message fails to
-/// decode, the connection drops, and the broker sends the same message again on reconnecting,
-/// for ever, with nothing behind it archived. Instead every message is read, and one larger than
-/// the source's `max_payload_bytes` is archived as rejected and acknowledged. To keep huge
-/// messages off the wire altogether, set the broker's own message size limit.
-pub const MAX_PACKET: usize = 268_435_455;
+pub use crate::config::MAX_PACKET;
 
 /// The largest packet this client sends (alerts and states are a few kilobytes).
 const MAX_OUTGOING: usize = 1024 * 1024;

@@ -22,8 +22,9 @@ use std::time::Duration;
 
 use tokio::sync::{mpsc, oneshot, watch};
 
-use super::{SourceEvent, now_ms};
+use super::SourceEvent;
 use crate::config::ReportRows;
+use crate::daemon::clock::now_ms;
 use crate::engine::Incoming;
 
 /// A folder source's settings.
@@ -512,4 +513,53 @@ fn field_count_hint(rec: &csv::StringRecord, expected: usize, unterminated_last:
         };
     }
     " (a field is missing)".into()
+}
+
+/// Source keys the archive already holds for reports left in `processing/` by a crash (their
+/// content hash is the key's prefix). Reads the archive only when there are such files.
+pub async fn already_archived(
+    archive: &std::path::Path,
+    processing: &std::path::Path,
+) -> std::collections::HashSet<String> {
+    let (archive, processing) = (archive.to_path_buf(), processing.to_path_buf());
+    tokio::task::spawn_blocking(move || {
+        let mut prefixes = Vec::new();
+        for e in std::fs::read_dir(&processing)
+            .into_iter()
+            .flatten()
+            .flatten()
+        {
+            if let Ok(bytes) = std::fs::read(e.path()) {
+                prefixes.push(format!("{}:", crate::archive::segment::sha256_hex(&bytes)));
+            }
+        }
+        let mut keys = std::collections::HashSet::new();
+        if prefixes.is_empty() {
+            return keys;
+        }
+        let Ok(r) = crate::archive::reader::Reader::open(&archive) else {
+            return keys;
+        };
+        let filter = crate::archive::reader::Filter {
+            kinds: vec!["reading-accepted".into(), "reading-rejected".into()],
+            ..Default::default()
+        };
+        for e in r.iter(&filter).flatten() {
+            if let crate::archive::Record::ReadingAccepted {
+                source_key: Some(k),
+                ..
+            }
+            | crate::archive::Record::ReadingRejected {
+                source_key: Some(k),
+                ..
+            } = e.record
+                && prefixes.iter().any(|p| k.starts_with(p.as_str()))
+            {
+                keys.insert(k);
+            }
+        }
+        keys
+    })
+    .await
+    .unwrap_or_default()
 }

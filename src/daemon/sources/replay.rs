@@ -12,7 +12,8 @@ use serde::Deserialize;
 use tokio::io::AsyncBufReadExt;
 use tokio::sync::{mpsc, watch};
 
-use super::{SourceEvent, now_ms};
+use super::SourceEvent;
+use crate::daemon::clock::now_ms;
 use crate::engine::Incoming;
 
 #[derive(Deserialize)]

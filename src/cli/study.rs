@@ -1,0 +1,376 @@
+//! `limits` and `capability`: baseline studies from CSV files.
+
+use std::path::PathBuf;
+
+use anyhow::{Context, Result, bail};
+use clap::{Args, ValueEnum};
+use serde_json::json;
+
+use linewarden::input::{self, InputOptions, Layout};
+use linewarden::limits_file::{StoredLimits, valid_id};
+use linewarden::report;
+use linewarden::stats::capability::{self, Capability, Spec};
+use linewarden::stats::study::{self, Study, StudyOptions};
+use linewarden::stats::variables::{SigmaEstimator, VariablesChart};
+
+#[derive(Clone, Copy, ValueEnum)]
+pub(crate) enum ChartArg {
+    XbarR,
+    XbarS,
+    Individuals,
+}
+
+impl From<ChartArg> for VariablesChart {
+    fn from(c: ChartArg) -> Self {
+        match c {
+            ChartArg::XbarR => VariablesChart::XbarR,
+            ChartArg::XbarS => VariablesChart::XbarS,
+            ChartArg::Individuals => VariablesChart::Individuals,
+        }
+    }
+}
+
+#[derive(Args)]
+pub(crate) struct InputArgs {
+    /// CSV file with the readings.
+    #[arg(long, value_name = "FILE")]
+    pub(crate) input: PathBuf,
+    /// wide: a row per subgroup; long: subgroup and value columns; single: a reading per row.
+    #[arg(long, value_enum, default_value = "wide")]
+    pub(crate) layout: Layout,
+    /// Column(s) holding readings, by header name (wide: several, comma-separated; long and
+    /// single: one). Long layout default: "value".
+    #[arg(long, value_name = "NAME", value_delimiter = ',')]
+    pub(crate) value_column: Vec<String>,
+    /// Column holding the subgroup key (long layout).
+    #[arg(long, value_name = "NAME", default_value = "subgroup")]
+    pub(crate) subgroup_column: String,
+    /// Consecutive readings per subgroup (single layout).
+    #[arg(long, value_name = "N")]
+    pub(crate) subgroup_size: Option<usize>,
+    /// Field separator: one character, or `tab` (also `\t`), `semicolon`, `comma`.
+    #[arg(long, default_value = ",", value_name = "CHAR")]
+    pub(crate) delimiter: String,
+    /// Readings use a decimal comma (`12,0026`), as semicolon-separated spreadsheet exports
+    /// in many countries do.
+    #[arg(long)]
+    pub(crate) decimal_comma: bool,
+    /// Chart to estimate sigma with. Default: individuals for single readings, X̄-R for
+    /// subgroups up to 10, X̄-S above.
+    #[arg(long, value_enum)]
+    pub(crate) chart: Option<ChartArg>,
+}
+
+#[derive(Args)]
+pub(crate) struct SpecArgs {
+    /// Lower specification limit.
+    #[arg(long, allow_hyphen_values = true)]
+    pub(crate) lsl: Option<f64>,
+    /// Upper specification limit.
+    #[arg(long, allow_hyphen_values = true)]
+    pub(crate) usl: Option<f64>,
+    /// Nominal (target) value, for Cpm.
+    #[arg(long, allow_hyphen_values = true)]
+    pub(crate) target: Option<f64>,
+    /// Cpk a capable process must reach.
+    #[arg(long, default_value_t = capability::DEFAULT_THRESHOLD)]
+    pub(crate) capable_at: f64,
+    /// Pp, Ppk and ppm by the percentile method (ISO 22514-2) from a fitted model: normal,
+    /// lognormal, weibull, box-cox, or best (the smallest Anderson–Darling statistic).
+    #[arg(long, value_name = "NAME")]
+    pub(crate) distribution: Option<String>,
+}
+
+#[derive(Args)]
+pub(crate) struct ExcludeArgs {
+    /// Subgroups (numbered from 1 in file order) to leave out, for known assignable causes.
+    #[arg(long, value_name = "LIST", value_delimiter = ',')]
+    pub(crate) exclude: Vec<usize>,
+    /// Exclude subgroups beyond the trial limits and recompute until none remain.
+    #[arg(long)]
+    pub(crate) auto_exclude: bool,
+    /// Cap on rounds of automatic exclusion.
+    #[arg(long, default_value_t = 10)]
+    pub(crate) max_iterations: usize,
+    /// How sigma is estimated from the subgroups: auto (the chart's published estimator),
+    /// mean-range or burr-weighted-range (X̄-R), mean-sd or pooled-sd (X̄-S). They differ only
+    /// when subgroup sizes vary.
+    #[arg(long, value_name = "NAME", default_value = "auto")]
+    pub(crate) sigma_estimator: String,
+}
+
+#[derive(Args)]
+pub(crate) struct LimitsArgs {
+    #[command(flatten)]
+    pub(crate) input: InputArgs,
+    #[command(flatten)]
+    pub(crate) exclude: ExcludeArgs,
+    #[command(flatten)]
+    pub(crate) spec: SpecArgs,
+    /// Store the limits in this file (written atomically).
+    #[arg(long, value_name = "FILE", requires = "characteristic")]
+    pub(crate) write: Option<PathBuf>,
+    /// Identifier of the characteristic the limits belong to.
+    #[arg(long, value_name = "ID")]
+    pub(crate) characteristic: Option<String>,
+    /// Unit of the readings, recorded in the limits file.
+    #[arg(long)]
+    pub(crate) unit: Option<String>,
+    /// Print JSON instead of the report.
+    #[arg(long)]
+    pub(crate) json: bool,
+}
+
+#[derive(Args)]
+pub(crate) struct CapabilityArgs {
+    #[command(flatten)]
+    pub(crate) input: InputArgs,
+    #[command(flatten)]
+    pub(crate) exclude: ExcludeArgs,
+    #[command(flatten)]
+    pub(crate) spec: SpecArgs,
+    /// Print JSON instead of the report.
+    #[arg(long)]
+    pub(crate) json: bool,
+}
+
+/// The byte a `--delimiter` value names.
+pub(crate) fn delimiter_byte(given: &str) -> Result<u8> {
+    Ok(match given {
+        "tab" | "\\t" | "\t" => b'\t',
+        "semicolon" => b';',
+        "comma" => b',',
+        "space" => b' ',
+        s if s.len() == 1 && s.is_ascii() => s.as_bytes()[0],
+        other => bail!(
+            "--delimiter {other:?} is not one character; use a single character such as ';', or tab, semicolon, comma, space"
+        ),
+    })
+}
+
+/// Reads the input file and runs the study both commands share.
+pub(crate) fn load_and_study(
+    input: &InputArgs,
+    exclude: &ExcludeArgs,
+) -> Result<(Study, Vec<Vec<f64>>, Vec<String>)> {
+    let name = input.input.display().to_string();
+    let text = std::fs::read_to_string(&input.input)
+        .with_context(|| format!("cannot read input file {name}"))?;
+    let delimiter = delimiter_byte(&input.delimiter)?;
+    let mut opts = InputOptions::new(input.layout);
+    opts.value_columns = input.value_column.clone();
+    opts.subgroup_column = Some(input.subgroup_column.clone());
+    opts.subgroup_size = input.subgroup_size;
+    opts.delimiter = delimiter;
+    opts.decimal_comma = input.decimal_comma;
+    if opts.decimal_comma && delimiter == b',' {
+        bail!(
+            "--decimal-comma with ',' between fields cannot tell a field from a decimal; such files use ';' (--delimiter ';')"
+        );
+    }
+    let parsed = input::parse(&text, &name, &opts)?;
+    let chart = input.chart.map(VariablesChart::from).unwrap_or_else(|| {
+        match parsed.subgroups.iter().map(Vec::len).max().unwrap_or(1) {
+            1 => VariablesChart::Individuals,
+            2..=10 => VariablesChart::XbarR,
+            _ => VariablesChart::XbarS,
+        }
+    });
+    let mut options = StudyOptions::new(chart);
+    let Some(estimator) = SigmaEstimator::parse(&exclude.sigma_estimator) else {
+        bail!(
+            "--sigma-estimator {:?} is not an estimator; use one of: {}",
+            exclude.sigma_estimator,
+            SigmaEstimator::NAMES.join(", ")
+        );
+    };
+    if !estimator.fits(chart) {
+        bail!(
+            "--sigma-estimator {} is not for the {} chart: {} take the X̄-R chart's ranges, {} the X̄-S chart's standard deviations",
+            exclude.sigma_estimator,
+            chart.name(),
+            "mean-range and burr-weighted-range",
+            "mean-sd and pooled-sd"
+        );
+    }
+    options.sigma_estimator = estimator;
+    options.exclude = exclude.exclude.clone();
+    options.auto_exclude = exclude.auto_exclude;
+    options.max_iterations = exclude.max_iterations;
+    let s = study::run(&parsed.subgroups, &options)
+        .with_context(|| format!("{name}: the study failed"))?;
+    Ok((s, parsed.subgroups, parsed.warnings))
+}
+
+pub(crate) fn spec_of(a: &SpecArgs) -> Result<Option<Spec>> {
+    if a.lsl.is_none() && a.usl.is_none() {
+        if a.target.is_some() {
+            bail!("--target needs --lsl and/or --usl");
+        }
+        if a.distribution.is_some() {
+            bail!("--distribution needs --lsl and/or --usl");
+        }
+        return Ok(None);
+    }
+    let spec = Spec {
+        lsl: a.lsl,
+        usl: a.usl,
+        target: a.target,
+    };
+    spec.validate().map_err(|e| match e {
+        linewarden::stats::StatsError::SpecOrder { lsl, usl } => {
+            anyhow::anyhow!("--lsl {lsl} must be below --usl {usl}")
+        }
+        other => anyhow::anyhow!("specification options: {other}"),
+    })?;
+    if !(a.capable_at > 0.0 && a.capable_at.is_finite()) {
+        bail!("--capable-at {} must be a positive number", a.capable_at);
+    }
+    if let Some(name) = &a.distribution
+        && capability::DistributionChoice::parse(name).is_none()
+    {
+        bail!(
+            "--distribution {name:?} is not a model linewarden fits; use normal, lognormal, weibull, box-cox or best"
+        );
+    }
+    Ok(Some(spec))
+}
+
+pub(crate) fn capability_of(
+    s: &Study,
+    subgroups: &[Vec<f64>],
+    spec: &Spec,
+    args: &SpecArgs,
+) -> Result<Capability> {
+    let readings = s.included_readings(subgroups);
+    let mut c = capability::capability(&readings, s.estimate.sigma_within, spec, args.capable_at)?;
+    if let Some(name) = &args.distribution {
+        let Some(choice) = capability::DistributionChoice::parse(name) else {
+            bail!("--distribution {name:?} is not a model linewarden fits");
+        };
+        capability::percentile_method(&mut c, &readings, spec, choice)
+            .with_context(|| format!("--distribution {name}"))?;
+    }
+    Ok(c)
+}
+
+pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
+    if let Some(id) = &a.characteristic
+        && !valid_id(id)
+    {
+        bail!(
+            "--characteristic {id:?} is not a valid identifier; use letters, digits, '-', '_' and '.'"
+        );
+    }
+    let spec = spec_of(&a.spec)?;
+    let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
+    let cap = match &spec {
+        Some(spec) => Some(capability_of(&s, &subgroups, spec, &a.spec)?),
+        None => None,
+    };
+    let source = a.input.input.display().to_string();
+    if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
+        let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
+        let stored = StoredLimits::from_study(&s, id, a.unit.clone(), spec, &source, &now);
+        stored.write(path)?;
+        eprintln!("wrote limits for {id} to {}", path.display());
+    }
+    warnings.extend(s.warnings.iter().cloned());
+    if a.json {
+        if let Some(c) = &cap {
+            warnings.extend(c.warnings.iter().cloned());
+        }
+        for w in &warnings {
+            eprintln!("warning: {w}");
+        }
+        let mut v = study_json(&s);
+        v["capability"] = cap
+            .as_ref()
+            .map(capability_json)
+            .unwrap_or(serde_json::Value::Null);
+        v["warnings"] = json!(warnings);
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    } else {
+        for w in &warnings[..warnings.len() - s.warnings.len()] {
+            eprintln!("warning: {w}");
+        }
+        print!(
+            "{}",
+            report::study(&source, &s, spec.as_ref().zip(cap.as_ref()))
+        );
+    }
+    Ok(())
+}
+
+pub(crate) fn capability_cmd(a: CapabilityArgs) -> Result<()> {
+    let Some(spec) = spec_of(&a.spec)? else {
+        bail!("capability needs --lsl and/or --usl");
+    };
+    let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
+    let cap = capability_of(&s, &subgroups, &spec, &a.spec)?;
+    warnings.extend(s.warnings.iter().cloned());
+    if a.json {
+        // Every warning, the capability's own (normality) included: the text report has them.
+        warnings.extend(cap.warnings.iter().cloned());
+        for w in &warnings {
+            eprintln!("warning: {w}");
+        }
+        let mut v = capability_json(&cap);
+        v["sigma_within_method"] = json!(s.estimate.sigma_method);
+        v["sigma_method"] = json!(s.estimate.sigma_key);
+        v["stability"] = json!(s.stability);
+        v["autocorrelation"] = json!(s.autocorrelation);
+        v["chart"] = json!(s.chart.name());
+        v["warnings"] = json!(warnings);
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    } else {
+        let source = a.input.input.display().to_string();
+        print!(
+            "{}",
+            report::capability_report(&source, &spec, &cap, &warnings)
+        );
+    }
+    Ok(())
+}
+
+pub(crate) fn study_json(s: &Study) -> serde_json::Value {
+    json!({
+        "chart": s.chart.name(),
+        "subgroup_size": s.subgroup_size,
+        "subgroup_size_range": [s.subgroup_size_range.0, s.subgroup_size_range.1],
+        "subgroups_total": s.subgroups_total,
+        "subgroups_used": s.subgroups_used,
+        "excluded": s.excluded.iter().map(|e| json!({
+            "subgroup": e.subgroup, "reason": e.reason, "iteration": e.iteration,
+        })).collect::<Vec<_>>(),
+        "sigma_within": s.estimate.sigma_within,
+        "sigma_within_method": s.estimate.sigma_method,
+        "sigma_method": s.estimate.sigma_key,
+        "stability": s.stability,
+        "autocorrelation": s.autocorrelation,
+        "sigma_overall": s.estimate.sigma_overall,
+        "location": s.location,
+        "dispersion": {
+            "kind": s.dispersion_kind.name(),
+            "center": s.dispersion.center,
+            "ucl": s.dispersion.ucl,
+            "lcl": s.dispersion.lcl,
+        },
+        "trials": s.trials,
+        "points": s.points.iter().map(|p| json!({
+            "subgroup": p.subgroup, "n": p.stats.n, "mean": p.stats.mean,
+            "dispersion": p.stats.dispersion, "included": p.included,
+        })).collect::<Vec<_>>(),
+    })
+}
+
+pub(crate) fn capability_json(c: &Capability) -> serde_json::Value {
+    let mut v = serde_json::to_value(c).unwrap_or(serde_json::Value::Null);
+    // Keep the documented keys present even where an index does not apply.
+    for key in ["cp", "cpm", "cp_ci95", "ppm_below", "ppm_above"] {
+        if v.get(key).is_none() {
+            v[key] = serde_json::Value::Null;
+        }
+    }
+    v
+}
