@@ -125,6 +125,8 @@ fn subscriber(
     let mut o = rumqttc::MqttOptions::new("test-hmi", "127.0.0.1", port);
     o.set_keep_alive(Duration::from_secs(5));
     o.set_clean_session(false);
+    // Room for the oversized commands a hostile HMI may send.
+    o.set_max_packet_size(1 << 20, 1 << 20);
     let (client, mut ev) = rumqttc::AsyncClient::new(o, 1000);
     let inbox: Inbox = Default::default();
     let (sink, filter, c) = (inbox.clone(), filter.to_string(), client.clone());
@@ -793,4 +795,133 @@ fn an_unacknowledged_alert_escalates_once_to_the_escalation_outputs() {
         .filter(|(id, e)| id == ALERT && matches!(e, AlertEvent::Escalated { .. }))
         .count();
     assert_eq!(n, 1, "escalated once");
+}
+
+/// Learned limits approved from the HMI over MQTT, as from the command line: a wrong
+/// characteristic, a malformed command and an oversized one are each answered with the reason
+/// on the result topic and change nothing; the right one is recorded in the limits file with
+/// the approver.
+#[test]
+fn learned_limits_are_approved_over_mqtt_and_bad_commands_are_answered() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let Some(broker) = PersistentMosquitto::new(d) else {
+        return;
+    };
+    let rt = runtime();
+    let (hmi, inbox) = subscriber(&rt, broker.port, "cell4/#");
+    std::fs::create_dir_all(d.join("inbox")).unwrap();
+    let text = format!(
+        r#"[daemon]
+archive_dir = "archive"
+flush_interval_ms = 2
+
+[[characteristic]]
+id = "face"
+unit = "mm"
+limits = "limits/face.toml"
+subgroup = {{ size = 3 }}
+learning = {{ subgroups = 20 }}
+
+[[source]]
+id = "cmm"
+kind = "folder"
+path = "inbox"
+rows = "per-part"
+columns = {{ "Face" = "face" }}
+
+[[output]]
+id = "hmi"
+kind = "mqtt"
+broker = "mqtt://127.0.0.1:{}"
+topic_prefix = "cell4/linewarden"
+"#,
+        broker.port
+    );
+    std::fs::write(d.join("cell.toml"), text).unwrap();
+    let daemon = Daemon::start(&d.join("cell.toml"), &d.join("daemon.log"));
+    wait_until("the online status", Duration::from_secs(10), || {
+        inbox
+            .lock()
+            .unwrap()
+            .iter()
+            .any(|(t, p, _)| t == "cell4/linewarden/status" && p.contains("online"))
+    });
+    let mut report = String::from("Face\n");
+    let mut x = 0.37f64;
+    for _ in 0..66 {
+        x = (x * 3.7 + 0.11).fract();
+        report.push_str(&format!("{:.4}\n", 38.2 + (x - 0.5) * 0.02));
+    }
+    std::fs::write(d.join("inbox/run-1.csv"), report).unwrap();
+    let file = d.join("limits/face.toml");
+    wait_until("learned limits", Duration::from_secs(20), || file.exists());
+
+    let results = |inbox: &Inbox| -> Vec<serde_json::Value> {
+        inbox
+            .lock()
+            .unwrap()
+            .iter()
+            .filter(|(t, _, _)| t == "cell4/linewarden/command/result")
+            .map(|(_, p, _)| json(p))
+            .collect()
+    };
+    let send = |payload: String| {
+        rt.block_on(hmi.publish(
+            "cell4/linewarden/command/approve",
+            rumqttc::QoS::AtLeastOnce,
+            false,
+            payload,
+        ))
+        .unwrap();
+    };
+    let expect = |n: usize, what: &str| {
+        wait_until(what, Duration::from_secs(10), || results(&inbox).len() >= n);
+        results(&inbox)[n - 1].clone()
+    };
+    send(r#"{"characteristic": "fcae", "by": "R. Okafor"}"#.into());
+    let r = expect(1, "the answer to a misspelt characteristic");
+    assert_eq!(r["ok"], false);
+    assert!(r["error"].as_str().unwrap().contains("\"fcae\""), "{r}");
+    send("approve face please".into());
+    let r = expect(2, "the answer to a malformed command");
+    assert!(
+        r["error"].as_str().unwrap().contains("not an approval"),
+        "{r}"
+    );
+    send(format!(
+        r#"{{"characteristic": "face", "by": "{}"}}"#,
+        "x".repeat(40_000)
+    ));
+    let r = expect(3, "the answer to an oversized command");
+    assert!(r["error"].as_str().unwrap().contains("at most"), "{r}");
+    assert!(
+        std::fs::read_to_string(&file)
+            .unwrap()
+            .contains("provisional = true"),
+        "nothing was approved by the bad commands"
+    );
+    send(r#"{"characteristic": "face", "by": "R. Okafor", "note": "setup sheet 14"}"#.into());
+    let r = expect(4, "the approval's answer");
+    assert_eq!(
+        (r["ok"].as_bool(), r["characteristic"].as_str()),
+        (Some(true), Some("face")),
+        "{r}"
+    );
+    wait_until("the approved file", Duration::from_secs(10), || {
+        std::fs::read_to_string(&file).is_ok_and(|t| t.contains("[approved]"))
+    });
+    let written = linewarden::limits_file::StoredLimits::load(&file).unwrap();
+    assert_eq!(written.approved.as_ref().unwrap().by, "R. Okafor");
+    // The same approval again is refused with who approved first.
+    send(r#"{"characteristic": "face", "by": "Someone"}"#.into());
+    let r = expect(5, "the second approval's answer");
+    assert!(
+        r["error"]
+            .as_str()
+            .unwrap()
+            .contains("already approved by R. Okafor"),
+        "{r}"
+    );
+    daemon.stop();
 }

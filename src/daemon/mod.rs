@@ -1,8 +1,9 @@
 //! The daemon: sources → reading checks → archive → engine → outputs, over bounded channels.
 //!
-//! * Sources are tasks that send [`SourceEvent`]s into one channel of [`SOURCE_QUEUE`] events;
-//!   a source that can wait (replay, files, MQTT before its ack) waits when it is full.
-//! * The engine task owns the [`Engine`]: it rejects or archives each reading, then hands it to
+//! * Sources are tasks that send [`SourceEvent`](sources::SourceEvent)s into one channel of
+//!   [`SOURCE_QUEUE`](sources::SOURCE_QUEUE) events; a source that can wait (replay, files,
+//!   MQTT before its ack) waits when it is full.
+//! * The engine task (`engine_task`) owns the [`Engine`]: it rejects or archives each reading, then hands it to
 //!   the engine and carries out its outputs. Archive appends wait when the writer's queue is
 //!   full: nothing is lost.
 //! * Shutdown flows downstream: only sources watch the shutdown signal; the engine task ends
@@ -10,7 +11,7 @@
 //!   archive handle, so the writer flushes last.
 //!
 //! * [`sources`] — where readings come from (replay, folder, serial, MQTT), one module each,
-//!   all sending the one [`SourceEvent`] type.
+//!   all sending the one [`SourceEvent`](sources::SourceEvent) type.
 //! * [`outputs`] — where alerts go (stack light, MQTT, email).
 //! * [`control`] — the control socket (status, acknowledgements, approvals); [`hub`] — the
 //!   views the engine loop publishes to outputs and control.
@@ -19,14 +20,17 @@
 
 pub mod clock;
 pub mod control;
+mod engine_task;
 pub mod hub;
 pub mod notify;
 pub mod outputs;
 pub mod sources;
 
 pub use clock::now_ms;
-use sources::{SOURCE_QUEUE, SourceEvent};
+use engine_task::EngineTask;
+use sources::SOURCE_QUEUE;
 
+use std::sync::Arc;
 use std::time::Duration;
 
 use tokio::sync::{mpsc, watch};
@@ -82,13 +86,65 @@ struct Journal {
 /// `reload` rereads the config file: a valid file is swapped in (characteristics whose
 /// configuration did not change keep their state), an invalid one is rejected whole and the
 /// running config kept.
+///
+/// The stages, in order: open the archive and read it back; build the engine and record the
+/// start; start the outputs and the control socket; start the sources; tell systemd; run the
+/// engine loop ([`engine_task`]); then shut down downstream-first (the engine's last state, the
+/// outputs winding down, the archive writer last).
 pub async fn run(
     cfg: Config,
     shutdown: watch::Receiver<bool>,
-    mut reload: mpsc::Receiver<()>,
+    reload: mpsc::Receiver<()>,
 ) -> Result<Summary, DaemonError> {
-    let mut cfg = cfg;
     let started_ms = now_ms();
+    let (archive, writer_thread, tail) = open_archive(&cfg)?;
+    let mut engine = Engine::new(&cfg, now_ms());
+    let mut summary = Summary::default();
+    record_start(&archive, &cfg, &mut engine, &tail, &mut summary).await?;
+    drop(tail);
+    crate::fsutil::release_memory();
+
+    let progress = Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
+    let (publish, outputs, mut inbox) = start_outputs(&cfg, &progress, reload);
+    let (tx, rx) = mpsc::channel(SOURCE_QUEUE);
+    let health = sources::start(&cfg.sources, &cfg.archive_dir, tx, &shutdown).await;
+    let notifier = Arc::new(notify::Notifier::from_env());
+    start_watchdog(&notifier, &progress, archive.status());
+    let announce = format!(
+        "monitoring {} characteristic(s) from {} source(s)",
+        cfg.characteristics.len(),
+        health.len()
+    );
+    notifier.send(&format!("READY=1\nSTATUS={announce}"));
+    tracing::info!(
+        component = "daemon",
+        "{announce}; archive {}",
+        cfg.archive_dir.display()
+    );
+
+    let mut task = EngineTask::new(cfg, engine, archive, summary, health, publish, started_ms);
+    let reason = task.serve(rx, &mut inbox, &progress).await?;
+
+    tracing::info!(component = "daemon", "stopping: {reason}");
+    notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
+    task.stop(reason).await?;
+    outputs.wind_down(&mut task, &mut inbox.delivered).await;
+    let EngineTask {
+        archive, summary, ..
+    } = task;
+    drop(archive);
+    join_writer(writer_thread).await?;
+    Ok(summary)
+}
+
+/// The archive writer's thread; it ends once every handle is dropped and all is flushed.
+type WriterThread = std::thread::JoinHandle<Result<(), ArchiveError>>;
+
+/// Opens the archive (cutting away damage, which is logged), starts its writer thread and
+/// gives the tail the engine is rebuilt from.
+fn open_archive(
+    cfg: &Config,
+) -> Result<(ArchiveHandle, WriterThread, crate::archive::record::Tail), DaemonError> {
     let mut wc = WriterConfig::new(&cfg.archive_dir);
     wc.flush_interval_ms = cfg.flush_interval_ms;
     wc.max_segment_bytes = cfg.max_segment_bytes;
@@ -105,9 +161,18 @@ pub async fn run(
     }
     let tail = writer.tail().clone();
     let (archive, join) = writer::spawn(writer, now_ms);
+    Ok((archive, join, tail))
+}
 
-    let mut engine = Engine::new(&cfg, now_ms());
-    let mut summary = Summary::default();
+/// Records the start and the config, restores the engine from the tail and records the limits
+/// in force.
+async fn record_start(
+    archive: &ArchiveHandle,
+    cfg: &Config,
+    engine: &mut Engine,
+    tail: &crate::archive::record::Tail,
+    summary: &mut Summary,
+) -> Result<(), DaemonError> {
     let text = std::fs::read(&cfg.path).unwrap_or_default();
     archive
         .append(vec![
@@ -120,23 +185,61 @@ pub async fn run(
             },
         ])
         .await?;
-    let mut fx = Effects::default();
-    let mut restored = engine.restore(&tail);
-    restored.extend(engine.limits_records(&tail));
-    carry_out(&archive, &cfg, restored, &mut summary, &mut fx).await?;
-    drop(tail);
-    crate::fsutil::release_memory();
+    let mut restored = engine.restore(tail);
+    restored.extend(engine.limits_records(tail));
+    // What the restore says is archived and logged; the outputs hear of it from the first
+    // publication, so the effects are not kept.
+    carry_out(archive, cfg, restored, summary, &mut Effects::default()).await
+}
 
-    let progress = std::sync::Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
-    // The outputs and the control socket: they outlive the sources, so that the last light
-    // state ("off") and the last status ("stopped") still go out.
-    let (outputs_stop, outputs_stop_rx) = watch::channel(false);
-    let (alerts_tx, alerts_rx) = watch::channel(std::sync::Arc::new(hub::AlertsView::default()));
+/// The output tasks and the control socket, which outlive the sources so that the last light
+/// state ("off") and the last status ("stopped") still go out.
+struct OutputTasks {
+    stop: watch::Sender<bool>,
+    tasks: Vec<tokio::task::JoinHandle<()>>,
+}
+
+impl OutputTasks {
+    /// Stops the outputs and waits (up to 5 s) for them, archiving the deliveries that finish
+    /// meanwhile.
+    async fn wind_down(self, task: &mut EngineTask, delivered: &mut mpsc::Receiver<hub::Delivery>) {
+        let _ = self.stop.send(true);
+        let tasks = self.tasks;
+        let wind_down = async {
+            for t in tasks {
+                let _ = t.await;
+            }
+        };
+        let drain = async {
+            while let Some(d) = delivered.recv().await {
+                if let Some(Output::Record(r)) =
+                    task.engine.delivered(&d.output, &d.alert_id, d.version)
+                {
+                    let _ = task.archive.append(vec![r]).await;
+                }
+            }
+        };
+        let _ = tokio::time::timeout(Duration::from_secs(5), async {
+            tokio::join!(wind_down, drain)
+        })
+        .await;
+    }
+}
+
+/// Starts every configured output and the control socket, with the channels between them and
+/// the engine loop.
+fn start_outputs(
+    cfg: &Config,
+    progress: &Arc<std::sync::atomic::AtomicI64>,
+    reload: mpsc::Receiver<()>,
+) -> (engine_task::Publishers, OutputTasks, engine_task::Inbox) {
+    let (stop, stop_rx) = watch::channel(false);
+    let (alerts_tx, alerts_rx) = watch::channel(Arc::new(hub::AlertsView::default()));
     let (light_tx, light_rx) = watch::channel(hub::Light::Off);
     let (states_tx, states_rx) = watch::channel::<hub::States>(Default::default());
-    let (req_tx, mut req_rx) = mpsc::channel::<hub::Request>(64);
-    let (deliv_tx, mut deliv_rx) = mpsc::channel::<hub::Delivery>(1024);
-    let mut output_tasks = Vec::new();
+    let (req_tx, req_rx) = mpsc::channel::<hub::Request>(64);
+    let (deliv_tx, deliv_rx) = mpsc::channel::<hub::Delivery>(1024);
+    let mut tasks = Vec::new();
     for o in &cfg.outputs {
         let t = outputs::spawn(
             o.clone(),
@@ -146,15 +249,14 @@ pub async fn run(
                 states: states_rx.clone(),
                 delivered: deliv_tx.clone(),
                 requests: req_tx.clone(),
-                shutdown: outputs_stop_rx.clone(),
+                shutdown: stop_rx.clone(),
                 progress: progress.clone(),
                 timezone: cfg.tz(),
             },
         );
         tracing::info!(component = "output", output = %o.id, "alerts go to {}", o.describe());
-        output_tasks.push(t);
+        tasks.push(t);
     }
-    drop(deliv_tx);
     if let Some(c) = &cfg.control {
         match control::bind(c) {
             Ok(l) => {
@@ -163,11 +265,11 @@ pub async fn run(
                     "status and acknowledgements on {}",
                     c.socket.display()
                 );
-                output_tasks.push(tokio::spawn(control::serve(
+                tasks.push(tokio::spawn(control::serve(
                     l,
                     c.socket.clone(),
                     req_tx.clone(),
-                    outputs_stop_rx.clone(),
+                    stop_rx.clone(),
                 )));
             }
             Err(e) => tracing::error!(
@@ -177,406 +279,62 @@ pub async fn run(
             ),
         }
     }
-    drop(req_tx);
+    (
+        engine_task::Publishers {
+            alerts: alerts_tx,
+            light: light_tx,
+            states: states_tx,
+        },
+        OutputTasks { stop, tasks },
+        engine_task::Inbox {
+            requests: req_rx,
+            delivered: deliv_rx,
+            reload,
+        },
+    )
+}
 
-    let (tx, mut rx) = mpsc::channel(SOURCE_QUEUE);
-    let mut health = sources::start(&cfg.sources, &cfg.archive_dir, tx, &shutdown).await;
-    let sources = health.len();
-    let notifier = std::sync::Arc::new(notify::Notifier::from_env());
-    // Progress: the engine loop stamps the time of every turn (a reading or the 1 s tick). The
-    // watchdog is pinged only while the loop turns, or while the archive reports a full disk
-    // (a known, reported condition that a restart would not cure).
-    if let Some(interval) = notify::Notifier::watchdog() {
-        let (n, p, status) = (notifier.clone(), progress.clone(), archive.status());
-        tokio::spawn(async move {
-            let mut t = tokio::time::interval(interval / 2);
-            loop {
-                t.tick().await;
-                let fresh = now_ms() - p.load(std::sync::atomic::Ordering::Relaxed)
-                    < interval.as_millis() as i64;
-                let disk_full = matches!(
-                    status.borrow().state,
-                    crate::archive::writer::WriterState::DiskFull { .. }
-                );
-                if fresh || disk_full {
-                    n.send("WATCHDOG=1");
-                }
-            }
-        });
-    }
-    notifier.send(&format!(
-        "READY=1\nSTATUS=monitoring {} characteristic(s) from {sources} source(s)",
-        cfg.characteristics.len()
-    ));
-    tracing::info!(
-        component = "daemon",
-        "monitoring {} characteristic(s) from {sources} source(s); archive {}",
-        cfg.characteristics.len(),
-        cfg.archive_dir.display()
-    );
-    let archive_status = archive.status();
-    let archive_ok = |s: &watch::Receiver<crate::archive::writer::Status>| {
-        matches!(
-            s.borrow().state,
-            crate::archive::writer::WriterState::Running
-        )
+/// Pings systemd's watchdog only while the engine loop turns (it stamps `progress` at every
+/// reading and every 1 s tick), or while the archive reports a full disk (a known, reported
+/// condition that a restart would not cure).
+fn start_watchdog(
+    notifier: &Arc<notify::Notifier>,
+    progress: &Arc<std::sync::atomic::AtomicI64>,
+    status: watch::Receiver<crate::archive::writer::Status>,
+) {
+    let Some(interval) = notify::Notifier::watchdog() else {
+        return;
     };
-    let healthy = |h: &std::collections::BTreeMap<String, hub::SourceHealth>| {
-        h.values().all(|s| s.state == "up" || s.state == "ended")
-    };
-    // The characteristics that have alerts, as they stood when their alerts last changed
-    // (for the charts in emails); refreshed only for the ones that changed.
-    let mut alert_views: std::collections::BTreeMap<
-        String,
-        std::sync::Arc<crate::engine::CharView>,
-    > = Default::default();
-    let mut publish_alerts =
-        |engine: &Engine, changed: &mut std::collections::BTreeSet<String>, all: bool| {
-            let book = engine.alerts().clone();
-            let ids: Vec<String> = if all {
-                book.by_characteristic.keys().cloned().collect()
-            } else {
-                std::mem::take(changed).into_iter().collect()
-            };
-            changed.clear();
-            for c in ids {
-                if let Some(v) = engine.view_of(&c) {
-                    alert_views.insert(c, std::sync::Arc::new(v));
-                }
-            }
-            std::sync::Arc::new(hub::AlertsView {
-                book,
-                characteristics: alert_views.clone(),
-            })
-        };
-    alerts_tx.send_replace(publish_alerts(&engine, &mut fx.alert_chars, true));
-    light_tx.send_replace(hub::light(
-        engine.alerts(),
-        healthy(&health),
-        archive_ok(&archive_status),
-    ));
-    let mut states: std::collections::BTreeMap<String, hub::StateView> = engine
-        .view()
-        .iter()
-        .map(|v| (v.id.clone(), hub::StateView::of(v, engine.alerts())))
-        .collect();
-    states_tx.send_replace(std::sync::Arc::new(states.clone()));
-    fx = Effects::default();
-
-    let mut archive_watch = archive.status();
-    let mut was_full = false;
-    let mut tick = tokio::time::interval(Duration::from_secs(1));
-    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
-    let mut ended = 0;
-    let mut ticks = 0u64;
-    let mut rejected_logged = 0u64;
-    let reason = loop {
-        progress.store(now_ms(), std::sync::atomic::Ordering::Relaxed);
-        let mut health_changed = false;
-        // While the archive's disk is full, readings are not taken from the sources: they hold
-        // back (MQTT stops acknowledging, the folder stops moving reports, serial gauges count
-        // what they must drop), while status, acknowledgements and the light go on. The 1 s
-        // tick notices when there is room again.
-        let archive_full = matches!(
-            archive_watch.borrow_and_update().state,
-            crate::archive::writer::WriterState::DiskFull { .. }
-        );
-        if archive_full != was_full {
-            was_full = archive_full;
-            health_changed = true;
-        }
-        tokio::select! {
-            // The writer's status changed (a sync, or the disk filling or freeing): the light
-            // and the gate above follow at once.
-            Ok(()) = archive_watch.changed() => {}
-            ev = rx.recv(), if !archive_full => {
-                let Some(first) = ev else { break "every source has stopped".to_string() };
-                // Take what else is waiting (up to BATCH events) and archive consecutive
-                // accepted readings with one append: one round trip to the writer per batch.
-                let mut batch = vec![first];
-                while batch.len() < BATCH {
-                    match rx.try_recv() {
-                        Ok(e) => batch.push(e),
-                        Err(_) => break,
-                    }
-                }
-                let mut accepted: Vec<Incoming> = Vec::new();
-                let mut stop: Option<String> = None;
-                for ev in batch {
-                    if let SourceEvent::Reading(inc) = &ev
-                        && engine.check(inc).is_ok()
-                    {
-                        let SourceEvent::Reading(inc) = ev else { unreachable!() };
-                        accepted.push(inc);
-                        continue;
-                    }
-                    take_readings(&archive, &cfg, &mut engine, &mut accepted, &mut health, &mut summary, &mut fx).await?;
-                    match ev {
-                        SourceEvent::Reading(inc) => {
-                            let reason = engine.check(&inc).err().unwrap_or_default();
-                            summary.rejected += 1;
-                            if let Some(h) = health.get_mut(&inc.source) {
-                                h.rejected += 1;
-                            }
-                            reject(&mut rejected_logged, &inc.source, &inc.value.to_string(), &reason);
-                            archive.append(vec![Record::ReadingRejected {
-                                source: inc.source.clone(),
-                                characteristic: Some(inc.characteristic.clone()),
-                                raw: inc.value.to_string(),
-                                reason,
-                                arrival_ms: inc.arrival_ms,
-                                source_key: inc.source_key.clone(),
-                            }]).await?;
-                        }
-                        SourceEvent::Unreadable { source, characteristic, raw, reason, source_key } => {
-                            summary.rejected += 1;
-                            if let Some(h) = health.get_mut(&source) {
-                                h.rejected += 1;
-                            }
-                            reject(&mut rejected_logged, &source, &raw, &reason);
-                            archive.append(vec![Record::ReadingRejected { source, characteristic, raw, reason, arrival_ms: now_ms(), source_key }]).await?;
-                        }
-                        SourceEvent::Barrier(done) => {
-                            // Answered once everything before it is durable. A full disk delays
-                            // the answer (the source waits, and holds back) without holding up
-                            // this loop; a failed archive drops it, and the next append stops
-                            // the daemon with the archive's error.
-                            let archive = archive.clone();
-                            tokio::spawn(async move {
-                                if archive.flush().await.is_ok() {
-                                    let _ = done.send(());
-                                }
-                            });
-                        }
-                        SourceEvent::Health { source, up, detail } => {
-                            if let Some(h) = health.get_mut(&source) {
-                                let state = if up { "up" } else { "down" };
-                                if h.state != state {
-                                    h.state = state.into();
-                                    h.since_ms = now_ms();
-                                    health_changed = true;
-                                }
-                                h.detail = detail;
-                            }
-                        }
-                        SourceEvent::Ended { source } => {
-                            ended += 1;
-                            if let Some(h) = health.get_mut(&source) {
-                                h.state = "ended".into();
-                                h.since_ms = now_ms();
-                                health_changed = true;
-                            }
-                            tracing::info!(component = "daemon", "source {source} has ended");
-                            if ended == sources {
-                                stop = Some("every source has ended".to_string());
-                            }
-                        }
-                    }
-                }
-                take_readings(&archive, &cfg, &mut engine, &mut accepted, &mut health, &mut summary, &mut fx).await?;
-                if let Some(reason) = stop {
-                    break reason;
-                }
-            },
-            Some(req) = req_rx.recv() => match req {
-                hub::Request::Ack { target, by, note, via, reply } => {
-                    let answer = match engine.acknowledge(&target, &by, note.as_deref(), now_ms()) {
-                        Ok((ids, out)) => {
-                            tracing::info!(component = "alerts", "acknowledgement by {by} via {via}: {}", ids.join(", "));
-                            carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
-                            hub::AckReply { ok: true, acknowledged: ids, error: None }
-                        }
-                        Err(e) => {
-                            tracing::warn!(component = "alerts", "acknowledgement of {target:?} by {by:?} via {via} refused: {e}");
-                            hub::AckReply { ok: false, acknowledged: Vec::new(), error: Some(e.to_string()) }
-                        }
-                    };
-                    let _ = reply.send(answer);
-                }
-                hub::Request::Approve { characteristic, by, note, via, reply } => {
-                    let answer = match engine.approve(&characteristic, &by, note.as_deref(), now_ms()) {
-                        Ok(out) => {
-                            tracing::info!(component = "engine", characteristic = %characteristic, "limits approved by {by} via {via}");
-                            carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
-                            // The retained state says where the limits come from: refresh it now.
-                            fx.dirty.insert(characteristic.clone());
-                            hub::ApproveReply { ok: true, error: None }
-                        }
-                        Err(e) => {
-                            tracing::warn!(component = "engine", "approval of {characteristic:?} by {by:?} via {via} refused: {e}");
-                            hub::ApproveReply { ok: false, error: Some(e.to_string()) }
-                        }
-                    };
-                    let _ = reply.send(answer);
-                }
-                hub::Request::Status { brief, reply } => {
-                    let st = archive_status.borrow().clone();
-                    let report = hub::StatusReport {
-                        version: env!("CARGO_PKG_VERSION").to_string(),
-                        config: cfg.path.display().to_string(),
-                        started_ms,
-                        now_ms: now_ms(),
-                        light: *light_tx.borrow(),
-                        archive: hub::ArchiveStatus {
-                            dir: cfg.archive_dir.display().to_string(),
-                            durable_seq: st.durable_seq,
-                            state: match &st.state {
-                                crate::archive::writer::WriterState::Running => "running".into(),
-                                crate::archive::writer::WriterState::DiskFull { message } => format!("disk-full: {message}"),
-                                crate::archive::writer::WriterState::Failed { message } => format!("failed: {message}"),
-                                crate::archive::writer::WriterState::Stopped => "stopped".into(),
-                            },
-                        },
-                        sources: health.values().cloned().collect(),
-                        characteristics: if brief {
-                            Vec::new()
-                        } else {
-                            engine.view().iter().map(hub::CharStatus::of).collect()
-                        },
-                        alerts: engine.alerts().all().cloned().collect(),
-                    };
-                    let _ = reply.send(report);
-                }
-            },
-            Some(d) = deliv_rx.recv() => {
-                if let Some(out) = engine.delivered(&d.output, &d.alert_id, d.version) {
-                    let mut quiet = Effects::default();
-                    carry_out(&archive, &cfg, vec![out], &mut summary, &mut quiet).await?;
-                }
-            }
-            Some(()) = reload.recv() => {
-                let path = cfg.path.clone();
-                let loaded = tokio::task::spawn_blocking(move || crate::config::load(&path)).await;
-                match loaded {
-                    Ok(Ok(new)) => {
-                        if new.sources != cfg.sources {
-                            tracing::warn!(component = "daemon", "the sources changed; that takes effect at the next restart");
-                        }
-                        if new.outputs != cfg.outputs || new.control != cfg.control {
-                            tracing::warn!(component = "daemon", "the outputs or the control socket changed; that takes effect at the next restart");
-                        }
-                        if new.archive_dir != cfg.archive_dir {
-                            tracing::warn!(component = "daemon", "archive_dir changed; that takes effect at the next restart");
-                        }
-                        let tail = crate::archive::reader::Reader::open(&cfg.archive_dir)
-                            .and_then(|r| r.tail(30))
-                            .unwrap_or_default();
-                        for note in engine.reconfigure(&new, &tail, now_ms()) {
-                            tracing::info!(component = "daemon", "reload: {note}");
-                        }
-                        let changed = engine.limits_records(&tail);
-                        carry_out(&archive, &new, changed, &mut summary, &mut fx).await?;
-                        let text = std::fs::read(&new.path).unwrap_or_default();
-                        archive.append(vec![Record::ConfigLoaded {
-                            path: new.path.display().to_string(),
-                            sha256: crate::archive::segment::sha256_hex(&text),
-                        }]).await?;
-                        let keep = (cfg.archive_dir.clone(), cfg.sources.clone(), cfg.outputs.clone(), cfg.control.clone());
-                        cfg = new;
-                        (cfg.archive_dir, cfg.sources, cfg.outputs, cfg.control) = keep;
-                        fx.alerts_changed = true;
-                        crate::fsutil::release_memory();
-                        tracing::info!(component = "daemon", "reloaded {}", cfg.path.display());
-                    }
-                    Ok(Err(e)) => tracing::error!(component = "daemon", "reload rejected, the running configuration stays:\n{e}"),
-                    Err(e) => tracing::error!(component = "daemon", "reload failed: {e}"),
-                }
-            }
-            _ = tick.tick() => {
-                ticks += 1;
-                if ticks.is_multiple_of(10) {
-                    // Readings churn through short-lived buffers on several threads; hand the
-                    // freed pages back so the resident size stays what the cell needs.
-                    crate::fsutil::release_memory();
-                }
-                let out = engine.tick(now_ms());
-                carry_out(&archive, &cfg, out, &mut summary, &mut fx).await?;
-                // Retained states at most once a second, only the ones that changed.
-                if !fx.dirty.is_empty() {
-                    for id in std::mem::take(&mut fx.dirty) {
-                        if let Some(v) = engine.view_of(&id) {
-                            states.insert(id, hub::StateView::of(&v, engine.alerts()));
-                        }
-                    }
-                    states_tx.send_replace(std::sync::Arc::new(states.clone()));
-                }
-                health_changed = true;
-            }
-        }
-        if fx.alerts_changed {
-            fx.alerts_changed = false;
-            alerts_tx.send_replace(publish_alerts(&engine, &mut fx.alert_chars, true));
-            health_changed = true;
-        }
-        if health_changed {
-            let l = hub::light(
-                engine.alerts(),
-                healthy(&health),
-                archive_ok(&archive_status),
+    let (n, p) = (notifier.clone(), progress.clone());
+    tokio::spawn(async move {
+        let mut t = tokio::time::interval(interval / 2);
+        loop {
+            t.tick().await;
+            let fresh = now_ms() - p.load(std::sync::atomic::Ordering::Relaxed)
+                < interval.as_millis() as i64;
+            let disk_full = matches!(
+                status.borrow().state,
+                crate::archive::writer::WriterState::DiskFull { .. }
             );
-            light_tx.send_if_modified(|old| std::mem::replace(old, l) != l);
-        }
-    };
-    tracing::info!(component = "daemon", "stopping: {reason}");
-    // The journal ends with what is still open, so the next shift reads where things stand.
-    for a in engine.alerts().active() {
-        tracing::warn!(
-            component = "alerts",
-            characteristic = %a.characteristic,
-            "at shutdown, alert {} is {} (fired {}{}): {}",
-            a.id,
-            a.status.name(),
-            if a.count == 1 { "once".to_string() } else { format!("{} times", a.count) },
-            if a.gone { ", condition gone" } else { "" },
-            a.last_message
-        );
-    }
-    notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
-    light_tx.send_replace(hub::Light::Off);
-    // The last retained states go out before the outputs stop.
-    if !fx.dirty.is_empty() {
-        for id in std::mem::take(&mut fx.dirty) {
-            if let Some(v) = engine.view_of(&id) {
-                states.insert(id, hub::StateView::of(&v, engine.alerts()));
+            if fresh || disk_full {
+                n.send("WATCHDOG=1");
             }
         }
-        states_tx.send_replace(std::sync::Arc::new(states.clone()));
-    }
-    let mut last = engine.snapshot();
-    last.push(Record::DaemonStopped { reason });
-    summary.last_seq = archive.append_seq(last).await?;
-    // Deliveries that finish while the outputs wind down are still archived.
-    let _ = outputs_stop.send(true);
-    let wind_down = async {
-        for t in output_tasks {
-            let _ = t.await;
-        }
-    };
-    let drain = async {
-        while let Some(d) = deliv_rx.recv().await {
-            if let Some(Output::Record(r)) = engine.delivered(&d.output, &d.alert_id, d.version) {
-                let _ = archive.append(vec![r]).await;
-            }
-        }
-    };
-    let _ = tokio::time::timeout(Duration::from_secs(5), async {
-        tokio::join!(wind_down, drain)
-    })
-    .await;
-    drop(archive);
+    });
+}
+
+/// Waits (up to 30 s) for the archive writer to flush and end.
+async fn join_writer(join: WriterThread) -> Result<(), DaemonError> {
     let deadline = Duration::from_secs(30);
     let joined =
         tokio::time::timeout(deadline, tokio::task::spawn_blocking(move || join.join())).await;
     match joined {
-        Ok(Ok(Ok(result))) => result?,
-        Ok(_) => {
-            return Err(DaemonError::Archive(ArchiveError::Stopped(
-                "the writer thread panicked".into(),
-            )));
-        }
-        Err(_) => return Err(DaemonError::LateWriter(deadline)),
+        Ok(Ok(Ok(result))) => Ok(result?),
+        Ok(_) => Err(DaemonError::Archive(ArchiveError::Stopped(
+            "the writer thread panicked".into(),
+        ))),
+        Err(_) => Err(DaemonError::LateWriter(deadline)),
     }
-    Ok(summary)
 }
 
 /// Events taken from the source queue in one turn of the engine loop at most.

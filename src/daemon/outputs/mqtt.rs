@@ -11,6 +11,9 @@
 //! * `<prefix>/command/ack` — acknowledgements from an HMI: `{"alert": "<id or
 //!   characteristic>", "by": "<name>", "note": "..."}`; the answer goes to
 //!   `<prefix>/command/result`.
+//! * `<prefix>/command/approve` — approving a characteristic's learned limits:
+//!   `{"characteristic": "<id>", "by": "<name>", "note": "..."}`; the answer goes to
+//!   `<prefix>/command/result` too.
 
 use std::collections::{HashMap, VecDeque};
 use std::time::Duration;
@@ -30,7 +33,16 @@ enum Heard {
     Lost(String),
     Sent(u16),
     Acked(u16),
-    Command(Vec<u8>),
+    Command { approve: bool, payload: Vec<u8> },
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ApproveCommand {
+    characteristic: String,
+    by: String,
+    #[serde(default)]
+    note: Option<String>,
 }
 
 #[derive(Deserialize)]
@@ -71,6 +83,7 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
     };
     let status_topic = format!("{prefix}/status");
     let command_topic = format!("{prefix}/command/ack");
+    let approve_topic = format!("{prefix}/command/approve");
     let result_topic = format!("{prefix}/command/result");
     opts.set_last_will(LastWill::new(
         &status_topic,
@@ -78,40 +91,8 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
         QoS::AtLeastOnce,
         true,
     ));
-    let (client, mut eventloop) = AsyncClient::new(opts, 1024);
-    let (heard_tx, mut heard) = mpsc::unbounded_channel::<Heard>();
-    let cmd = command_topic.clone();
-    let poller = tokio::spawn(async move {
-        let mut backoff = Duration::from_millis(250);
-        loop {
-            match eventloop.poll().await {
-                Ok(Event::Incoming(Packet::ConnAck(_))) => {
-                    backoff = Duration::from_millis(250);
-                    if heard_tx.send(Heard::Connected).is_err() {
-                        break;
-                    }
-                }
-                Ok(Event::Incoming(Packet::PubAck(a))) => {
-                    let _ = heard_tx.send(Heard::Acked(a.pkid));
-                }
-                Ok(Event::Incoming(Packet::Publish(p))) if p.topic == cmd => {
-                    let _ = heard_tx.send(Heard::Command(p.payload.to_vec()));
-                }
-                Ok(Event::Outgoing(Outgoing::Publish(pkid))) => {
-                    let _ = heard_tx.send(Heard::Sent(pkid));
-                }
-                Ok(Event::Outgoing(Outgoing::Disconnect)) => break,
-                Ok(_) => {}
-                Err(e) => {
-                    if heard_tx.send(Heard::Lost(e.to_string())).is_err() {
-                        break;
-                    }
-                    tokio::time::sleep(backoff).await;
-                    backoff = (backoff * 2).min(Duration::from_secs(30));
-                }
-            }
-        }
-    });
+    let (client, eventloop) = AsyncClient::new(opts, 1024);
+    let (poller, mut heard) = spawn_poller(eventloop, command_topic.clone(), approve_topic.clone());
     let mut ledger = Ledger::new(&o.id);
     // In publish order: the alert and version each QoS 1 publish carries (None: a state).
     let mut tokens: VecDeque<Option<(String, u32)>> = VecDeque::new();
@@ -187,6 +168,7 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
                         tokens.push_back(None);
                     }
                     let _ = client.try_subscribe(&command_topic, QoS::AtLeastOnce);
+                    let _ = client.try_subscribe(&approve_topic, QoS::AtLeastOnce);
                     // A broker that lost its retained messages gets them again.
                     published_states.clear();
                     states_due = true;
@@ -212,32 +194,13 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
                         ledger.mark(&id, version, &f.delivered).await;
                     }
                 }
-                Some(Heard::Command(payload)) => {
-                    let client = client.clone();
-                    let requests = f.requests.clone();
-                    let result_topic = result_topic.clone();
-                    tokio::spawn(async move {
-                        let answer = match serde_json::from_slice::<AckCommand>(&payload) {
-                            Ok(c) => {
-                                let (tx, rx) = oneshot::channel();
-                                let req = Request::Ack { target: c.alert.clone(), by: c.by, note: c.note, via: "MQTT".into(), reply: tx };
-                                if requests.send(req).await.is_err() {
-                                    serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"})
-                                } else {
-                                    match rx.await {
-                                        Ok(r) => {
-                                            let mut v = crate::daemon::control::ack_json(&r);
-                                            v["alert"] = serde_json::Value::String(c.alert);
-                                            v
-                                        }
-                                        Err(_) => serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"}),
-                                    }
-                                }
-                            }
-                            Err(e) => serde_json::json!({"ok": false, "error": format!("not an acknowledgement ({e}); send {{\"alert\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}")}),
-                        };
-                        let _ = client.publish(result_topic, QoS::AtLeastOnce, false, answer.to_string()).await;
-                    });
+                Some(Heard::Command { approve, payload }) => {
+                    let (client, requests, topic) = (client.clone(), f.requests.clone(), result_topic.clone());
+                    if approve {
+                        tokio::spawn(answer_approval(client, requests, topic, payload));
+                    } else {
+                        tokio::spawn(answer_command(client, requests, topic, payload));
+                    }
                 }
                 None => break,
             },
@@ -274,4 +237,153 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
         let _ = poller.await;
     })
     .await;
+}
+
+/// Polls the client's event loop on its own task (a publish that waits for room must not stop
+/// the connection from making progress) and reports what it hears.
+fn spawn_poller(
+    mut eventloop: rumqttc::EventLoop,
+    ack: String,
+    approve: String,
+) -> (tokio::task::JoinHandle<()>, mpsc::UnboundedReceiver<Heard>) {
+    let (heard_tx, heard) = mpsc::unbounded_channel::<Heard>();
+    let poller = tokio::spawn(async move {
+        let mut backoff = Duration::from_millis(250);
+        loop {
+            match eventloop.poll().await {
+                Ok(Event::Incoming(Packet::ConnAck(_))) => {
+                    backoff = Duration::from_millis(250);
+                    if heard_tx.send(Heard::Connected).is_err() {
+                        break;
+                    }
+                }
+                Ok(Event::Incoming(Packet::PubAck(a))) => {
+                    let _ = heard_tx.send(Heard::Acked(a.pkid));
+                }
+                Ok(Event::Incoming(Packet::Publish(p))) if p.topic == ack || p.topic == approve => {
+                    let _ = heard_tx.send(Heard::Command {
+                        approve: p.topic == approve,
+                        payload: p.payload.to_vec(),
+                    });
+                }
+                Ok(Event::Outgoing(Outgoing::Publish(pkid))) => {
+                    let _ = heard_tx.send(Heard::Sent(pkid));
+                }
+                Ok(Event::Outgoing(Outgoing::Disconnect)) => break,
+                Ok(_) => {}
+                Err(e) => {
+                    if heard_tx.send(Heard::Lost(e.to_string())).is_err() {
+                        break;
+                    }
+                    tokio::time::sleep(backoff).await;
+                    backoff = (backoff * 2).min(Duration::from_secs(30));
+                }
+            }
+        }
+    });
+    (poller, heard)
+}
+
+/// Answers one message on the command topic: an acknowledgement, passed to the engine as from
+/// the control socket, and its result published on the result topic.
+async fn answer_command(
+    client: AsyncClient,
+    requests: mpsc::Sender<Request>,
+    result_topic: String,
+    payload: Vec<u8>,
+) {
+    if let Some(refusal) = too_large(&payload) {
+        return publish_result(&client, result_topic, refusal).await;
+    }
+    let answer = match serde_json::from_slice::<AckCommand>(&payload) {
+        Ok(c) => {
+            let (tx, rx) = oneshot::channel();
+            let req = Request::Ack {
+                target: c.alert.clone(),
+                by: c.by,
+                note: c.note,
+                via: "MQTT".into(),
+                reply: tx,
+            };
+            if requests.send(req).await.is_err() {
+                serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"})
+            } else {
+                match rx.await {
+                    Ok(r) => {
+                        let mut v = crate::daemon::control::ack_json(&r);
+                        v["alert"] = serde_json::Value::String(c.alert);
+                        v
+                    }
+                    Err(_) => {
+                        serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"})
+                    }
+                }
+            }
+        }
+        Err(e) => {
+            serde_json::json!({"ok": false, "error": format!("not an acknowledgement ({e}); send {{\"alert\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}")})
+        }
+    };
+    publish_result(&client, result_topic, answer).await;
+}
+
+/// Commands are a few hundred bytes; anything past this is refused unread.
+const MAX_COMMAND_BYTES: usize = 16 * 1024;
+
+fn too_large(payload: &[u8]) -> Option<serde_json::Value> {
+    (payload.len() > MAX_COMMAND_BYTES).then(|| {
+        serde_json::json!({"ok": false, "error": format!(
+            "the command is {} bytes; a command is at most {MAX_COMMAND_BYTES}",
+            payload.len()
+        )})
+    })
+}
+
+async fn publish_result(client: &AsyncClient, topic: String, answer: serde_json::Value) {
+    let _ = client
+        .publish(topic, QoS::AtLeastOnce, false, answer.to_string())
+        .await;
+}
+
+/// Answers one message on the approve topic: the approval goes to the engine as from the
+/// control socket (the engine checks the name and note, and that there is something to
+/// approve), and the result is published on the result topic.
+async fn answer_approval(
+    client: AsyncClient,
+    requests: mpsc::Sender<Request>,
+    result_topic: String,
+    payload: Vec<u8>,
+) {
+    if let Some(refusal) = too_large(&payload) {
+        return publish_result(&client, result_topic, refusal).await;
+    }
+    let answer = match serde_json::from_slice::<ApproveCommand>(&payload) {
+        Ok(c) => {
+            let (tx, rx) = oneshot::channel();
+            let req = Request::Approve {
+                characteristic: c.characteristic.clone(),
+                by: c.by,
+                note: c.note,
+                via: "MQTT".into(),
+                reply: tx,
+            };
+            let reply = if requests.send(req).await.is_ok() {
+                rx.await.ok()
+            } else {
+                None
+            };
+            match reply {
+                Some(r) => serde_json::json!({
+                    "ok": r.ok, "characteristic": c.characteristic, "error": r.error,
+                }),
+                None => serde_json::json!({
+                    "ok": false, "characteristic": c.characteristic, "error": "the daemon is stopping",
+                }),
+            }
+        }
+        Err(e) => serde_json::json!({"ok": false, "error": format!(
+            "not an approval ({e}); send {{\"characteristic\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}"
+        )}),
+    };
+    publish_result(&client, result_topic, answer).await;
 }
