@@ -29,6 +29,7 @@ fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
             .as_ref()
             .is_some_and(|p| p.to_string_lossy().contains("target/demo"))
         {
+            let c = std::sync::Arc::make_mut(c);
             c.limits = None;
             c.limits_path = Some(dir.path().join(format!("limits/{}.toml", c.id)));
         }

@@ -497,7 +497,7 @@ pub(super) fn build_characteristics(
     resolve: &impl Fn(&str) -> PathBuf,
     loc: &Locator,
     p: &mut Vec<Problem>,
-) -> Vec<Characteristic> {
+) -> Vec<std::sync::Arc<Characteristic>> {
     let mut ids = HashSet::new();
     let mut chars = Vec::new();
     for (i, c) in raw.characteristic.iter().enumerate() {
@@ -518,7 +518,7 @@ pub(super) fn build_characteristics(
             if let Some(lp) = &ch.limits_path
                 && let Some(other) = chars
                     .iter()
-                    .find(|o: &&Characteristic| o.limits_path.as_ref() == Some(lp))
+                    .find(|o: &&std::sync::Arc<Characteristic>| o.limits_path.as_ref() == Some(lp))
             {
                 p.push(loc.problem(
                     &format!("{at}.limits"),
@@ -529,7 +529,7 @@ pub(super) fn build_characteristics(
                     ),
                 ));
             }
-            chars.push(ch);
+            chars.push(std::sync::Arc::new(ch));
         }
     }
     chars

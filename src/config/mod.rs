@@ -82,7 +82,7 @@ pub struct Config {
     pub learned_limits_dir: Option<PathBuf>,
     pub flush_interval_ms: u64,
     pub max_segment_bytes: u64,
-    pub characteristics: Vec<Characteristic>,
+    pub characteristics: Vec<std::sync::Arc<Characteristic>>,
     pub sources: Vec<Source>,
     pub alerts: AlertsConfig,
     pub outputs: Vec<Output>,

@@ -178,7 +178,8 @@ enum Mode {
 }
 
 struct CharEngine {
-    cfg: Characteristic,
+    /// Shared with the configuration (one copy per characteristic in the whole daemon).
+    cfg: std::sync::Arc<Characteristic>,
     /// The last subgroups, oldest first (for charts and the status).
     recent: std::collections::VecDeque<SubgroupSummary>,
     asm: Assembler,
@@ -300,7 +301,10 @@ impl Engine {
         let mut next = BTreeMap::new();
         for c in &cfg.characteristics {
             match self.chars.remove(&c.id) {
-                Some(old) if &old.cfg == c => {
+                Some(mut old) if old.cfg == *c => {
+                    // The same configuration: keep the state, and share the new copy so that
+                    // only one is held.
+                    old.cfg = c.clone();
                     next.insert(c.id.clone(), old);
                 }
                 old => {
@@ -729,7 +733,7 @@ impl Engine {
 }
 
 impl CharEngine {
-    fn new(cfg: Characteristic, now_ms: i64) -> Self {
+    fn new(cfg: std::sync::Arc<Characteristic>, now_ms: i64) -> Self {
         let asm = Assembler::new(cfg.grouping.clone(), cfg.max_wait_ms, cfg.on_timeout);
         let basis = reading_basis(&cfg);
         let reading_rules = ReadingEvaluator::new(&cfg.rules, basis, now_ms);
