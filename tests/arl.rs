@@ -6,13 +6,11 @@ use linewarden::rules::config::{ChartSide, Rule, RuleKind, RuleSet};
 use linewarden::rules::{Preset, Severity};
 
 fn single(kind: RuleKind) -> RuleSet {
-    RuleSet {
-        rules: vec![Rule {
-            id: kind.name().to_string(),
-            severity: Severity::Warn,
-            kind,
-        }],
-    }
+    RuleSet::new(vec![Rule {
+        id: kind.name().to_string(),
+        severity: Severity::Warn,
+        kind,
+    }])
 }
 
 fn within(actual: f64, published: f64, rel: f64, what: &str) {

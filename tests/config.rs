@@ -512,3 +512,48 @@ subgroup = { size = 1 }
         .to_string();
     assert!(e.contains("is also characteristic \"bore\"'s"), "{e}");
 }
+
+/// 10,000 characteristics on one preset must not hold 10,000 copies of it: characteristics
+/// with the same rules share one rule set, and the evaluators built from it share its
+/// subgroup rules; different rules stay apart.
+#[test]
+fn characteristics_with_the_same_rules_share_one_copy() {
+    use linewarden::rules::point::{ChartBasis, PointEvaluator};
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let text = r#"
+[daemon]
+archive_dir = "archive"
+
+[[characteristic]]
+id = "a"
+subgroup = { size = 4 }
+[characteristic.rules]
+preset = "nelson"
+
+[[characteristic]]
+id = "b"
+subgroup = { size = 4 }
+[characteristic.rules]
+preset = "nelson"
+
+[[characteristic]]
+id = "c"
+subgroup = { size = 4 }
+[characteristic.rules]
+preset = "nelson"
+off = ["steady-trend"]
+"#;
+    std::fs::write(d.join("cell.toml"), text).unwrap();
+    let c = linewarden::config::load(&d.join("cell.toml")).unwrap();
+    let [a, b, x] = [0, 1, 2].map(|i| c.characteristics[i].rules.clone());
+    assert!(std::sync::Arc::ptr_eq(&a, &b), "the same preset: one copy");
+    assert!(
+        !std::sync::Arc::ptr_eq(&a, &x),
+        "different rules: their own"
+    );
+    assert_ne!(a.rules.len(), x.rules.len());
+    let e1 = PointEvaluator::new(&a, ChartBasis::standard());
+    let e2 = PointEvaluator::new(&b, ChartBasis::standard());
+    assert!(std::ptr::eq(e1.rules().as_ptr(), e2.rules().as_ptr()));
+}

@@ -125,7 +125,8 @@ pub struct Characteristic {
     pub chart: VariablesChart,
     pub valid: Option<(f64, f64)>,
     pub spec: Option<Spec>,
-    pub rules: RuleSet,
+    /// Shared by the characteristics whose rules are the same.
+    pub rules: std::sync::Arc<RuleSet>,
     /// The `limits` file as configured (resolved), whether or not it exists.
     pub configured_limits: Option<PathBuf>,
     /// The limits file in use: the configured one when it exists, else where learned limits
@@ -317,10 +318,10 @@ fn build_characteristic(
         p.push(loc.problem(&format!("{at}.spec"), format!("{who}: {e}")));
     }
     let rules = match RuleSet::from_config(&c.rules, &format!("{at}.rules"), loc) {
-        Ok(r) => r,
+        Ok(r) => std::sync::Arc::new(r),
         Err(mut more) => {
             p.append(&mut more);
-            RuleSet::default()
+            Default::default()
         }
     };
     for (j, r) in c.rules.rule.iter().enumerate() {
@@ -500,6 +501,7 @@ pub(super) fn build_characteristics(
 ) -> Vec<std::sync::Arc<Characteristic>> {
     let mut ids = HashSet::new();
     let mut chars = Vec::new();
+    let mut sets: std::collections::HashMap<String, std::sync::Arc<RuleSet>> = Default::default();
     for (i, c) in raw.characteristic.iter().enumerate() {
         let at = format!("characteristic[{i}]");
         let who = format!("characteristic \"{}\"", c.id);
@@ -529,6 +531,12 @@ pub(super) fn build_characteristics(
                     ),
                 ));
             }
+            // One copy of each distinct rule set (a cell's characteristics mostly share a
+            // preset): the evaluators share it too.
+            let mut ch = ch;
+            // Keyed by its text: rules hold numbers, which do not hash.
+            let key = serde_json::to_string(&*ch.rules).unwrap_or_default();
+            ch.rules = sets.entry(key).or_insert_with(|| ch.rules.clone()).clone();
             chars.push(std::sync::Arc::new(ch));
         }
     }

@@ -202,12 +202,37 @@ impl Rule {
 }
 
 /// A characteristic's validated rules, in evaluation order.
-#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, Serialize, Deserialize)]
 pub struct RuleSet {
     pub rules: Vec<Rule>,
+    /// The subgroup rules, built once and shared by every evaluator of this set (10,000
+    /// characteristics on one preset hold one copy).
+    #[serde(skip)]
+    point: std::sync::OnceLock<std::sync::Arc<[Rule]>>,
+}
+
+impl PartialEq for RuleSet {
+    fn eq(&self, other: &Self) -> bool {
+        self.rules == other.rules
+    }
 }
 
 impl RuleSet {
+    /// A set of `rules`, in evaluation order.
+    pub fn new(rules: Vec<Rule>) -> Self {
+        RuleSet {
+            rules,
+            point: Default::default(),
+        }
+    }
+
+    /// The subgroup rules, shared.
+    pub fn point_rules_shared(&self) -> std::sync::Arc<[Rule]> {
+        self.point
+            .get_or_init(|| self.point_rules().cloned().collect())
+            .clone()
+    }
+
     /// The rules of a published preset, with the published counts.
     pub fn preset(p: Preset) -> Self {
         use RuleKind::*;
@@ -270,7 +295,7 @@ impl RuleSet {
                 ),
             ],
         };
-        RuleSet { rules }
+        RuleSet::new(rules)
     }
 
     /// Builds the rule set from its TOML table at `path` (e.g. `rules` or

@@ -215,7 +215,8 @@ pub struct PointState {
 /// Evaluates a rule set's subgroup rules, one point at a time.
 #[derive(Debug, Clone, PartialEq)]
 pub struct PointEvaluator {
-    rules: Vec<Rule>,
+    /// Shared with the rule set (and so with every evaluator of the same set).
+    rules: std::sync::Arc<[Rule]>,
     basis: ChartBasis,
     keep: usize,
     state: PointState,
@@ -227,7 +228,7 @@ pub type Fired = u64;
 impl PointEvaluator {
     /// A fresh evaluator for the point rules of `set`.
     pub fn new(set: &RuleSet, basis: ChartBasis) -> Self {
-        let rules: Vec<Rule> = set.point_rules().cloned().collect();
+        let rules = set.point_rules_shared();
         let keep = rules.iter().map(|r| span(&r.kind)).max().unwrap_or(1) as usize;
         let states = rules.iter().map(|r| initial(&r.kind)).collect();
         PointEvaluator {
@@ -235,7 +236,9 @@ impl PointEvaluator {
             basis,
             keep,
             state: PointState {
-                recent: VecDeque::with_capacity(keep),
+                // Grown as points come (a characteristic that has seen few subgroups holds
+                // few).
+                recent: VecDeque::new(),
                 last_z: None,
                 rules: states,
             },
@@ -331,7 +334,7 @@ impl PointEvaluator {
         // The dispersion chart: only the limits rule applies to it (common practice: the
         // pattern rules assume the symmetric distribution of the location statistic).
         if let (Some(d), Some(lim)) = (p.dispersion, self.basis.dispersion_for(p.n)) {
-            for rule in &self.rules {
+            for rule in self.rules.iter() {
                 if let RuleKind::BeyondLimits {
                     chart: ChartSide::Both | ChartSide::Dispersion,
                 } = rule.kind
