@@ -277,10 +277,12 @@ pub fn from_summary(
     })
 }
 
+/// The verdict on an index and the lower end of its interval. An interval that could not be
+/// found (NaN: every bootstrap sample failed to refit) proves nothing.
 fn verdict_of(index: f64, lower: f64, threshold: f64) -> Verdict {
     if index < threshold {
         Verdict::NotCapable
-    } else if lower < threshold {
+    } else if lower.is_nan() || lower < threshold {
         Verdict::CapableUnproven
     } else {
         Verdict::Capable
@@ -554,4 +556,16 @@ pub fn bissell(c: f64, n: usize, confidence: f64) -> [f64; 2] {
     let z = Normal::standard().inverse_cdf(1.0 - (1.0 - confidence) / 2.0);
     let half = z * (1.0 / (9.0 * nf * c * c) + 1.0 / (2.0 * (nf - 1.0))).sqrt();
     [c * (1.0 - half), c * (1.0 + half)]
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn an_index_without_an_interval_is_capable_only_unproven() {
+        assert_eq!(verdict_of(1.5, f64::NAN, 1.33), Verdict::CapableUnproven);
+        assert_eq!(verdict_of(1.5, 1.4, 1.33), Verdict::Capable);
+        assert_eq!(verdict_of(1.2, f64::NAN, 1.33), Verdict::NotCapable);
+    }
 }
