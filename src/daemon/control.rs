@@ -10,7 +10,7 @@ use serde::{Deserialize, Serialize};
 use tokio::io::{AsyncBufReadExt, AsyncReadExt, AsyncWriteExt};
 use tokio::sync::{mpsc, oneshot, watch};
 
-use super::hub::{AckReply, Request};
+use super::hub::Request;
 use crate::config::Control;
 
 /// What a client asks.
@@ -170,7 +170,7 @@ async fn handle(req: ClientRequest, requests: &mpsc::Sender<Request>) -> serde_j
 
 /// Sends the engine the request `make` builds around a reply channel, and gives its answer as
 /// JSON (or that the daemon is stopping).
-async fn engine_answer<T: Serialize>(
+pub(crate) async fn engine_answer<T: Serialize>(
     requests: &mpsc::Sender<Request>,
     make: impl FnOnce(oneshot::Sender<T>) -> Request,
 ) -> serde_json::Value {
@@ -203,9 +203,4 @@ pub fn ask(socket: &Path, req: &ClientRequest) -> Result<serde_json::Value, Stri
         .read_line(&mut answer)
         .map_err(|e| format!("no answer from the daemon: {e}"))?;
     serde_json::from_str(answer.trim()).map_err(|e| format!("a bad answer from the daemon: {e}"))
-}
-
-/// The reply to an acknowledgement, as JSON the MQTT command topic also uses.
-pub fn ack_json(a: &AckReply) -> serde_json::Value {
-    serde_json::to_value(a).unwrap_or_default()
 }

@@ -20,11 +20,12 @@ use std::time::Duration;
 
 use rumqttc::{AsyncClient, Event, LastWill, Outgoing, Packet, QoS};
 use serde::Deserialize;
-use tokio::sync::{mpsc, oneshot};
+use tokio::sync::mpsc;
 
 use super::{Feeds, Ledger};
 use crate::config::{Broker, Output};
 use crate::daemon::clock::now_ms;
+use crate::daemon::control::engine_answer;
 use crate::daemon::hub::Request;
 
 /// What the event loop task tells the output loop.
@@ -195,12 +196,7 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
                     }
                 }
                 Some(Heard::Command { approve, payload }) => {
-                    let (client, requests, topic) = (client.clone(), f.requests.clone(), result_topic.clone());
-                    if approve {
-                        tokio::spawn(answer_approval(client, requests, topic, payload));
-                    } else {
-                        tokio::spawn(answer_command(client, requests, topic, payload));
-                    }
+                    tokio::spawn(answer_command(client.clone(), f.requests.clone(), result_topic.clone(), approve, payload));
                 }
                 None => break,
             },
@@ -284,47 +280,60 @@ fn spawn_poller(
     (poller, heard)
 }
 
-/// Answers one message on the command topic: an acknowledgement, passed to the engine as from
-/// the control socket, and its result published on the result topic.
+/// Answers one message on a command topic (an acknowledgement, or with `approve` an approval
+/// of learned limits), passed to the engine as from the control socket; the result goes to the
+/// result topic, naming the alert or characteristic it concerns.
 async fn answer_command(
     client: AsyncClient,
     requests: mpsc::Sender<Request>,
     result_topic: String,
+    approve: bool,
     payload: Vec<u8>,
 ) {
-    if let Some(refusal) = too_large(&payload) {
-        return publish_result(&client, result_topic, refusal).await;
-    }
-    let answer = match serde_json::from_slice::<AckCommand>(&payload) {
-        Ok(c) => {
-            let (tx, rx) = oneshot::channel();
-            let req = Request::Ack {
-                target: c.alert.clone(),
-                by: c.by,
-                note: c.note,
-                via: "MQTT".into(),
-                reply: tx,
-            };
-            if requests.send(req).await.is_err() {
-                serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"})
-            } else {
-                match rx.await {
-                    Ok(r) => {
-                        let mut v = crate::daemon::control::ack_json(&r);
-                        v["alert"] = serde_json::Value::String(c.alert);
-                        v
-                    }
-                    Err(_) => {
-                        serde_json::json!({"ok": false, "alert": c.alert, "error": "the daemon is stopping"})
-                    }
-                }
+    let answer = if let Some(refusal) = too_large(&payload) {
+        refusal
+    } else if approve {
+        match serde_json::from_slice::<ApproveCommand>(&payload) {
+            Ok(c) => {
+                let id = c.characteristic.clone();
+                let mut v = engine_answer(&requests, |reply| Request::Approve {
+                    characteristic: c.characteristic,
+                    by: c.by,
+                    note: c.note,
+                    via: "MQTT".into(),
+                    reply,
+                })
+                .await;
+                v["characteristic"] = serde_json::Value::String(id);
+                v
             }
+            Err(e) => serde_json::json!({"ok": false, "error": format!(
+                "not an approval ({e}); send {{\"characteristic\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}"
+            )}),
         }
-        Err(e) => {
-            serde_json::json!({"ok": false, "error": format!("not an acknowledgement ({e}); send {{\"alert\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}")})
+    } else {
+        match serde_json::from_slice::<AckCommand>(&payload) {
+            Ok(c) => {
+                let id = c.alert.clone();
+                let mut v = engine_answer(&requests, |reply| Request::Ack {
+                    target: c.alert,
+                    by: c.by,
+                    note: c.note,
+                    via: "MQTT".into(),
+                    reply,
+                })
+                .await;
+                v["alert"] = serde_json::Value::String(id);
+                v
+            }
+            Err(e) => serde_json::json!({"ok": false, "error": format!(
+                "not an acknowledgement ({e}); send {{\"alert\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}"
+            )}),
         }
     };
-    publish_result(&client, result_topic, answer).await;
+    let _ = client
+        .publish(result_topic, QoS::AtLeastOnce, false, answer.to_string())
+        .await;
 }
 
 /// Commands are a few hundred bytes; anything past this is refused unread.
@@ -337,53 +346,4 @@ fn too_large(payload: &[u8]) -> Option<serde_json::Value> {
             payload.len()
         )})
     })
-}
-
-async fn publish_result(client: &AsyncClient, topic: String, answer: serde_json::Value) {
-    let _ = client
-        .publish(topic, QoS::AtLeastOnce, false, answer.to_string())
-        .await;
-}
-
-/// Answers one message on the approve topic: the approval goes to the engine as from the
-/// control socket (the engine checks the name and note, and that there is something to
-/// approve), and the result is published on the result topic.
-async fn answer_approval(
-    client: AsyncClient,
-    requests: mpsc::Sender<Request>,
-    result_topic: String,
-    payload: Vec<u8>,
-) {
-    if let Some(refusal) = too_large(&payload) {
-        return publish_result(&client, result_topic, refusal).await;
-    }
-    let answer = match serde_json::from_slice::<ApproveCommand>(&payload) {
-        Ok(c) => {
-            let (tx, rx) = oneshot::channel();
-            let req = Request::Approve {
-                characteristic: c.characteristic.clone(),
-                by: c.by,
-                note: c.note,
-                via: "MQTT".into(),
-                reply: tx,
-            };
-            let reply = if requests.send(req).await.is_ok() {
-                rx.await.ok()
-            } else {
-                None
-            };
-            match reply {
-                Some(r) => serde_json::json!({
-                    "ok": r.ok, "characteristic": c.characteristic, "error": r.error,
-                }),
-                None => serde_json::json!({
-                    "ok": false, "characteristic": c.characteristic, "error": "the daemon is stopping",
-                }),
-            }
-        }
-        Err(e) => serde_json::json!({"ok": false, "error": format!(
-            "not an approval ({e}); send {{\"characteristic\": \"<id>\", \"by\": \"<name>\", \"note\": \"...\"}}"
-        )}),
-    };
-    publish_result(&client, result_topic, answer).await;
 }
