@@ -414,3 +414,27 @@ fn filters_select_by_characteristic_kind_sequence_and_time() {
         0
     );
 }
+
+/// A frame written in place (how a checkpoint of 10,000 characteristics is framed without a
+/// second copy of it) is byte for byte the frame of the same payload written from a copy, and a
+/// payload that fails to serialize leaves the buffer as it was.
+#[test]
+fn a_frame_written_in_place_equals_one_written_from_a_copy() {
+    let payload = br#"{"v":1,"seq":7,"kind":"checkpoint","characteristics":{}}"#;
+    let mut a = b"earlier bytes".to_vec();
+    let mut b = a.clone();
+    segment::encode(segment::TYPE_RECORD, payload, &mut a);
+    segment::encode_with(segment::TYPE_RECORD, &mut b, |out| {
+        out.extend_from_slice(payload);
+        Ok::<(), ()>(())
+    })
+    .unwrap();
+    assert_eq!(a, b);
+    let before = b.clone();
+    let failed = segment::encode_with(segment::TYPE_RECORD, &mut b, |out| {
+        out.extend_from_slice(b"half a rec");
+        Err("does not serialize")
+    });
+    assert_eq!(failed, Err("does not serialize"));
+    assert_eq!(b, before);
+}

@@ -74,6 +74,28 @@ pub fn encode(kind: u8, payload: &[u8], out: &mut Vec<u8>) {
     out.extend_from_slice(payload);
 }
 
+/// Appends a frame whose payload `write` puts straight into `out` (no copy of a large payload);
+/// on an error `out` is left as it was.
+pub fn encode_with<E>(
+    kind: u8,
+    out: &mut Vec<u8>,
+    write: impl FnOnce(&mut Vec<u8>) -> Result<(), E>,
+) -> Result<(), E> {
+    let start = out.len();
+    out.extend_from_slice(&[0u8; 9]);
+    if let Err(e) = write(out) {
+        out.truncate(start);
+        return Err(e);
+    }
+    let len = (out.len() - start - 9 + 1) as u32;
+    out[start + 8] = kind;
+    let mut crc = crc32c::crc32c(&len.to_le_bytes());
+    crc = crc32c::crc32c_append(crc, &out[start + 8..]);
+    out[start..start + 4].copy_from_slice(&len.to_le_bytes());
+    out[start + 4..start + 8].copy_from_slice(&crc.to_le_bytes());
+    Ok(())
+}
+
 /// A frame found in a buffer.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Frame<'a> {

@@ -447,23 +447,33 @@ async fn carry_out(
                 } else {
                     ""
                 };
-                let state = if learning {
-                    "learning limits".to_string()
-                } else if fired.is_empty() {
-                    format!("in control{on}")
-                } else {
-                    format!("fired{on}: {}", fired.join(", "))
-                };
                 let fixed = |v: f64| crate::format::fixed(v, decimals);
-                tracing::info!(
-                    component = "engine",
-                    characteristic = %characteristic,
-                    "subgroup {}: mean {} (n = {}){}, {state}",
-                    subgroup.number,
-                    fixed(subgroup.mean),
-                    subgroup.n,
-                    subgroup.dispersion.map(|d| format!(", spread {}", fixed(d))).unwrap_or_default()
-                );
+                let line = || {
+                    let state = if learning {
+                        "learning limits".to_string()
+                    } else if fired.is_empty() {
+                        format!("in control{on}")
+                    } else {
+                        format!("fired{on}: {}", fired.join(", "))
+                    };
+                    format!(
+                        "subgroup {}: mean {} (n = {}){}, {state}",
+                        subgroup.number,
+                        fixed(subgroup.mean),
+                        subgroup.n,
+                        subgroup
+                            .dispersion
+                            .map(|d| format!(", spread {}", fixed(d)))
+                            .unwrap_or_default()
+                    )
+                };
+                // A subgroup that fired is worth a line in the journal; the quiet ones (one per
+                // subgroup per characteristic, all day) only at debug level.
+                if fired.is_empty() {
+                    tracing::debug!(component = "engine", characteristic = %characteristic, "{}", line());
+                } else {
+                    tracing::info!(component = "engine", characteristic = %characteristic, "{}", line());
+                }
                 fx.dirty.insert(characteristic);
             }
             Output::Log {

@@ -241,8 +241,8 @@ pub fn message_key(pkid: u16, topic: &str, payload: &[u8]) -> String {
     h.update([0u8]);
     h.update(payload);
     let d = h.finalize();
-    let hex: String = d[..8].iter().map(|b| format!("{b:02x}")).collect();
-    format!("mqtt:{pkid}:{hex}")
+    let content = u64::from_be_bytes(d[..8].try_into().expect("a SHA-256 digest has 32 bytes"));
+    format!("mqtt:{pkid}:{content:016x}")
 }
 
 /// The packet id in a key made by [`message_key`].
@@ -250,9 +250,10 @@ fn key_pkid(key: &str) -> Option<u16> {
     key.strip_prefix("mqtt:")?.split(':').next()?.parse().ok()
 }
 
-/// The content hash in a key made by [`message_key`].
-fn key_content(key: &str) -> &str {
-    key.rsplit(':').next().unwrap_or(key)
+/// The content hash in a key made by [`message_key`] (None for a key of another shape, which
+/// then matches nothing).
+fn key_content(key: &str) -> Option<u64> {
+    u64::from_str_radix(key.rsplit(':').next()?, 16).ok()
 }
 
 /// The keys source `name` archived (accepted or rejected), oldest first, from the newest two segments (what the
@@ -304,7 +305,9 @@ pub async fn run(
         }
     };
     let (client, mut eventloop): (AsyncClient, EventLoop) = AsyncClient::new(opts, 1024);
-    let (ack_tx, ack_rx) = mpsc::unbounded_channel::<Publish>();
+    // Only what an acknowledgement needs: a queued message would keep its payload, and with
+    // it the whole read buffer it was cut from, alive until the archive has it.
+    let (ack_tx, ack_rx) = mpsc::unbounded_channel::<(u16, QoS)>();
     let acker = tokio::spawn(acknowledge(client.clone(), ack_rx, tx.clone()));
     let qos = if src.qos == 0 {
         QoS::AtMostOnce
@@ -401,7 +404,7 @@ pub async fn run(
                         break;
                     }
                 }
-                if needs_ack && ack_tx.send(p).is_err() {
+                if needs_ack && ack_tx.send((p.pkid, p.qos)).is_err() {
                     break;
                 }
             }
@@ -548,10 +551,10 @@ pub fn skew_warning(source_ms: i64, arrival_ms: i64, src: &MqttSource, count: u6
 #[derive(Debug, Clone)]
 pub struct Redeliveries {
     mode: Duplicates,
-    /// Packet id → key of the last message archived under it (packet-id mode).
-    last_key: HashMap<u16, String>,
+    /// Packet id → content hash of the last message archived under it (packet-id mode).
+    last_key: HashMap<u16, Option<u64>>,
     /// Content hashes of the last `window` messages archived (content mode).
-    recent: VecDeque<String>,
+    recent: VecDeque<Option<u64>>,
     window: usize,
     /// Content mode: the backlog after connecting is still arriving.
     catching_up: bool,
@@ -586,12 +589,15 @@ impl Redeliveries {
     pub fn is_redelivery(&mut self, dup: bool, key: &str) -> bool {
         match self.mode {
             Duplicates::PacketId => {
-                dup && key_pkid(key)
-                    .is_some_and(|id| self.last_key.get(&id).is_some_and(|k| k == key))
+                dup && key_pkid(key).is_some_and(|id| {
+                    self.last_key
+                        .get(&id)
+                        .is_some_and(|k| k.is_some() && *k == key_content(key))
+                })
             }
             Duplicates::Content { .. } if self.catching_up => {
                 let c = key_content(key);
-                let seen = self.recent.iter().any(|r| r == c);
+                let seen = c.is_some() && self.recent.iter().any(|r| *r == c);
                 // The first message not archived before ends the backlog: the broker sends what
                 // it holds in order, and everything after it is new.
                 self.catching_up = seen;
@@ -604,7 +610,7 @@ impl Redeliveries {
     /// The message with `key` is being archived (accepted or rejected).
     pub fn archived(&mut self, key: &str) {
         if let Some(id) = key_pkid(key) {
-            self.last_key.insert(id, key.to_string());
+            self.last_key.insert(id, key_content(key));
         }
         if self.window == 0 {
             return;
@@ -612,7 +618,7 @@ impl Redeliveries {
         if self.recent.len() == self.window {
             self.recent.pop_front();
         }
-        self.recent.push_back(key_content(key).to_string());
+        self.recent.push_back(key_content(key));
     }
 }
 
@@ -620,7 +626,7 @@ impl Redeliveries {
 /// over since the last batch waits for one Barrier behind it in the engine queue.
 async fn acknowledge(
     client: AsyncClient,
-    mut rx: mpsc::UnboundedReceiver<Publish>,
+    mut rx: mpsc::UnboundedReceiver<(u16, QoS)>,
     tx: mpsc::Sender<SourceEvent>,
 ) {
     while let Some(first) = rx.recv().await {
@@ -635,8 +641,10 @@ async fn acknowledge(
         if tx.send(SourceEvent::Barrier(done)).await.is_err() || durable.await.is_err() {
             return; // the engine stopped: nothing more is known durable; the broker redelivers
         }
-        for p in &batch {
-            if client.ack(p).await.is_err() {
+        for &(pkid, qos) in &batch {
+            let mut p = Publish::new(String::new(), qos, Vec::new());
+            p.pkid = pkid;
+            if client.ack(&p).await.is_err() {
                 return;
             }
         }
