@@ -43,6 +43,20 @@ pub struct Point {
     pub sigma: Option<f64>,
     /// Part of a signal: marked.
     pub marked: bool,
+    /// Written beside the point: the rules that fired on it (on the point that completed the
+    /// pattern; the other points of the pattern are only marked).
+    pub label: Option<String>,
+    /// Left out of the limits (drawn hollow).
+    pub excluded: bool,
+}
+
+/// What the horizontal axis shows.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Axis {
+    /// The plant's local time of each subgroup (what the daemon formed).
+    Time,
+    /// Subgroup numbers (a study from a file, which has no times).
+    Number,
 }
 
 /// One chart of the picture.
@@ -67,6 +81,7 @@ pub struct Picture {
     pub note: Option<String>,
     pub panels: Vec<Panel>,
     pub tz: jiff::tz::TimeZone,
+    pub axis: Axis,
 }
 
 /// Colours (ours; the meaning is in the labels, never in the colour alone).
@@ -81,6 +96,8 @@ const NOTE: RGBColor = RGBColor(170, 90, 0);
 
 /// Width of the margin on the right that holds the line labels, in pixels.
 const LABEL_MARGIN: u32 = 118;
+/// Rows of point labels above the data at most.
+const MAX_LANES: usize = 4;
 /// Smallest vertical distance between two line labels, in pixels.
 const LABEL_GAP: i32 = 13;
 
@@ -135,6 +152,8 @@ impl Picture {
                     limits: basis.map(|b| b.location_for(s.n)),
                     sigma: basis.map(|b| b.sigma_point(s.n)),
                     marked: loc_marked.contains(&s.number),
+                    label: None,
+                    excluded: false,
                 })
                 .collect(),
             zones: c.zones && basis.is_some(),
@@ -175,6 +194,8 @@ impl Picture {
                         limits: basis.and_then(|b| b.dispersion_for(s.n)),
                         sigma: None,
                         marked: disp_marked.contains(&s.number),
+                        label: None,
+                        excluded: false,
                     })
                 })
                 .collect(),
@@ -202,7 +223,243 @@ impl Picture {
             note,
             panels,
             tz: tz.clone(),
+            axis: Axis::Time,
         })
+    }
+
+    /// The picture of a baseline study from a file: its final limits (stepped where subgroup
+    /// sizes differ), the subgroups outside them marked `beyond limits`, the excluded ones
+    /// hollow; subgroup numbers on the axis.
+    pub fn of_study(
+        study: &crate::stats::study::Study,
+        title: &str,
+        unit: &str,
+        zones: bool,
+        spec: Option<(Option<f64>, Option<f64>)>,
+    ) -> Picture {
+        use crate::stats::variables::{DispersionKind, VariablesChart};
+        let individuals = study.chart == VariablesChart::Individuals;
+        let decimals = decimals_for(spread_of(study.points.iter().map(|p| p.stats.mean)));
+        let unit = if unit.is_empty() {
+            String::new()
+        } else {
+            format!(" ({unit})")
+        };
+        let beyond = |v: f64, l: &Limits| v > l.ucl || v < l.lcl;
+        let location = Panel {
+            what: format!(
+                "{}{unit}",
+                if individuals {
+                    "reading"
+                } else {
+                    "subgroup mean"
+                }
+            ),
+            points: study
+                .points
+                .iter()
+                .map(|p| {
+                    let out = beyond(p.stats.mean, &p.location);
+                    Point {
+                        number: p.subgroup as u64,
+                        time_ms: 0,
+                        value: p.stats.mean,
+                        limits: Some(p.location),
+                        sigma: Some((p.location.ucl - p.location.center) / 3.0),
+                        marked: out,
+                        label: out.then(|| "beyond limits".to_string()),
+                        excluded: !p.included,
+                    }
+                })
+                .collect(),
+            zones,
+            lsl: if individuals {
+                spec.and_then(|s| s.0)
+            } else {
+                None
+            },
+            usl: if individuals {
+                spec.and_then(|s| s.1)
+            } else {
+                None
+            },
+            decimals,
+        };
+        let kind = match study.dispersion_kind {
+            DispersionKind::Range => "subgroup range",
+            DispersionKind::StdDev => "subgroup standard deviation",
+            DispersionKind::MovingRange => "moving range",
+        };
+        let spread = Panel {
+            what: format!("{kind}{unit}"),
+            points: study
+                .points
+                .iter()
+                .filter_map(|p| {
+                    let d = p.stats.dispersion?;
+                    let out = beyond(d, &p.dispersion_limits);
+                    Some(Point {
+                        number: p.subgroup as u64,
+                        time_ms: 0,
+                        value: d,
+                        limits: Some(p.dispersion_limits),
+                        sigma: None,
+                        marked: out,
+                        label: out.then(|| "beyond limits".to_string()),
+                        excluded: !p.included,
+                    })
+                })
+                .collect(),
+            zones: false,
+            lsl: None,
+            usl: None,
+            decimals: decimals + 1,
+        };
+        let mut panels = vec![location];
+        if !spread.points.is_empty() {
+            panels.push(spread);
+        }
+        let excluded = study.excluded.len();
+        let note = (excluded > 0).then(|| {
+            format!(
+                "{excluded} of {} subgroups excluded from the limits (drawn hollow)",
+                study.subgroups_total
+            )
+        });
+        Picture {
+            title: title.to_string(),
+            note,
+            panels,
+            tz: jiff::tz::TimeZone::UTC,
+            axis: Axis::Number,
+        }
+    }
+
+    /// The picture of a window of the archive: every subgroup against the limits recorded in
+    /// force when it was judged (stepped where they changed), each violation's points marked
+    /// and the subgroup that completed it labelled with the rule; local times on the axis.
+    pub fn of_window(
+        w: &crate::archive::window::CharacteristicWindow,
+        title: &str,
+        unit: &str,
+        zones: bool,
+        tz: &jiff::tz::TimeZone,
+    ) -> Picture {
+        use crate::rules::Chart;
+        use std::collections::{HashMap, HashSet};
+        let individuals = w.subgroups.iter().all(|s| s.summary.n == 1);
+        let decimals = decimals_for(spread_of(w.subgroups.iter().map(|s| s.summary.mean)));
+        let unit = if unit.is_empty() {
+            String::new()
+        } else {
+            format!(" ({unit})")
+        };
+        let mut marked: HashMap<Chart, HashSet<u64>> = HashMap::new();
+        let mut labels: HashMap<(Chart, u64), Vec<String>> = HashMap::new();
+        // A rule is named where it starts to fire, not again on every subgroup while it goes
+        // on firing (a shifted process fires the same rules on subgroup after subgroup): again
+        // only after it has been quiet for QUIET subgroups.
+        const QUIET: usize = 10;
+        let mut last_fired: HashMap<(Chart, String), usize> = HashMap::new();
+        for (i, s) in w.subgroups.iter().enumerate() {
+            for v in &s.violations {
+                marked
+                    .entry(v.chart)
+                    .or_default()
+                    .extend(v.points.iter().map(|p| p.number));
+                let key = (v.chart, v.rule.clone());
+                let fresh = last_fired.get(&key).is_none_or(|&j| i - j > QUIET);
+                let here = labels.entry((v.chart, s.summary.number)).or_default();
+                if fresh && !here.contains(&v.rule) {
+                    here.push(v.rule.clone());
+                }
+                last_fired.insert(key, i);
+            }
+        }
+        labels.retain(|_, l| !l.is_empty());
+        let point = |chart: Chart,
+                     s: &crate::archive::window::ArchivedSubgroup,
+                     value: f64,
+                     limits: Option<Limits>| Point {
+            number: s.summary.number,
+            time_ms: s.summary.time_ms,
+            value,
+            limits,
+            sigma: limits.map(|l| (l.ucl - l.center) / 3.0),
+            marked: marked
+                .get(&chart)
+                .is_some_and(|m| m.contains(&s.summary.number)),
+            label: labels.get(&(chart, s.summary.number)).map(|l| l.join(", ")),
+            excluded: false,
+        };
+        let location = Panel {
+            what: format!(
+                "{}{unit}",
+                if individuals {
+                    "reading"
+                } else {
+                    "subgroup mean"
+                }
+            ),
+            points: w
+                .subgroups
+                .iter()
+                .map(|s| point(Chart::Location, s, s.summary.mean, s.location))
+                .collect(),
+            zones,
+            lsl: None,
+            usl: None,
+            decimals,
+        };
+        let kind = match w.limits.as_ref().map(|l| l.chart) {
+            Some(c) => match c.dispersion_kind() {
+                crate::stats::variables::DispersionKind::Range => "subgroup range",
+                crate::stats::variables::DispersionKind::StdDev => "subgroup standard deviation",
+                crate::stats::variables::DispersionKind::MovingRange => "moving range",
+            },
+            None if individuals => "moving range",
+            None => "subgroup range",
+        };
+        let spread = Panel {
+            what: format!("{kind}{unit}"),
+            points: w
+                .subgroups
+                .iter()
+                .filter_map(|s| {
+                    Some(point(
+                        Chart::Dispersion,
+                        s,
+                        s.summary.dispersion?,
+                        s.dispersion,
+                    ))
+                })
+                .collect(),
+            zones: false,
+            lsl: None,
+            usl: None,
+            decimals: decimals + 1,
+        };
+        let mut panels = vec![location];
+        if !spread.points.is_empty() {
+            panels.push(spread);
+        }
+        let note = match &w.limits {
+            None => {
+                Some("no limits in force in this window: the daemon was learning them".to_string())
+            }
+            Some(l) if l.provenance.provisional && l.approved.is_none() => Some(
+                "PROVISIONAL limits: learned by the daemon, not yet approved by an engineer"
+                    .to_string(),
+            ),
+            _ => None,
+        };
+        Picture {
+            title: title.to_string(),
+            note,
+            panels,
+            tz: tz.clone(),
+            axis: Axis::Time,
+        }
     }
 
     /// The picture as a PNG file's bytes.
@@ -388,18 +645,69 @@ impl Picture {
             return Ok(());
         }
         let pad = ((hi - lo) * 0.08).max(hi.abs().max(1.0) * 1e-9);
-        let (lo, hi) = (lo - pad, hi + pad);
+        let (lo, mut hi) = (lo - pad, hi + pad);
+        // The point labels (rules that fired, exclusions) go in lanes above the data, in
+        // headroom made for them, each starting over its point; one that would overlap another
+        // takes the next lane.
+        let plot_w = f64::from(
+            width
+                .saturating_sub(LABEL_MARGIN + y_label_width + 8)
+                .max(50),
+        );
+        let (_, area_h0) = area.dim_in_pixel();
+        let plot_h = f64::from(
+            area_h0
+                .saturating_sub(if time_axis { 44 } else { 22 } + 6)
+                .max(40),
+        );
+        let mut notes: Vec<(i32, usize, String, bool)> = Vec::new();
+        let mut lane_ends: Vec<i32> = Vec::new();
+        for pt in &p.points {
+            let text = match (&pt.label, pt.excluded) {
+                (Some(l), true) => format!("{l} (excluded)"),
+                (Some(l), false) => l.clone(),
+                (None, true) => "excluded".to_string(),
+                (None, false) => continue,
+            };
+            let tw = (6.5 * text.chars().count() as f64) as i32;
+            let px = ((pt.number as f64 - x0) / (x1 - x0) * plot_w) as i32 - 3;
+            let x = px.min(plot_w as i32 - tw).max(0);
+            let lane = match lane_ends.iter().position(|&end| x > end + 8) {
+                Some(k) => k,
+                None if lane_ends.len() < MAX_LANES => {
+                    lane_ends.push(i32::MIN);
+                    lane_ends.len() - 1
+                }
+                // Every lane taken: the one that frees first (an overlap, not a lost label).
+                None => (0..lane_ends.len())
+                    .min_by_key(|&k| lane_ends[k])
+                    .unwrap_or(0),
+            };
+            lane_ends[lane] = x + tw;
+            notes.push((x, lane, text, pt.marked));
+        }
+        if !lane_ends.is_empty() {
+            let head = (lane_ends.len() as f64) * 13.0 + 6.0;
+            hi += (hi - lo) * head / (plot_h - head).max(10.0);
+        }
         let tick = |y: &f64| fixed(*y, d);
         let times: std::collections::BTreeMap<u64, i64> =
             p.points.iter().map(|pt| (pt.number, pt.time_ms)).collect();
         let tz = self.tz.clone();
+        let (t_first, t_last) = (p.points[0].time_ms, p.points[p.points.len() - 1].time_ms);
+        // Seconds when the window is minutes long, the date when it is days long.
+        let pattern = match (t_last - t_first).abs() {
+            d if d < 10 * 60_000 => "%H:%M:%S",
+            d if d < 2 * 86_400_000 => "%H:%M",
+            _ => "%m-%d %H:%M",
+        };
         let clock = move |x: &f64| -> String {
             let n = x.round() as u64;
             match times.get(&n) {
                 Some(&ms) => match jiff::Timestamp::from_millisecond(ms) {
                     Ok(t) => t
                         .to_zoned_datetime(tz.clone())
-                        .strftime("%H:%M")
+                        .strftime(pattern)
                         .to_string(),
                     Err(_) => String::new(),
                 },
@@ -425,8 +733,20 @@ impl Picture {
             .x_labels(8)
             .label_style(("sans-serif", 12).into_font().color(&INK))
             .axis_desc_style(("sans-serif", 12).into_font().color(&INK));
-        if time_axis {
+        let numbers: std::collections::BTreeSet<u64> =
+            p.points.iter().map(|pt| pt.number).collect();
+        let number = move |x: &f64| -> String {
+            let n = x.round();
+            if (x - n).abs() < 1e-6 && n >= 0.0 && numbers.contains(&(n as u64)) {
+                format!("{n}")
+            } else {
+                String::new()
+            }
+        };
+        if time_axis && self.axis == Axis::Time {
             mesh.x_label_formatter(&clock).x_desc(span.as_str());
+        } else if time_axis {
+            mesh.x_label_formatter(&number).x_desc("subgroup");
         } else {
             mesh.x_label_formatter(&|_| String::new());
         }
@@ -453,13 +773,25 @@ impl Picture {
         chart
             .draw_series(p.points.iter().map(|pt| {
                 let at = (pt.number as f64, pt.value);
-                if pt.marked {
-                    Circle::new(at, 5, SIGNAL.filled())
-                } else {
-                    Circle::new(at, 3, DATA.filled())
+                match (pt.marked, pt.excluded) {
+                    (true, false) => Circle::new(at, 5, SIGNAL.filled()),
+                    (true, true) => Circle::new(at, 5, SIGNAL.stroke_width(2)),
+                    (false, true) => Circle::new(at, 4, DATA.stroke_width(2)),
+                    (false, false) => Circle::new(at, 3, DATA.filled()),
                 }
             }))
             .map_err(err)?;
+        let (bx, _) = area.get_base_pixel();
+        let plot_left = chart.as_coord_spec().translate(&(x0, hi)).0 - bx;
+        for (x, lane, text, marked) in notes {
+            let color = if marked { SIGNAL } else { DATA };
+            area.draw(&Text::new(
+                text,
+                (plot_left + x, 8 + 13 * lane as i32),
+                ("sans-serif", 11).into_font().color(&color),
+            ))
+            .map_err(err)?;
+        }
         // Line labels in the right margin, at the height of each line's last value, moved
         // apart so none covers another.
         let coord = chart.as_coord_spec().clone();
@@ -581,6 +913,8 @@ mod tests {
                     limits: Some(limits),
                     sigma: Some(sigma),
                     marked: v > limits.ucl,
+                    label: None,
+                    excluded: false,
                 })
                 .collect(),
             zones,
@@ -624,6 +958,7 @@ mod tests {
             note: Some("PROVISIONAL limits: learned by the daemon, not yet approved".into()),
             panels,
             tz: berlin(),
+            axis: Axis::Time,
         }
     }
 

@@ -7,6 +7,7 @@ mod cli;
 
 use cli::archive::{ArchiveCommand, archive_cmd};
 use cli::arl::{ArlArgs, arl_cmd};
+use cli::chart::{ChartArgs, chart_cmd};
 use cli::daemon::{DaemonArgs, ack_cmd, approve_cmd, check_cmd, run_cmd, status_cmd};
 use cli::study::{CapabilityArgs, LimitsArgs, capability_cmd, limits};
 
@@ -28,6 +29,9 @@ enum Command {
     Limits(LimitsArgs),
     /// Report process capability (Cp, Cpk, Pp, Ppk, Cpm) of a data file against its specs.
     Capability(CapabilityArgs),
+    /// Draw the control charts of a study from a file, or of a window of the archive, as SVG
+    /// or PNG.
+    Chart(ChartArgs),
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
@@ -103,6 +107,7 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Limits(a) => limits(a),
         Command::Capability(a) => capability_cmd(a),
+        Command::Chart(a) => chart_cmd(a),
         Command::Arl(a) => arl_cmd(a),
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),

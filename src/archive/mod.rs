@@ -16,6 +16,7 @@
 pub mod reader;
 pub mod record;
 pub mod segment;
+pub mod window;
 pub mod writer;
 
 use std::path::PathBuf;

@@ -102,7 +102,9 @@ pub(crate) struct ExcludeArgs {
 #[derive(Args)]
 pub(crate) struct LimitsArgs {
     #[command(flatten)]
-    pub(crate) input: InputArgs,
+    pub(crate) input: Option<InputArgs>,
+    #[command(flatten)]
+    pub(crate) window: ArchiveWindowArgs,
     #[command(flatten)]
     pub(crate) exclude: ExcludeArgs,
     #[command(flatten)]
@@ -110,10 +112,12 @@ pub(crate) struct LimitsArgs {
     /// Store the limits in this file (written atomically).
     #[arg(long, value_name = "FILE", requires = "characteristic")]
     pub(crate) write: Option<PathBuf>,
-    /// Identifier of the characteristic the limits belong to.
+    /// Identifier of the characteristic the limits belong to (with --archive, also the one
+    /// whose subgroups are read).
     #[arg(long, value_name = "ID")]
     pub(crate) characteristic: Option<String>,
-    /// Unit of the readings, recorded in the limits file.
+    /// Unit of the readings, recorded in the limits file (with --archive, default: the unit of
+    /// the limits in force).
     #[arg(long)]
     pub(crate) unit: Option<String>,
     /// Print JSON instead of the report.
@@ -169,12 +173,27 @@ pub(crate) fn load_and_study(
         );
     }
     let parsed = input::parse(&text, &name, &opts)?;
-    let chart = input.chart.map(VariablesChart::from).unwrap_or_else(|| {
-        match parsed.subgroups.iter().map(Vec::len).max().unwrap_or(1) {
-            1 => VariablesChart::Individuals,
-            2..=10 => VariablesChart::XbarR,
-            _ => VariablesChart::XbarS,
-        }
+    let s = run_study(
+        &parsed.subgroups,
+        input.chart.map(VariablesChart::from),
+        exclude,
+        &name,
+    )?;
+    Ok((s, parsed.subgroups, parsed.warnings))
+}
+
+/// The baseline study of `subgroups` (read from `name`) with the chart given, or the one their
+/// sizes call for.
+pub(crate) fn run_study(
+    subgroups: &[Vec<f64>],
+    chart: Option<VariablesChart>,
+    exclude: &ExcludeArgs,
+    name: &str,
+) -> Result<Study> {
+    let chart = chart.unwrap_or_else(|| match subgroups.iter().map(Vec::len).max().unwrap_or(1) {
+        1 => VariablesChart::Individuals,
+        2..=10 => VariablesChart::XbarR,
+        _ => VariablesChart::XbarS,
     });
     let mut options = StudyOptions::new(chart);
     let Some(estimator) = SigmaEstimator::parse(&exclude.sigma_estimator) else {
@@ -197,9 +216,106 @@ pub(crate) fn load_and_study(
     options.exclude = exclude.exclude.clone();
     options.auto_exclude = exclude.auto_exclude;
     options.max_iterations = exclude.max_iterations;
-    let s = study::run(&parsed.subgroups, &options)
-        .with_context(|| format!("{name}: the study failed"))?;
-    Ok((s, parsed.subgroups, parsed.warnings))
+    study::run(subgroups, &options).with_context(|| format!("{name}: the study failed"))
+}
+
+/// Where a study's subgroups come from when they are the daemon's own: a window of the
+/// archive.
+#[derive(Args)]
+pub(crate) struct ArchiveWindowArgs {
+    /// Take the subgroups the daemon formed (their readings, as archived) from this archive
+    /// directory instead of a file; the characteristic is --characteristic.
+    #[arg(long, value_name = "DIR", conflicts_with = "input")]
+    pub(crate) archive: Option<PathBuf>,
+    /// Only subgroups completed at or after this time (RFC 3339, e.g. 2026-12-01T06:00:00Z).
+    #[arg(long, value_name = "TIME", requires = "archive")]
+    pub(crate) since: Option<String>,
+    /// Only subgroups completed before this time.
+    #[arg(long, value_name = "TIME", requires = "archive")]
+    pub(crate) until: Option<String>,
+    /// Only the newest N subgroups of the window.
+    #[arg(long, value_name = "N", requires = "archive")]
+    pub(crate) last: Option<usize>,
+}
+
+/// Reads the window of the archive the arguments name, for characteristic `id`.
+pub(crate) fn read_window(
+    a: &ArchiveWindowArgs,
+    dir: &std::path::Path,
+    id: Option<&str>,
+) -> Result<linewarden::archive::window::CharacteristicWindow> {
+    use super::archive::parse_time;
+    let Some(id) = id else {
+        bail!("--archive needs --characteristic ID: the characteristic whose subgroups to read");
+    };
+    if a.last == Some(0) {
+        bail!("--last 0 takes no subgroups; give the number of newest subgroups to take");
+    }
+    if !dir.is_dir() {
+        bail!("--archive {}: not an archive directory", dir.display());
+    }
+    let w = linewarden::archive::window::Window {
+        since_ms: a
+            .since
+            .as_deref()
+            .map(|t| parse_time("--since", t))
+            .transpose()?,
+        until_ms: a
+            .until
+            .as_deref()
+            .map(|t| parse_time("--until", t))
+            .transpose()?,
+        last: a.last,
+    };
+    if let (Some(s), Some(u)) = (w.since_ms, w.until_ms)
+        && s >= u
+    {
+        bail!(
+            "--since {} is not before --until {}",
+            a.since.as_deref().unwrap_or_default(),
+            a.until.as_deref().unwrap_or_default()
+        );
+    }
+    Ok(linewarden::archive::window::read(dir, id, &w)?)
+}
+
+/// The study of a window of the archive: the subgroups' readings as archived, on the chart of
+/// the limits in force (or the one their sizes call for). Returns the study, its subgroups and
+/// the source words for the limits file's provenance.
+pub(crate) fn study_of_window(
+    win: &linewarden::archive::window::CharacteristicWindow,
+    exclude: &ExcludeArgs,
+) -> Result<(Study, Vec<Vec<f64>>, String)> {
+    let subgroups: Vec<Vec<f64>> = win.subgroups.iter().map(|s| s.readings.clone()).collect();
+    if let Some(s) = win
+        .subgroups
+        .iter()
+        .find(|s| s.readings.len() != s.summary.n)
+    {
+        bail!(
+            "archive {}: subgroup {} of {} lists {} readings but {} of them are in the archive (record {}); the archive is incomplete there",
+            win.archive.display(),
+            s.summary.number,
+            win.characteristic,
+            s.summary.n,
+            s.readings.len(),
+            s.seq
+        );
+    }
+    let (first, last) = win.time_range();
+    let (a, b) = win.seq_range();
+    let source = format!(
+        "archive {}, characteristic {}, subgroups {} to {} completed {} to {} (records {a} to {b})",
+        win.archive.display(),
+        win.characteristic,
+        win.subgroups[0].summary.number,
+        win.subgroups[win.subgroups.len() - 1].summary.number,
+        linewarden::format::utc_ms(first),
+        linewarden::format::utc_ms(last),
+    );
+    let chart = win.limits.as_ref().map(|l| l.chart);
+    let s = run_study(&subgroups, chart, exclude, &source)?;
+    Ok((s, subgroups, source))
 }
 
 pub(crate) fn spec_of(a: &SpecArgs) -> Result<Option<Spec>> {
@@ -263,15 +379,31 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
         );
     }
     let spec = spec_of(&a.spec)?;
-    let (s, subgroups, mut warnings) = load_and_study(&a.input, &a.exclude)?;
+    let mut unit = a.unit.clone();
+    let (s, subgroups, mut warnings, source) = match (&a.input, &a.window.archive) {
+        (Some(input), _) => {
+            let (s, subgroups, warnings) = load_and_study(input, &a.exclude)?;
+            (s, subgroups, warnings, input.input.display().to_string())
+        }
+        (None, Some(dir)) => {
+            let win = read_window(&a.window, dir, a.characteristic.as_deref())?;
+            if unit.is_none() {
+                unit = win.limits.as_ref().and_then(|l| l.unit.clone());
+            }
+            let (s, subgroups, source) = study_of_window(&win, &a.exclude)?;
+            (s, subgroups, Vec::new(), source)
+        }
+        (None, None) => bail!(
+            "no readings: give --input FILE, or --archive DIR --characteristic ID for the subgroups the daemon formed"
+        ),
+    };
     let cap = match &spec {
         Some(spec) => Some(capability_of(&s, &subgroups, spec, &a.spec)?),
         None => None,
     };
-    let source = a.input.input.display().to_string();
     if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
         let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
-        let stored = StoredLimits::from_study(&s, id, a.unit.clone(), spec, &source, &now);
+        let stored = StoredLimits::from_study(&s, id, unit.clone(), spec, &source, &now);
         stored.write(path)?;
         eprintln!("wrote limits for {id} to {}", path.display());
     }

@@ -1,0 +1,136 @@
+//! `chart`: the control charts of a study from a file, or of a window of the archive, as SVG
+//! or PNG.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result, bail};
+use clap::Args;
+
+use linewarden::chart::Picture;
+
+use super::study::{ArchiveWindowArgs, ExcludeArgs, InputArgs, load_and_study, read_window};
+
+#[derive(Args)]
+pub(crate) struct ChartArgs {
+    /// Where to write the picture: `.svg` or `.png` (by the extension). Written whole or not
+    /// at all.
+    #[arg(long, short, value_name = "FILE")]
+    pub(crate) output: PathBuf,
+    #[command(flatten)]
+    pub(crate) input: Option<InputArgs>,
+    #[command(flatten)]
+    pub(crate) exclude: ExcludeArgs,
+    #[command(flatten)]
+    pub(crate) window: ArchiveWindowArgs,
+    /// The characteristic to draw (with --archive).
+    #[arg(long, value_name = "ID")]
+    pub(crate) characteristic: Option<String>,
+    /// Draw the 1σ and 2σ lines (for reading zone rules by eye).
+    #[arg(long)]
+    pub(crate) zones: bool,
+    /// Unit of the readings, for the axis (from a file; the archive's limits say it).
+    #[arg(long)]
+    pub(crate) unit: Option<String>,
+    /// Title above the charts.
+    #[arg(long)]
+    pub(crate) title: Option<String>,
+    /// Picture width in pixels.
+    #[arg(long, default_value_t = 1000)]
+    pub(crate) width: u32,
+    /// Picture height in pixels.
+    #[arg(long, default_value_t = 640)]
+    pub(crate) height: u32,
+}
+
+#[derive(Clone, Copy, PartialEq)]
+enum Format {
+    Svg,
+    Png,
+}
+
+fn format_of(path: &Path) -> Result<Format> {
+    match path
+        .extension()
+        .and_then(|e| e.to_str())
+        .map(str::to_ascii_lowercase)
+        .as_deref()
+    {
+        Some("svg") => Ok(Format::Svg),
+        Some("png") => Ok(Format::Png),
+        _ => bail!(
+            "--output {}: the picture's format is taken from the extension; use .svg or .png",
+            path.display()
+        ),
+    }
+}
+
+pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
+    let format = format_of(&a.output)?;
+    for (name, v) in [("--width", a.width), ("--height", a.height)] {
+        if !(300..=8000).contains(&v) {
+            bail!("{name} {v} is outside 300 to 8000 pixels");
+        }
+    }
+    let picture = if let Some(dir) = &a.window.archive {
+        let id = a.characteristic.as_deref().unwrap_or_default();
+        let win = read_window(&a.window, dir, a.characteristic.as_deref())?;
+        let unit = a
+            .unit
+            .clone()
+            .or_else(|| win.limits.as_ref().and_then(|l| l.unit.clone()))
+            .unwrap_or_default();
+        let (first, last) = win.time_range();
+        let title = a.title.clone().unwrap_or_else(|| {
+            format!(
+                "{id}: {} subgroups, {} to {}",
+                win.subgroups.len(),
+                linewarden::format::utc_ms(first),
+                linewarden::format::utc_ms(last)
+            )
+        });
+        let tz = jiff::tz::TimeZone::system();
+        Picture::of_window(&win, &title, &unit, a.zones, &tz)
+    } else if let Some(input) = &a.input {
+        let (study, _, _) = load_and_study(input, &a.exclude)?;
+        let title = a.title.clone().unwrap_or_else(|| {
+            format!(
+                "{} chart of {} ({} subgroups)",
+                chart_words(study.chart),
+                input.input.display(),
+                study.subgroups_total
+            )
+        });
+        Picture::of_study(
+            &study,
+            &title,
+            a.unit.as_deref().unwrap_or_default(),
+            a.zones,
+            None,
+        )
+    } else {
+        bail!("nothing to draw: give --input FILE (a study) or --archive DIR --characteristic ID");
+    };
+    let bytes = match format {
+        Format::Svg => picture
+            .svg(a.width, a.height)
+            .map_err(|e| anyhow::anyhow!("cannot draw the chart: {e}"))?
+            .into_bytes(),
+        Format::Png => picture
+            .png(a.width, a.height)
+            .map_err(|e| anyhow::anyhow!("cannot draw the chart: {e}"))?,
+    };
+    linewarden::fsutil::write_atomic(&a.output, &bytes)
+        .with_context(|| format!("cannot write {}", a.output.display()))?;
+    eprintln!("wrote {} ({} bytes)", a.output.display(), bytes.len());
+    Ok(())
+}
+
+/// The chart's name as the trade writes it.
+pub(crate) fn chart_words(c: linewarden::stats::variables::VariablesChart) -> &'static str {
+    use linewarden::stats::variables::VariablesChart;
+    match c {
+        VariablesChart::XbarR => "Xbar-R",
+        VariablesChart::XbarS => "Xbar-S",
+        VariablesChart::Individuals => "Individuals and moving range",
+    }
+}

@@ -1,0 +1,335 @@
+//! The engineer's desk on a real archive: the README's demo run at full speed into a temporary
+//! directory, then `chart` and `limits --archive` on what it recorded, and their bad inputs.
+
+use std::path::{Path, PathBuf};
+
+use linewarden::config::{self, Source};
+
+mod common;
+use common::peers::cli;
+
+/// The demo's archive (and limits) in `dir`, made by running the demo config at full speed.
+fn demo_archive(dir: &Path) -> PathBuf {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let mut cfg = config::load(&root.join("config/demo.toml")).unwrap();
+    cfg.archive_dir = dir.join("archive");
+    if let Some(c) = &mut cfg.control {
+        c.socket = dir.join("control.sock");
+    }
+    for c in &mut cfg.characteristics {
+        if c.limits_path
+            .as_ref()
+            .is_some_and(|p| p.to_string_lossy().contains("target/demo"))
+        {
+            let c = std::sync::Arc::make_mut(c);
+            c.limits = None;
+            c.limits_path = Some(dir.join(format!("limits/{}.toml", c.id)));
+        }
+    }
+    for s in &mut cfg.sources {
+        if let Source::Replay { speed, .. } = s {
+            *speed = 0.0;
+        }
+    }
+    common::run_daemon(cfg);
+    dir.join("archive")
+}
+
+fn s(p: &Path) -> &str {
+    p.to_str().unwrap()
+}
+
+/// Every `<text>` element's content, and the fill colours of every circle.
+fn svg_parts(svg: &str) -> (Vec<String>, Vec<String>) {
+    let doc = roxmltree::Document::parse(svg).expect("the SVG is well-formed XML");
+    assert_eq!(doc.root_element().tag_name().name(), "svg");
+    let texts = doc
+        .descendants()
+        .filter(|n| n.has_tag_name("text"))
+        .map(|n| n.text().unwrap_or("").trim().to_string())
+        .collect();
+    let circles = doc
+        .descendants()
+        .filter(|n| n.has_tag_name("circle"))
+        .map(|n| {
+            format!(
+                "fill={} stroke={}",
+                n.attribute("fill").unwrap_or("-"),
+                n.attribute("stroke").unwrap_or("-")
+            )
+        })
+        .collect();
+    (texts, circles)
+}
+
+/// SIGNAL in src/chart.rs (200, 30, 30).
+const SIGNAL_FILL: &str = "#C81E1E";
+
+#[test]
+fn charts_and_limits_from_the_record_of_the_demo() {
+    let dir = tempfile::tempdir().unwrap();
+    let archive = demo_archive(dir.path());
+
+    // The bore's charts: its stored limits, the alerts' points marked and labelled.
+    let svg_path = dir.path().join("bore.svg");
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--zones",
+        "--output",
+        s(&svg_path),
+    ]);
+    assert!(ok, "{err}");
+    let svg = std::fs::read_to_string(&svg_path).unwrap();
+    let (texts, circles) = svg_parts(&svg);
+    for want in [
+        "UCL 12.0059",
+        "CL 12.0012",
+        "LCL 11.9966",
+        "+2σ",
+        "subgroup mean (mm)",
+    ] {
+        assert!(
+            texts.iter().any(|t| t.starts_with(want)),
+            "no {want:?} among {texts:?}"
+        );
+    }
+    assert!(
+        texts.iter().any(|t| t.contains("beyond-limits")),
+        "the signalling points are labelled with their rule: {texts:?}"
+    );
+    let marked = circles.iter().filter(|c| c.contains(SIGNAL_FILL)).count();
+    assert!(marked >= 5, "{marked} marked points");
+    assert!(
+        circles.len() > 2 * marked,
+        "{} points in all",
+        circles.len()
+    );
+
+    // The port depth learned provisional limits: the picture says so.
+    let port = dir.path().join("port.svg");
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-port",
+        "--output",
+        s(&port),
+    ]);
+    assert!(ok, "{err}");
+    let (texts, _) = svg_parts(&std::fs::read_to_string(&port).unwrap());
+    assert!(
+        texts.iter().any(|t| t.starts_with("PROVISIONAL limits")),
+        "{texts:?}"
+    );
+
+    // A PNG of the newest 40 subgroups decodes at the size asked for.
+    let png_path = dir.path().join("bore.png");
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--last",
+        "40",
+        "--width",
+        "900",
+        "--height",
+        "520",
+        "--output",
+        s(&png_path),
+    ]);
+    assert!(ok, "{err}");
+    let decoder = png::Decoder::new(std::io::BufReader::new(
+        std::fs::File::open(&png_path).unwrap(),
+    ));
+    let reader = decoder.read_info().unwrap();
+    assert_eq!((reader.info().width, reader.info().height), (900, 520));
+
+    // Limits from the record equal limits from the same readings exported to CSV.
+    let (ok, from_archive, err) = cli(&[
+        "limits",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--json",
+    ]);
+    assert!(ok, "{err}");
+    let from_archive: serde_json::Value = serde_json::from_str(&from_archive).unwrap();
+    let (ok, csv, err) = cli(&[
+        "archive",
+        "export",
+        s(&archive),
+        "--format",
+        "csv",
+        "--characteristic",
+        "vb210-bore",
+        "--kind",
+        "reading-accepted",
+    ]);
+    assert!(ok, "{err}");
+    // Only the readings that completed a subgroup (the last few may still be waiting).
+    let subgroups = from_archive["subgroups_total"].as_u64().unwrap() as usize;
+    let lines: Vec<&str> = csv.lines().take(1 + 5 * subgroups).collect();
+    let csv_path = dir.path().join("bore.csv");
+    std::fs::write(&csv_path, lines.join("\n")).unwrap();
+    let (ok, from_csv, err) = cli(&[
+        "limits",
+        "--input",
+        s(&csv_path),
+        "--layout",
+        "single",
+        "--value-column",
+        "value",
+        "--subgroup-size",
+        "5",
+        "--json",
+    ]);
+    assert!(ok, "{err}");
+    let from_csv: serde_json::Value = serde_json::from_str(&from_csv).unwrap();
+    for key in [
+        "chart",
+        "subgroups_total",
+        "sigma_within",
+        "location",
+        "dispersion",
+        "points",
+        "stability",
+    ] {
+        assert_eq!(from_archive[key], from_csv[key], "{key}");
+    }
+
+    // Written to a limits file, the provenance names the archive and the records.
+    let written = dir.path().join("bore-from-record.toml");
+    let (ok, _, err) = cli(&[
+        "limits",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--until",
+        "2100-01-01T00:00:00Z",
+        "--auto-exclude",
+        "--write",
+        s(&written),
+    ]);
+    assert!(ok, "{err}");
+    let text = std::fs::read_to_string(&written).unwrap();
+    let stored = linewarden::limits_file::StoredLimits::parse(&text, s(&written)).unwrap();
+    assert!(
+        stored.provenance.source.starts_with(&format!(
+            "archive {}, characteristic vb210-bore, subgroups 1 to",
+            archive.display()
+        )),
+        "{}",
+        stored.provenance.source
+    );
+    assert!(stored.provenance.source.contains("(records "));
+    assert_eq!(stored.unit.as_deref(), Some("mm"));
+}
+
+/// Each bad request: a clear error naming the value, a non-zero exit, and no file left.
+#[test]
+fn bad_requests_to_the_desk_leave_no_file() {
+    let dir = tempfile::tempdir().unwrap();
+    let archive = demo_archive(dir.path());
+    let out = dir.path().join("never.svg");
+    let cases: Vec<(Vec<&str>, &str)> = vec![
+        (
+            vec!["--characteristic", "vb210-bor"],
+            "holds no subgroups of characteristic \"vb210-bor\" (it holds subgroups of: vb210-bore, vb210-face, vb210-port)",
+        ),
+        (
+            vec![
+                "--characteristic",
+                "vb210-bore",
+                "--since",
+                "2100-01-01T00:00:00Z",
+            ],
+            "no subgroups of \"vb210-bore\" in the window asked for (2100-01-01T00:00:00.000Z to now)",
+        ),
+        (
+            vec!["--characteristic", "vb210-bore", "--since", "yesterday"],
+            "--since \"yesterday\" is not a time",
+        ),
+        (
+            vec![
+                "--characteristic",
+                "vb210-bore",
+                "--since",
+                "2026-12-02T00:00:00Z",
+                "--until",
+                "2026-12-01T00:00:00Z",
+            ],
+            "--since 2026-12-02T00:00:00Z is not before --until 2026-12-01T00:00:00Z",
+        ),
+        (
+            vec!["--characteristic", "vb210-bore", "--last", "0"],
+            "--last 0 takes no subgroups",
+        ),
+    ];
+    for (args, want) in cases {
+        let mut all = vec!["chart", "--archive", s(&archive), "--output", s(&out)];
+        all.extend(args.iter().copied());
+        let (ok, _, err) = cli(&all);
+        assert!(!ok, "{args:?} succeeded");
+        assert!(err.contains(want), "{args:?}: {err}");
+        assert!(!out.exists(), "{args:?} left a file");
+    }
+    // Too few subgroups for a study.
+    let (ok, _, err) = cli(&[
+        "limits",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--last",
+        "1",
+    ]);
+    assert!(!ok);
+    assert!(err.contains("the study failed"), "{err}");
+    // An output the command cannot tell the format of.
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--output",
+        s(&dir.path().join("bore.pdf")),
+    ]);
+    assert!(!ok);
+    assert!(err.contains("use .svg or .png"), "{err}");
+    // A damaged archive: one byte changed in the middle of a segment.
+    let seg = std::fs::read_dir(&archive)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == "lwseg"))
+        .min()
+        .unwrap();
+    let mut bytes = std::fs::read(&seg).unwrap();
+    let mid = bytes.len() / 2;
+    bytes[mid] ^= 0x20;
+    std::fs::write(&seg, bytes).unwrap();
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--output",
+        s(&out),
+    ]);
+    assert!(!ok);
+    assert!(
+        err.contains(s(&seg)),
+        "the error names the damaged segment: {err}"
+    );
+    assert!(!out.exists());
+}
