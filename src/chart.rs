@@ -82,6 +82,182 @@ pub struct Picture {
     pub panels: Vec<Panel>,
     pub tz: jiff::tz::TimeZone,
     pub axis: Axis,
+    /// The readings' histogram under the charts, when asked for.
+    pub histogram: Option<Histogram>,
+}
+
+/// A histogram of the readings against the specification limits, with the fitted model's
+/// curve (expected counts per bin).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Histogram {
+    /// What the readings are, with the unit: "reading (mm)".
+    pub what: String,
+    /// Bin edges, from the lowest to the highest, and the count in each bin.
+    pub edges: Vec<f64>,
+    pub counts: Vec<usize>,
+    pub lsl: Option<f64>,
+    pub usl: Option<f64>,
+    /// The fitted model's name and its expected count per bin width along the axis.
+    pub curve: Option<(String, Vec<(f64, f64)>)>,
+    pub decimals: usize,
+}
+
+impl Histogram {
+    /// Bins the readings (√n bins, 5 to 40: common practice) over their range and the
+    /// specification limits; `cdf` is the fitted model's distribution function, for the curve.
+    pub fn new(
+        readings: &[f64],
+        what: &str,
+        lsl: Option<f64>,
+        usl: Option<f64>,
+        model: Option<(&str, &dyn Fn(f64) -> f64)>,
+    ) -> Option<Histogram> {
+        let v: Vec<f64> = readings.iter().copied().filter(|x| x.is_finite()).collect();
+        if v.len() < 2 {
+            return None;
+        }
+        let lo = v.iter().copied().fold(f64::INFINITY, f64::min);
+        let hi = v.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+        if hi <= lo {
+            return None;
+        }
+        let bins = ((v.len() as f64).sqrt().ceil() as usize).clamp(5, 40);
+        let width = (hi - lo) / bins as f64;
+        let edges: Vec<f64> = (0..=bins).map(|i| lo + width * i as f64).collect();
+        let mut counts = vec![0usize; bins];
+        for x in &v {
+            let i = (((x - lo) / width) as usize).min(bins - 1);
+            counts[i] += 1;
+        }
+        let n = v.len() as f64;
+        let curve = model.map(|(name, cdf)| {
+            // The curve spans the readings and the specification limits, and a little more.
+            let a = lsl.map_or(lo, |l| l.min(lo)) - width;
+            let b = usl.map_or(hi, |u| u.max(hi)) + width;
+            let steps = 200;
+            let pts = (0..=steps)
+                .map(|i| {
+                    let x = a + (b - a) * i as f64 / steps as f64;
+                    let y = n * (cdf(x + width / 2.0) - cdf(x - width / 2.0));
+                    (x, if y.is_finite() { y.max(0.0) } else { 0.0 })
+                })
+                .collect();
+            (name.to_string(), pts)
+        });
+        Some(Histogram {
+            what: what.to_string(),
+            edges,
+            counts,
+            lsl,
+            usl,
+            curve,
+            decimals: decimals_for(spread_of(v.iter().copied())),
+        })
+    }
+
+    fn draw<DB: DrawingBackend>(
+        &self,
+        area: &DrawingArea<DB, Shift>,
+        y_label_width: u32,
+    ) -> Result<(), String>
+    where
+        DB::ErrorType: 'static,
+    {
+        let err = |e: DrawingAreaErrorKind<DB::ErrorType>| e.to_string();
+        let first = self.edges[0];
+        let last = self.edges[self.edges.len() - 1];
+        let width = last - first;
+        let mut x0 = first - width * 0.05;
+        let mut x1 = last + width * 0.05;
+        for l in [self.lsl, self.usl].into_iter().flatten() {
+            x0 = x0.min(l - width * 0.05);
+            x1 = x1.max(l + width * 0.05);
+        }
+        let top = self.counts.iter().copied().max().unwrap_or(1) as f64;
+        let curve_top = self
+            .curve
+            .as_ref()
+            .map_or(0.0, |c| c.1.iter().map(|p| p.1).fold(0.0, f64::max));
+        let y1 = top.max(curve_top) * 1.15 + 0.5;
+        let d = self.decimals;
+        let mut chart = ChartBuilder::on(area)
+            .margin_left(8)
+            .margin_top(10)
+            .margin_right(LABEL_MARGIN)
+            .x_label_area_size(40)
+            .y_label_area_size(y_label_width)
+            .build_cartesian_2d(x0..x1, 0.0..y1)
+            .map_err(err)?;
+        let tick = |x: &f64| fixed(*x, d);
+        chart
+            .configure_mesh()
+            .disable_x_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(RGBColor(235, 235, 235))
+            .y_desc("readings")
+            .x_desc(self.what.as_str())
+            .x_labels(7)
+            .y_labels(4)
+            .x_label_formatter(&tick)
+            .y_label_formatter(&|y: &f64| format!("{y:.0}"))
+            .label_style(("sans-serif", 12).into_font().color(&INK))
+            .axis_desc_style(("sans-serif", 12).into_font().color(&INK))
+            .draw()
+            .map_err(err)?;
+        chart
+            .draw_series(self.counts.iter().enumerate().map(|(i, &c)| {
+                Rectangle::new(
+                    [(self.edges[i], 0.0), (self.edges[i + 1], c as f64)],
+                    RGBColor(150, 180, 225).filled(),
+                )
+            }))
+            .map_err(err)?;
+        chart
+            .draw_series(self.counts.iter().enumerate().map(|(i, &c)| {
+                Rectangle::new(
+                    [(self.edges[i], 0.0), (self.edges[i + 1], c as f64)],
+                    DATA.stroke_width(1),
+                )
+            }))
+            .map_err(err)?;
+        if let Some((_, pts)) = &self.curve {
+            chart
+                .draw_series(LineSeries::new(pts.iter().copied(), CENTRE.stroke_width(2)))
+                .map_err(err)?;
+        }
+        for (name, v) in [("LSL", self.lsl), ("USL", self.usl)] {
+            if let Some(v) = v {
+                chart
+                    .draw_series(LineSeries::new([(v, 0.0), (v, y1)], SPEC.stroke_width(2)))
+                    .map_err(err)?;
+                let (px, py) = chart.as_coord_spec().translate(&(v, y1 * 0.98));
+                let (bx, by) = area.get_base_pixel();
+                let text = format!("{name} {}", fixed(v, d));
+                // The lower limit's label to the right of its line, the upper's to the left.
+                let x = if name == "LSL" {
+                    px - bx + 4
+                } else {
+                    px - bx - 4 - (6.5 * text.chars().count() as f64) as i32
+                };
+                area.draw(&Text::new(
+                    text,
+                    (x, py - by),
+                    ("sans-serif", 11).into_font().color(&SPEC),
+                ))
+                .map_err(err)?;
+            }
+        }
+        if let Some((name, _)) = &self.curve {
+            let (w, _) = area.dim_in_pixel();
+            area.draw(&Text::new(
+                format!("curve: fitted {name}"),
+                ((w - LABEL_MARGIN + 6) as i32, 40),
+                ("sans-serif", 11).into_font().color(&CENTRE),
+            ))
+            .map_err(err)?;
+        }
+        Ok(())
+    }
 }
 
 /// Colours (ours; the meaning is in the labels, never in the colour alone).
@@ -223,6 +399,7 @@ impl Picture {
             note,
             panels,
             tz: tz.clone(),
+            histogram: None,
             axis: Axis::Time,
         })
     }
@@ -331,6 +508,7 @@ impl Picture {
             note,
             panels,
             tz: jiff::tz::TimeZone::UTC,
+            histogram: None,
             axis: Axis::Number,
         }
     }
@@ -458,6 +636,7 @@ impl Picture {
             note,
             panels,
             tz: tz.clone(),
+            histogram: None,
             axis: Axis::Time,
         }
     }
@@ -524,6 +703,13 @@ impl Picture {
                 .map_err(err)?;
         }
         let body_h = h.saturating_sub(head);
+        let (body, hist_area, body_h) = match &self.histogram {
+            Some(_) => {
+                let (a, b) = body.split_vertically(body_h * 68 / 100);
+                (a, Some(b), body_h * 68 / 100)
+            }
+            None => (body, None, body_h),
+        };
         let areas: Vec<DrawingArea<DB, Shift>> = if self.panels.len() == 2 {
             let (a, b) = body.split_vertically(body_h * 58 / 100);
             vec![a, b]
@@ -548,6 +734,9 @@ impl Picture {
             .unwrap_or(6) as u32;
         for (i, (panel, area)) in self.panels.iter().zip(areas.iter()).enumerate() {
             self.draw_panel(panel, area, i == last, w, widest * 8 + 26)?;
+        }
+        if let (Some(hist), Some(area)) = (&self.histogram, hist_area) {
+            hist.draw(&area, widest * 8 + 26)?;
         }
         Ok(())
     }
@@ -958,6 +1147,7 @@ mod tests {
             note: Some("PROVISIONAL limits: learned by the daemon, not yet approved".into()),
             panels,
             tz: berlin(),
+            histogram: None,
             axis: Axis::Time,
         }
     }

@@ -23,14 +23,17 @@
 //!   the engine loop publishes to them), [`daemon::notify`] (systemd) and [`daemon::clock`].
 //! * [`archive`] — the append-only record of everything: framed, checksummed, sealed and
 //!   hash-chained segment files; the group-committing writer and its task; readers, `verify`,
-//!   export and state rebuild from checkpoints.
+//!   export and state rebuild from checkpoints; one characteristic's window of subgroups with
+//!   their readings ([`archive::window`]) for the engineer's commands.
 //! * [`input`] — turns CSV text (wide, long or one reading per row) into subgroups, with errors
 //!   that name the file, line and column.
 //! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
 //!   parsed, validated and written atomically.
 //! * [`report`] — the readable text of a study and of a capability analysis.
-//! * [`chart`] — control-chart pictures (both charts, limits, zones, marked signals, local
-//!   time axis), drawn to PNG or SVG; the one drawing every output uses.
+//! * [`chart`] — control-chart pictures (both charts, limits, zones, marked signals named by
+//!   rule, excluded subgroups, a local-time or subgroup-number axis, the readings' histogram),
+//!   of a live characteristic, a study or a window of the archive, drawn to PNG or SVG; the one
+//!   drawing every output uses (email, `chart`, `report`).
 //! * [`fsutil`] — durable file writes (temp file, fsync, rename, fsync of the directory).
 //! * [`diag`] — problems in a TOML file, located by TOML path and line:column.
 //! * [`format`] — number and time formatting shared by reports and files, and the RFC 3339
@@ -40,7 +43,8 @@
 //!
 //! The binary is a thin command-line shell over these modules: `src/main.rs` parses and
 //! dispatches, and `src/cli/` holds one module per command family (`study`: limits and
-//! capability; `arl`; `archive`; `daemon`: run, check, status, ack and approve).
+//! capability, from a file or the archive; `chart`; `report`; `arl`; `archive`; `daemon`: run,
+//! check, status, ack and approve).
 //!
 //! Dependencies run one way: `stats` ← `rules` ← `alerts` ← `archive` ← `engine` ← `daemon`,
 //! with `config` read by `engine` and `daemon`; no module imports one that imports it.

@@ -9,6 +9,7 @@ use cli::archive::{ArchiveCommand, archive_cmd};
 use cli::arl::{ArlArgs, arl_cmd};
 use cli::chart::{ChartArgs, chart_cmd};
 use cli::daemon::{DaemonArgs, ack_cmd, approve_cmd, check_cmd, run_cmd, status_cmd};
+use cli::report::{ReportArgs, report_cmd};
 use cli::study::{CapabilityArgs, LimitsArgs, capability_cmd, limits};
 
 #[derive(Parser)]
@@ -32,6 +33,9 @@ enum Command {
     /// Draw the control charts of a study from a file, or of a window of the archive, as SVG
     /// or PNG.
     Chart(ChartArgs),
+    /// Write one self-contained HTML report on a characteristic over a window of the archive:
+    /// limits and their provenance, charts, capability, alerts, rejections, the archive's check.
+    Report(ReportArgs),
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
@@ -108,6 +112,7 @@ fn main() -> ExitCode {
         Command::Limits(a) => limits(a),
         Command::Capability(a) => capability_cmd(a),
         Command::Chart(a) => chart_cmd(a),
+        Command::Report(a) => report_cmd(a),
         Command::Arl(a) => arl_cmd(a),
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),

@@ -333,3 +333,230 @@ fn bad_requests_to_the_desk_leave_no_file() {
     );
     assert!(!out.exists());
 }
+
+/// Chromium, for printing the report; None when not installed and CI does not require it.
+fn chromium() -> Option<&'static str> {
+    for c in ["chromium", "chromium-browser", "/usr/bin/chromium"] {
+        if std::process::Command::new(c)
+            .arg("--version")
+            .output()
+            .is_ok_and(|o| o.status.success())
+        {
+            return Some(c);
+        }
+    }
+    assert!(
+        std::env::var_os("LINEWARDEN_REQUIRE_CHROMIUM").is_none(),
+        "chromium is required (apt-get install chromium)"
+    );
+    eprintln!("SKIPPED the print check: chromium is not installed (apt-get install chromium)");
+    None
+}
+
+/// The report on the demo's bore: self-contained, the same figures as `limits --archive
+/// --json`, the alerts' lives and the archive's check; printed by a real headless browser to a
+/// PDF of a few A4 pages.
+#[test]
+fn the_report_is_self_contained_agrees_with_the_study_and_prints() {
+    let dir = tempfile::tempdir().unwrap();
+    let archive = demo_archive(dir.path());
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let html_path = dir.path().join("bore.html");
+    let (ok, _, err) = cli(&[
+        "report",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--config",
+        s(&root.join("config/demo.toml")),
+        "--output",
+        s(&html_path),
+    ]);
+    assert!(ok, "{err}");
+    let html = std::fs::read_to_string(&html_path).unwrap();
+    // Nothing outside the file: no scripts, links, images or fonts fetched.
+    for outside in ["src=", "href=", "url(", "<script", "<link", "<img"] {
+        assert!(
+            !html.contains(outside),
+            "the report refers outside itself: {outside}"
+        );
+    }
+    for want in [
+        "Fernmoor Valve Works (invented) · Cell 4, VB-210 valve body",
+        "VB-210 bore diameter (vb210-bore)",
+        "LSL 11.985 · target 12 · USL 12.015",
+        "stored from a baseline study",
+        "<svg",
+        "vb210-bore-32-beyond-limits-up",
+        "Check of the whole archive</th><td>intact",
+        "Chain hash",
+    ] {
+        assert!(html.contains(want), "no {want:?} in the report");
+    }
+    // The figures are the study's own: those `limits --archive --json` gives.
+    let (ok, json, err) = cli(&[
+        "limits",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--lsl",
+        "11.985",
+        "--usl",
+        "12.015",
+        "--target",
+        "12",
+        "--json",
+    ]);
+    assert!(ok, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    let sig = |x: &serde_json::Value, d: usize| linewarden::format::sig(x.as_f64().unwrap(), d);
+    let c = &v["capability"];
+    for (name, value) in [
+        ("Cp", &c["cp"]),
+        ("Cpk", &c["cpk"]),
+        ("Pp", &c["pp"]),
+        ("Ppk", &c["ppk"]),
+    ] {
+        let shown = format!("{name:<5} {}", sig(value, 3));
+        assert!(html.contains(&shown), "no {shown:?} in the report");
+    }
+    let within = format!("spread inside subgroups  {}", sig(&v["sigma_within"], 6));
+    assert!(html.contains(&within), "no {within:?}");
+
+    // A real browser prints it: a few pages, every one of them used.
+    if let Some(chrome) = chromium() {
+        let pdf = dir.path().join("bore.pdf");
+        let out = std::process::Command::new(chrome)
+            .args([
+                "--headless",
+                "--no-sandbox",
+                "--disable-gpu",
+                "--no-pdf-header-footer",
+                &format!("--print-to-pdf={}", pdf.display()),
+                &format!("file://{}", html_path.display()),
+            ])
+            .output()
+            .unwrap();
+        assert!(
+            pdf.exists(),
+            "chromium printed nothing: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let bytes = std::fs::read(&pdf).unwrap();
+        let text = String::from_utf8_lossy(&bytes);
+        let pages = text
+            .match_indices("/Type /Page")
+            .filter(|(i, _)| !text[i + 10..].starts_with('s'))
+            .count()
+            + text
+                .match_indices("/Type/Page")
+                .filter(|(i, _)| !text[i + 10..].starts_with('s'))
+                .count();
+        assert!((2..=6).contains(&pages), "{pages} pages");
+    }
+
+    // Bad requests: nothing written.
+    let never = dir.path().join("never.html");
+    for (args, want) in [
+        (
+            vec![
+                "--characteristic",
+                "vb210-bor",
+                "--config",
+                s(&root.join("config/demo.toml")),
+            ],
+            "--characteristic \"vb210-bor\" is not in",
+        ),
+        (
+            vec!["--characteristic", "vb210-bore", "--last", "1"],
+            "the study failed",
+        ),
+    ] {
+        let mut all = vec!["report", "--archive", s(&archive), "--output", s(&never)];
+        all.extend(args.iter().copied());
+        let (ok, _, err) = cli(&all);
+        assert!(!ok && err.contains(want), "{args:?}: {err}");
+        assert!(!never.exists());
+    }
+    let (ok, _, err) = cli(&[
+        "report",
+        "--archive",
+        s(&archive),
+        "--characteristic",
+        "vb210-bore",
+        "--output",
+        s(&dir.path().join("bore.pdf.txt")),
+    ]);
+    assert!(!ok && err.contains("name it .html"), "{err}");
+}
+
+/// A study from a file: its final limits, the excluded subgroup hollow and labelled, subgroup
+/// numbers on the axis, and the histogram against the specification.
+#[test]
+fn the_chart_of_a_study_from_a_file_shows_its_exclusions_and_histogram() {
+    let dir = tempfile::tempdir().unwrap();
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let input = root.join("demo-feeds/vb210-bore-baseline.csv");
+    let out = dir.path().join("study.svg");
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--input",
+        s(&input),
+        "--auto-exclude",
+        "--unit",
+        "mm",
+        "--histogram",
+        "--lsl",
+        "11.985",
+        "--usl",
+        "12.015",
+        "--output",
+        s(&out),
+    ]);
+    assert!(ok, "{err}");
+    let (texts, circles) = svg_parts(&std::fs::read_to_string(&out).unwrap());
+    for want in [
+        "UCL 12.0059",
+        "CL 12.0012",
+        "LCL 11.9966",
+        "beyond limits (excluded)",
+        "1 of 25 subgroups excluded from the limits (drawn hollow)",
+        "subgroup",
+        "LSL 11.9850",
+        "USL 12.0150",
+        "curve: fitted normal",
+        "reading (mm)",
+    ] {
+        assert!(
+            texts.iter().any(|t| t == want),
+            "no {want:?} among {texts:?}"
+        );
+    }
+    // 25 means and 25 ranges; subgroup 9 hollow in both charts.
+    assert_eq!(circles.len(), 50);
+    assert_eq!(
+        circles
+            .iter()
+            .filter(|c| c.starts_with("fill=none"))
+            .count(),
+        2
+    );
+    // --lsl above --usl, and both sources at once, are refused.
+    let (ok, _, err) = cli(&[
+        "chart",
+        "--input",
+        s(&input),
+        "--lsl",
+        "12.1",
+        "--usl",
+        "12.0",
+        "--output",
+        s(&out),
+    ]);
+    assert!(
+        !ok && err.contains("--lsl 12.1 must be below --usl 12"),
+        "{err}"
+    );
+}

@@ -25,6 +25,17 @@ pub(crate) struct ChartArgs {
     /// The characteristic to draw (with --archive).
     #[arg(long, value_name = "ID")]
     pub(crate) characteristic: Option<String>,
+    /// Add a histogram of the readings (those the limits were computed from, for a study)
+    /// against the specification limits, with the fitted normal curve.
+    #[arg(long)]
+    pub(crate) histogram: bool,
+    /// Lower specification limit, for the histogram (from the archive: default the one of the
+    /// limits in force).
+    #[arg(long, allow_hyphen_values = true)]
+    pub(crate) lsl: Option<f64>,
+    /// Upper specification limit, for the histogram.
+    #[arg(long, allow_hyphen_values = true)]
+    pub(crate) usl: Option<f64>,
     /// Draw the 1σ and 2σ lines (for reading zone rules by eye).
     #[arg(long)]
     pub(crate) zones: bool,
@@ -64,8 +75,46 @@ fn format_of(path: &Path) -> Result<Format> {
     }
 }
 
+/// The readings' histogram with the normal fitted to them (their mean and overall standard
+/// deviation).
+pub(crate) fn histogram(
+    readings: &[f64],
+    unit: &str,
+    lsl: Option<f64>,
+    usl: Option<f64>,
+) -> Option<linewarden::chart::Histogram> {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    let n = readings.len() as f64;
+    let mean = readings.iter().sum::<f64>() / n;
+    let sd = (readings.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    let normal = Normal::new(mean, sd).ok();
+    let cdf = |x: f64| normal.as_ref().map_or(f64::NAN, |d| d.cdf(x));
+    let what = if unit.is_empty() {
+        "reading".to_string()
+    } else {
+        format!("reading ({unit})")
+    };
+    linewarden::chart::Histogram::new(
+        readings,
+        &what,
+        lsl,
+        usl,
+        normal
+            .is_some()
+            .then_some(("normal", &cdf as &dyn Fn(f64) -> f64)),
+    )
+}
+
 pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
     let format = format_of(&a.output)?;
+    if a.input.is_some() && a.window.archive.is_some() {
+        bail!("--input and --archive: give one source of readings, not both");
+    }
+    if let (Some(l), Some(u)) = (a.lsl, a.usl)
+        && l >= u
+    {
+        bail!("--lsl {l} must be below --usl {u}");
+    }
     for (name, v) in [("--width", a.width), ("--height", a.height)] {
         if !(300..=8000).contains(&v) {
             bail!("{name} {v} is outside 300 to 8000 pixels");
@@ -89,9 +138,24 @@ pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
             )
         });
         let tz = jiff::tz::TimeZone::system();
-        Picture::of_window(&win, &title, &unit, a.zones, &tz)
+        let mut p = Picture::of_window(&win, &title, &unit, a.zones, &tz);
+        if a.histogram {
+            let spec = win.limits.as_ref().and_then(|l| l.spec);
+            let readings: Vec<f64> = win
+                .subgroups
+                .iter()
+                .flat_map(|s| s.readings.iter().copied())
+                .collect();
+            p.histogram = histogram(
+                &readings,
+                &unit,
+                a.lsl.or(spec.and_then(|s| s.lsl)),
+                a.usl.or(spec.and_then(|s| s.usl)),
+            );
+        }
+        p
     } else if let Some(input) = &a.input {
-        let (study, _, _) = load_and_study(input, &a.exclude)?;
+        let (study, subgroups, _) = load_and_study(input, &a.exclude)?;
         let title = a.title.clone().unwrap_or_else(|| {
             format!(
                 "{} chart of {} ({} subgroups)",
@@ -100,13 +164,22 @@ pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
                 study.subgroups_total
             )
         });
-        Picture::of_study(
+        let mut p = Picture::of_study(
             &study,
             &title,
             a.unit.as_deref().unwrap_or_default(),
             a.zones,
             None,
-        )
+        );
+        if a.histogram {
+            p.histogram = histogram(
+                &study.included_readings(&subgroups),
+                a.unit.as_deref().unwrap_or_default(),
+                a.lsl,
+                a.usl,
+            );
+        }
+        p
     } else {
         bail!("nothing to draw: give --input FILE (a study) or --archive DIR --characteristic ID");
     };

@@ -5,6 +5,7 @@ pub(crate) mod archive;
 pub(crate) mod arl;
 pub(crate) mod chart;
 pub(crate) mod daemon;
+pub(crate) mod report;
 pub(crate) mod study;
 
 /// The name in `known` closest to `given` (at most a third of its letters off), for "did you

@@ -238,6 +238,20 @@ pub(crate) struct ArchiveWindowArgs {
     pub(crate) last: Option<usize>,
 }
 
+impl ArchiveWindowArgs {
+    /// `--since` in ms (None when absent or not a time: [`read_window`] reports that).
+    pub(crate) fn since_ms(&self) -> Option<i64> {
+        let t = self.since.as_deref()?;
+        super::archive::parse_time("--since", t).ok()
+    }
+
+    /// `--until` in ms.
+    pub(crate) fn until_ms(&self) -> Option<i64> {
+        let t = self.until.as_deref()?;
+        super::archive::parse_time("--until", t).ok()
+    }
+}
+
 /// Reads the window of the archive the arguments name, for characteristic `id`.
 pub(crate) fn read_window(
     a: &ArchiveWindowArgs,
@@ -381,7 +395,8 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
     let spec = spec_of(&a.spec)?;
     let mut unit = a.unit.clone();
     let (s, subgroups, mut warnings, source) = match (&a.input, &a.window.archive) {
-        (Some(input), _) => {
+        (Some(_), Some(_)) => bail!("--input and --archive: give one source of readings, not both"),
+        (Some(input), None) => {
             let (s, subgroups, warnings) = load_and_study(input, &a.exclude)?;
             (s, subgroups, warnings, input.input.display().to_string())
         }

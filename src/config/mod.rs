@@ -63,6 +63,9 @@ pub struct RawDaemon {
     /// The plant's time zone for times people read (an IANA name such as "Europe/Berlin");
     /// the system's when not given. The archive stays in UTC.
     pub timezone: Option<String>,
+    /// The plant's and the cell's names, for the headers of reports.
+    pub plant: Option<String>,
+    pub cell: Option<String>,
 }
 
 fn default_flush_ms() -> u64 {
@@ -89,6 +92,9 @@ pub struct Config {
     pub control: Option<Control>,
     /// The plant's time zone (IANA name); None for the system's.
     pub timezone: Option<String>,
+    /// The plant's and the cell's names (report headers).
+    pub plant: Option<String>,
+    pub cell: Option<String>,
 }
 
 impl Config {
@@ -332,5 +338,7 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
         outputs,
         control,
         timezone: raw.daemon.timezone.clone(),
+        plant: raw.daemon.plant.clone(),
+        cell: raw.daemon.cell.clone(),
     }
 }

@@ -640,13 +640,7 @@ impl Engine {
                 Mode::Monitoring { points, .. } => Some(points.basis().clone()),
                 Mode::Learning { .. } => None,
             },
-            zones: c.cfg.rules.rules.iter().any(|r| {
-                use crate::rules::config::RuleKind::*;
-                matches!(
-                    r.kind,
-                    Cluster { .. } | HuggingCentre { .. } | AvoidingCentre { .. }
-                )
-            }),
+            zones: c.cfg.rules.has_zone_rules(),
         }
     }
 

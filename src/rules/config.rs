@@ -365,6 +365,18 @@ impl RuleSet {
         self.rules.iter().filter(|r| r.kind.on_readings())
     }
 
+    /// Whether a rule reads the ±1σ/±2σ zones (then the charts draw them).
+    pub fn has_zone_rules(&self) -> bool {
+        self.rules.iter().any(|r| {
+            matches!(
+                r.kind,
+                RuleKind::Cluster { .. }
+                    | RuleKind::HuggingCentre { .. }
+                    | RuleKind::AvoidingCentre { .. }
+            )
+        })
+    }
+
     /// The rule ids, in order.
     pub fn ids(&self) -> Vec<String> {
         self.rules.iter().map(|r| r.id.clone()).collect()
