@@ -48,6 +48,8 @@ pub struct Point {
     pub label: Option<String>,
     /// Left out of the limits (drawn hollow).
     pub excluded: bool,
+    /// Shown on hover in SVG: the subgroup, its time and value, and its parts.
+    pub hover: Option<String>,
 }
 
 /// What the horizontal axis shows.
@@ -272,6 +274,105 @@ const NOTE: RGBColor = RGBColor(170, 90, 0);
 
 /// Width of the margin on the right that holds the line labels, in pixels.
 const LABEL_MARGIN: u32 = 118;
+/// Gives each point's circle in the SVG a `<title>` (what a browser shows on hover), found by
+/// its centre.
+fn with_hovers(svg: String, hovers: &[(i32, i32, String)]) -> String {
+    if hovers.is_empty() {
+        return svg;
+    }
+    let at: std::collections::HashMap<(i32, i32), &str> = hovers
+        .iter()
+        .map(|(x, y, t)| ((*x, *y), t.as_str()))
+        .collect();
+    let esc = |t: &str| {
+        t.replace('&', "&amp;")
+            .replace('<', "&lt;")
+            .replace('>', "&gt;")
+    };
+    let mut out = String::with_capacity(svg.len() + hovers.len() * 80);
+    for line in svg.split_inclusive('\n') {
+        let centre = line
+            .trim_start()
+            .strip_prefix("<circle cx=\"")
+            .and_then(|rest| {
+                let (x, rest) = rest.split_once('"')?;
+                let y = rest.strip_prefix(" cy=\"")?.split('"').next()?;
+                Some((x.parse::<i32>().ok()?, y.parse::<i32>().ok()?))
+            });
+        match centre.and_then(|c| at.get(&c)) {
+            Some(text) if line.trim_end().ends_with("/>") => {
+                let body = line.trim_end().trim_end_matches("/>");
+                out.push_str(&format!("{body}><title>{}</title></circle>\n", esc(text)));
+            }
+            _ => out.push_str(line),
+        }
+    }
+    out
+}
+
+/// A plotted value as hover text shows it: with enough decimals that it never prints equal to
+/// the nearer control limit it is compared with.
+fn value_words(value: f64, limits: Option<Limits>, decimals: usize) -> String {
+    match limits {
+        Some(l) => {
+            let near = if (value - l.ucl).abs() < (value - l.lcl).abs() {
+                l.ucl
+            } else {
+                l.lcl
+            };
+            crate::format::fixed_pair(value, near, decimals).0
+        }
+        None => fixed(value, decimals),
+    }
+}
+
+/// What a point of the archive shows on hover: the subgroup, its local time, the value, its
+/// parts and the rules that fired on it.
+fn hover_of(
+    s: &crate::archive::window::ArchivedSubgroup,
+    chart: crate::rules::Chart,
+    value: f64,
+    decimals: usize,
+    tz: &jiff::tz::TimeZone,
+) -> String {
+    let what = match chart {
+        crate::rules::Chart::Dispersion => "spread",
+        _ => "mean",
+    };
+    let d = if what == "spread" {
+        decimals + 1
+    } else {
+        decimals
+    };
+    let limits = if what == "spread" {
+        s.dispersion
+    } else {
+        s.location
+    };
+    let mut text = format!(
+        "subgroup {}, {}: {what} {} (n = {})",
+        s.summary.number,
+        crate::format::local_ms(s.summary.time_ms, tz),
+        value_words(value, limits, d),
+        s.summary.n
+    );
+    let parts: Vec<&str> = s.parts.iter().flatten().map(String::as_str).collect();
+    if !parts.is_empty() {
+        text.push_str(&format!("; parts {}", parts.join(", ")));
+    }
+    let mut rules: Vec<&str> = s
+        .violations
+        .iter()
+        .filter(|v| v.chart == chart)
+        .map(|v| v.rule.as_str())
+        .collect();
+    rules.dedup();
+    if !rules.is_empty() {
+        text.push_str(&format!("; fired: {}", rules.join(", ")));
+    }
+    text
+}
+
 /// Rows of point labels above the data at most.
 const MAX_LANES: usize = 4;
 /// Smallest vertical distance between two line labels, in pixels.
@@ -330,6 +431,7 @@ impl Picture {
                     marked: loc_marked.contains(&s.number),
                     label: None,
                     excluded: false,
+                    hover: None,
                 })
                 .collect(),
             zones: c.zones && basis.is_some(),
@@ -372,6 +474,7 @@ impl Picture {
                         marked: disp_marked.contains(&s.number),
                         label: None,
                         excluded: false,
+                        hover: None,
                     })
                 })
                 .collect(),
@@ -446,6 +549,12 @@ impl Picture {
                         marked: out,
                         label: out.then(|| "beyond limits".to_string()),
                         excluded: !p.included,
+                        hover: Some(format!(
+                            "subgroup {}: mean {}{}",
+                            p.subgroup,
+                            value_words(p.stats.mean, Some(p.location), decimals),
+                            if p.included { "" } else { " (excluded)" }
+                        )),
                     }
                 })
                 .collect(),
@@ -484,6 +593,13 @@ impl Picture {
                         marked: out,
                         label: out.then(|| "beyond limits".to_string()),
                         excluded: !p.included,
+                        hover: Some(format!(
+                            "subgroup {}: {} {}{}",
+                            p.subgroup,
+                            kind,
+                            value_words(d, Some(p.dispersion_limits), decimals + 1),
+                            if p.included { "" } else { " (excluded)" }
+                        )),
                     })
                 })
                 .collect(),
@@ -569,6 +685,7 @@ impl Picture {
                 .is_some_and(|m| m.contains(&s.summary.number)),
             label: labels.get(&(chart, s.summary.number)).map(|l| l.join(", ")),
             excluded: false,
+            hover: Some(hover_of(s, chart, value, decimals, tz)),
         };
         let location = Panel {
             what: format!(
@@ -649,7 +766,7 @@ impl Picture {
         let mut rgb = vec![0u8; (width * height * 3) as usize];
         {
             let root = BitMapBackend::with_buffer(&mut rgb, (width, height)).into_drawing_area();
-            self.draw(&root)?;
+            self.draw(&root, &mut Vec::new())?;
             root.present().map_err(|e| e.to_string())?;
         }
         let mut out = Vec::new();
@@ -669,15 +786,20 @@ impl Picture {
             return Err("the chart font did not load".into());
         }
         let mut out = String::new();
+        let mut hovers = Vec::new();
         {
             let root = SVGBackend::with_string(&mut out, (width, height)).into_drawing_area();
-            self.draw(&root)?;
+            self.draw(&root, &mut hovers)?;
             root.present().map_err(|e| e.to_string())?;
         }
-        Ok(out)
+        Ok(with_hovers(out, &hovers))
     }
 
-    fn draw<DB: DrawingBackend>(&self, root: &DrawingArea<DB, Shift>) -> Result<(), String>
+    fn draw<DB: DrawingBackend>(
+        &self,
+        root: &DrawingArea<DB, Shift>,
+        hovers: &mut Vec<(i32, i32, String)>,
+    ) -> Result<(), String>
     where
         DB::ErrorType: 'static,
     {
@@ -733,7 +855,7 @@ impl Picture {
             .max()
             .unwrap_or(6) as u32;
         for (i, (panel, area)) in self.panels.iter().zip(areas.iter()).enumerate() {
-            self.draw_panel(panel, area, i == last, w, widest * 8 + 26)?;
+            self.draw_panel(panel, area, i == last, w, widest * 8 + 26, hovers)?;
         }
         if let (Some(hist), Some(area)) = (&self.histogram, hist_area) {
             hist.draw(&area, widest * 8 + 26)?;
@@ -748,6 +870,7 @@ impl Picture {
         time_axis: bool,
         width: u32,
         y_label_width: u32,
+        hovers: &mut Vec<(i32, i32, String)>,
     ) -> Result<(), String>
     where
         DB::ErrorType: 'static,
@@ -970,6 +1093,14 @@ impl Picture {
                 }
             }))
             .map_err(err)?;
+        for pt in &p.points {
+            if let Some(h) = &pt.hover {
+                let (x, y) = chart
+                    .as_coord_spec()
+                    .translate(&(pt.number as f64, pt.value));
+                hovers.push((x, y, h.clone()));
+            }
+        }
         let (bx, _) = area.get_base_pixel();
         let plot_left = chart.as_coord_spec().translate(&(x0, hi)).0 - bx;
         for (x, lane, text, marked) in notes {
@@ -1104,6 +1235,7 @@ mod tests {
                     marked: v > limits.ucl,
                     label: None,
                     excluded: false,
+                    hover: None,
                 })
                 .collect(),
             zones,

@@ -109,6 +109,30 @@ fn charts_and_limits_from_the_record_of_the_demo() {
         circles.len()
     );
 
+    // Every point names its subgroup, time, value and parts on hover.
+    let doc = roxmltree::Document::parse(&svg).unwrap();
+    let titles: Vec<&str> = doc
+        .descendants()
+        .filter(|n| n.has_tag_name("circle"))
+        .map(|c| {
+            c.children()
+                .find(|n| n.has_tag_name("title"))
+                .and_then(|t| t.text())
+                .unwrap_or("")
+        })
+        .collect();
+    assert!(
+        titles.iter().all(|t| t.starts_with("subgroup ")),
+        "{titles:?}"
+    );
+    assert!(
+        titles.iter().any(
+            |t| t.contains("parts VB00156, VB00157, VB00158, VB00159, VB00160")
+                && t.contains("fired: beyond-limits")
+        ),
+        "{titles:?}"
+    );
+
     // The port depth learned provisional limits: the picture says so.
     let port = dir.path().join("port.svg");
     let (ok, _, err) = cli(&[
