@@ -373,6 +373,34 @@ fn hover_of(
     text
 }
 
+/// The dispersion chart's statistic in words.
+fn spread_words(kind: crate::stats::variables::DispersionKind) -> &'static str {
+    use crate::stats::variables::DispersionKind;
+    match kind {
+        DispersionKind::Range => "subgroup range",
+        DispersionKind::StdDev => "subgroup standard deviation",
+        DispersionKind::MovingRange => "moving range",
+    }
+}
+
+/// The location panel, and the dispersion panel of `spread` points under it when there are any
+/// (the first individual has no moving range; a picture of one reading has none at all).
+fn with_spread(location: Panel, what: String, spread: Vec<Point>) -> Vec<Panel> {
+    let decimals = location.decimals + 1;
+    let mut panels = vec![location];
+    if !spread.is_empty() {
+        panels.push(Panel {
+            what,
+            points: spread,
+            zones: false,
+            lsl: None,
+            usl: None,
+            decimals,
+        });
+    }
+    panels
+}
+
 /// Rows of point labels above the data at most.
 const MAX_LANES: usize = 4;
 /// Smallest vertical distance between two line labels, in pixels.
@@ -453,40 +481,26 @@ impl Picture {
             } else {
                 "subgroup range"
             },
-            |b| match b.chart.dispersion_kind() {
-                crate::stats::variables::DispersionKind::Range => "subgroup range",
-                crate::stats::variables::DispersionKind::StdDev => "subgroup standard deviation",
-                crate::stats::variables::DispersionKind::MovingRange => "moving range",
-            },
+            |b| spread_words(b.chart.dispersion_kind()),
         );
-        let spread = Panel {
-            what: format!("{kind}{unit}"),
-            points: c
-                .recent
-                .iter()
-                .filter_map(|s| {
-                    s.dispersion.map(|d| Point {
-                        number: s.number,
-                        time_ms: s.time_ms,
-                        value: d,
-                        limits: basis.and_then(|b| b.dispersion_for(s.n)),
-                        sigma: None,
-                        marked: disp_marked.contains(&s.number),
-                        label: None,
-                        excluded: false,
-                        hover: None,
-                    })
+        let spread: Vec<Point> = c
+            .recent
+            .iter()
+            .filter_map(|s| {
+                s.dispersion.map(|d| Point {
+                    number: s.number,
+                    time_ms: s.time_ms,
+                    value: d,
+                    limits: basis.and_then(|b| b.dispersion_for(s.n)),
+                    sigma: None,
+                    marked: disp_marked.contains(&s.number),
+                    label: None,
+                    excluded: false,
+                    hover: None,
                 })
-                .collect(),
-            zones: false,
-            lsl: None,
-            usl: None,
-            decimals: decimals + 1,
-        };
-        let mut panels = vec![location];
-        if !spread.points.is_empty() {
-            panels.push(spread);
-        }
+            })
+            .collect();
+        let panels = with_spread(location, format!("{kind}{unit}"), spread);
         let note = match &c.limits {
             crate::engine::LimitsState::Provisional { .. } => Some(
                 "PROVISIONAL limits: learned by the daemon, not yet approved by an engineer"
@@ -517,7 +531,7 @@ impl Picture {
         zones: bool,
         spec: Option<(Option<f64>, Option<f64>)>,
     ) -> Picture {
-        use crate::stats::variables::{DispersionKind, VariablesChart};
+        use crate::stats::variables::VariablesChart;
         let individuals = study.chart == VariablesChart::Individuals;
         let decimals = decimals_for(spread_of(study.points.iter().map(|p| p.stats.mean)));
         let unit = if unit.is_empty() {
@@ -571,47 +585,33 @@ impl Picture {
             },
             decimals,
         };
-        let kind = match study.dispersion_kind {
-            DispersionKind::Range => "subgroup range",
-            DispersionKind::StdDev => "subgroup standard deviation",
-            DispersionKind::MovingRange => "moving range",
-        };
-        let spread = Panel {
-            what: format!("{kind}{unit}"),
-            points: study
-                .points
-                .iter()
-                .filter_map(|p| {
-                    let d = p.stats.dispersion?;
-                    let out = beyond(d, &p.dispersion_limits);
-                    Some(Point {
-                        number: p.subgroup as u64,
-                        time_ms: 0,
-                        value: d,
-                        limits: Some(p.dispersion_limits),
-                        sigma: None,
-                        marked: out,
-                        label: out.then(|| "beyond limits".to_string()),
-                        excluded: !p.included,
-                        hover: Some(format!(
-                            "subgroup {}: {} {}{}",
-                            p.subgroup,
-                            kind,
-                            value_words(d, Some(p.dispersion_limits), decimals + 1),
-                            if p.included { "" } else { " (excluded)" }
-                        )),
-                    })
+        let kind = spread_words(study.dispersion_kind);
+        let spread: Vec<Point> = study
+            .points
+            .iter()
+            .filter_map(|p| {
+                let d = p.stats.dispersion?;
+                let out = beyond(d, &p.dispersion_limits);
+                Some(Point {
+                    number: p.subgroup as u64,
+                    time_ms: 0,
+                    value: d,
+                    limits: Some(p.dispersion_limits),
+                    sigma: None,
+                    marked: out,
+                    label: out.then(|| "beyond limits".to_string()),
+                    excluded: !p.included,
+                    hover: Some(format!(
+                        "subgroup {}: {} {}{}",
+                        p.subgroup,
+                        kind,
+                        value_words(d, Some(p.dispersion_limits), decimals + 1),
+                        if p.included { "" } else { " (excluded)" }
+                    )),
                 })
-                .collect(),
-            zones: false,
-            lsl: None,
-            usl: None,
-            decimals: decimals + 1,
-        };
-        let mut panels = vec![location];
-        if !spread.points.is_empty() {
-            panels.push(spread);
-        }
+            })
+            .collect();
+        let panels = with_spread(location, format!("{kind}{unit}"), spread);
         let excluded = study.excluded.len();
         let note = (excluded > 0).then(|| {
             format!(
@@ -707,37 +707,23 @@ impl Picture {
             decimals,
         };
         let kind = match w.limits.as_ref().map(|l| l.chart) {
-            Some(c) => match c.dispersion_kind() {
-                crate::stats::variables::DispersionKind::Range => "subgroup range",
-                crate::stats::variables::DispersionKind::StdDev => "subgroup standard deviation",
-                crate::stats::variables::DispersionKind::MovingRange => "moving range",
-            },
+            Some(c) => spread_words(c.dispersion_kind()),
             None if individuals => "moving range",
             None => "subgroup range",
         };
-        let spread = Panel {
-            what: format!("{kind}{unit}"),
-            points: w
-                .subgroups
-                .iter()
-                .filter_map(|s| {
-                    Some(point(
-                        Chart::Dispersion,
-                        s,
-                        s.summary.dispersion?,
-                        s.dispersion,
-                    ))
-                })
-                .collect(),
-            zones: false,
-            lsl: None,
-            usl: None,
-            decimals: decimals + 1,
-        };
-        let mut panels = vec![location];
-        if !spread.points.is_empty() {
-            panels.push(spread);
-        }
+        let spread: Vec<Point> = w
+            .subgroups
+            .iter()
+            .filter_map(|s| {
+                Some(point(
+                    Chart::Dispersion,
+                    s,
+                    s.summary.dispersion?,
+                    s.dispersion,
+                ))
+            })
+            .collect();
+        let panels = with_spread(location, format!("{kind}{unit}"), spread);
         let note = match &w.limits {
             None => {
                 Some("no limits in force in this window: the daemon was learning them".to_string())

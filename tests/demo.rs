@@ -5,40 +5,15 @@
 //! stop-level alerts on the stable port depth, from learned limits 26% too tight and alerts on
 //! unapproved limits at their rules' full severity.
 
-use std::path::Path;
-
 use linewarden::archive::Record;
 use linewarden::archive::reader::{Filter, Reader};
-use linewarden::config::{self, Source};
 
 mod common;
 
 #[test]
 fn the_demo_checks_subgroups_learns_limits_and_raises_alerts() {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
-    let mut cfg = config::load(&root.join("config/demo.toml")).unwrap();
     let dir = tempfile::tempdir().unwrap();
-    cfg.archive_dir = dir.path().join("archive");
-    if let Some(c) = &mut cfg.control {
-        c.socket = dir.path().join("control.sock");
-    }
-    for c in &mut cfg.characteristics {
-        // The characteristics that learn write under target/demo; an earlier demo run may have
-        // left learned limits there. Start them afresh in the temporary directory.
-        if c.limits_path
-            .as_ref()
-            .is_some_and(|p| p.to_string_lossy().contains("target/demo"))
-        {
-            let c = std::sync::Arc::make_mut(c);
-            c.limits = None;
-            c.limits_path = Some(dir.path().join(format!("limits/{}.toml", c.id)));
-        }
-    }
-    for s in &mut cfg.sources {
-        if let Source::Replay { speed, .. } = s {
-            *speed = 0.0;
-        }
-    }
+    let cfg = common::demo_config(dir.path());
     let s = common::run_daemon(cfg);
     assert_eq!(s.rejected, 2, "the two unreadable gauge outputs");
     assert!(s.subgroups > 200);

@@ -3,35 +3,12 @@
 
 use std::path::{Path, PathBuf};
 
-use linewarden::config::{self, Source};
-
 mod common;
 use common::peers::cli;
 
 /// The demo's archive (and limits) in `dir`, made by running the demo config at full speed.
 fn demo_archive(dir: &Path) -> PathBuf {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
-    let mut cfg = config::load(&root.join("config/demo.toml")).unwrap();
-    cfg.archive_dir = dir.join("archive");
-    if let Some(c) = &mut cfg.control {
-        c.socket = dir.join("control.sock");
-    }
-    for c in &mut cfg.characteristics {
-        if c.limits_path
-            .as_ref()
-            .is_some_and(|p| p.to_string_lossy().contains("target/demo"))
-        {
-            let c = std::sync::Arc::make_mut(c);
-            c.limits = None;
-            c.limits_path = Some(dir.join(format!("limits/{}.toml", c.id)));
-        }
-    }
-    for s in &mut cfg.sources {
-        if let Source::Replay { speed, .. } = s {
-            *speed = 0.0;
-        }
-    }
-    common::run_daemon(cfg);
+    common::run_daemon(common::demo_config(dir));
     dir.join("archive")
 }
 

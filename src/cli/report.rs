@@ -150,20 +150,7 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
         &tz,
     );
     let readings: Vec<f64> = subgroups.iter().flatten().copied().collect();
-    picture.histogram = histogram(
-        &readings,
-        &unit,
-        spec.and_then(|s| s.lsl),
-        spec.and_then(|s| s.usl),
-    );
-    let svg = picture
-        .svg(1000, 900)
-        .map_err(|e| anyhow::anyhow!("cannot draw the charts: {e}"))?;
-    let svg = if svg.contains("viewBox") {
-        svg
-    } else {
-        svg.replacen("<svg ", "<svg viewBox=\"0 0 1000 900\" ", 1)
-    };
+    let svg = charts_svg(&mut picture, &readings, &unit, spec)?;
 
     // Alerts and rejected readings in the window, and the archive's own check.
     let reader = Reader::open(&dir)?;
@@ -427,9 +414,37 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
         )),
     );
     h.push_str("</body></html>\n");
-    linewarden::fsutil::write_atomic(&a.output, h.as_bytes())
-        .with_context(|| format!("cannot write {}", a.output.display()))?;
-    eprintln!("wrote {} ({} bytes)", a.output.display(), h.len());
+    write_report(&a.output, &h)
+}
+
+/// The charts with the readings' histogram under them, as SVG that scales to the page.
+fn charts_svg(
+    picture: &mut Picture,
+    readings: &[f64],
+    unit: &str,
+    spec: Option<Spec>,
+) -> Result<String> {
+    picture.histogram = histogram(
+        readings,
+        unit,
+        spec.and_then(|s| s.lsl),
+        spec.and_then(|s| s.usl),
+    );
+    let svg = picture
+        .svg(1000, 900)
+        .map_err(|e| anyhow::anyhow!("cannot draw the charts: {e}"))?;
+    Ok(if svg.contains("viewBox") {
+        svg
+    } else {
+        svg.replacen("<svg ", "<svg viewBox=\"0 0 1000 900\" ", 1)
+    })
+}
+
+/// Writes the report whole or not at all.
+fn write_report(path: &std::path::Path, html: &str) -> Result<()> {
+    linewarden::fsutil::write_atomic(path, html.as_bytes())
+        .with_context(|| format!("cannot write {}", path.display()))?;
+    eprintln!("wrote {} ({} bytes)", path.display(), html.len());
     Ok(())
 }
 
@@ -511,20 +526,7 @@ fn report_file(
         .map_or_else(|| source.clone(), |c| format!("{} ({})", c.name, c.id));
     let mut picture = Picture::of_study(&study, &name, &unit, false, None);
     let readings = study.included_readings(&subgroups);
-    picture.histogram = histogram(
-        &readings,
-        &unit,
-        spec.and_then(|s| s.lsl),
-        spec.and_then(|s| s.usl),
-    );
-    let svg = picture
-        .svg(1000, 900)
-        .map_err(|e| anyhow::anyhow!("cannot draw the charts: {e}"))?;
-    let svg = if svg.contains("viewBox") {
-        svg
-    } else {
-        svg.replacen("<svg ", "<svg viewBox=\"0 0 1000 900\" ", 1)
-    };
+    let svg = charts_svg(&mut picture, &readings, &unit, spec)?;
     let mut h = page_head(
         &format!("Baseline study report: {name}"),
         cfg.and_then(|c| c.plant.as_deref()).unwrap_or_default(),
@@ -552,8 +554,5 @@ fn report_file(
         h.push_str("</ul>\n");
     }
     h.push_str("<p class=\"meta\">From a file: there are no alerts, rejected readings or archive check to report; a report on a window of the archive has them.</p>\n</body></html>\n");
-    linewarden::fsutil::write_atomic(&a.output, h.as_bytes())
-        .with_context(|| format!("cannot write {}", a.output.display()))?;
-    eprintln!("wrote {} ({} bytes)", a.output.display(), h.len());
-    Ok(())
+    write_report(&a.output, &h)
 }

@@ -32,6 +32,35 @@ subgroups_used = 25
 used = "1-25"
 "#;
 
+/// The README's demo (config/demo.toml) with its archive, socket and learned limits in `dir`
+/// and its replay at full speed.
+pub fn demo_config(dir: &std::path::Path) -> linewarden::config::Config {
+    let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    let mut cfg = linewarden::config::load(&root.join("config/demo.toml")).unwrap();
+    cfg.archive_dir = dir.join("archive");
+    if let Some(c) = &mut cfg.control {
+        c.socket = dir.join("control.sock");
+    }
+    for c in &mut cfg.characteristics {
+        // The characteristics that learn write under target/demo; an earlier demo run may have
+        // left learned limits there. Start them afresh in the temporary directory.
+        if c.limits_path
+            .as_ref()
+            .is_some_and(|p| p.to_string_lossy().contains("target/demo"))
+        {
+            let c = std::sync::Arc::make_mut(c);
+            c.limits = None;
+            c.limits_path = Some(dir.join(format!("limits/{}.toml", c.id)));
+        }
+    }
+    for s in &mut cfg.sources {
+        if let linewarden::config::Source::Replay { speed, .. } = s {
+            *speed = 0.0;
+        }
+    }
+    cfg
+}
+
 /// Runs the daemon on `cfg` until its sources end, on a two-worker runtime as in production.
 pub fn run_daemon(cfg: linewarden::config::Config) -> linewarden::daemon::Summary {
     let rt = tokio::runtime::Builder::new_multi_thread()
