@@ -219,6 +219,10 @@ fn charts_and_limits_from_the_record_of_the_demo() {
         "--auto-exclude",
         "--write",
         s(&written),
+        "--approved-by",
+        "Q. Engineer",
+        "--approval-note",
+        "reset after the insert change",
     ]);
     assert!(ok, "{err}");
     let text = std::fs::read_to_string(&written).unwrap();
@@ -233,6 +237,12 @@ fn charts_and_limits_from_the_record_of_the_demo() {
     );
     assert!(stored.provenance.source.contains("(records "));
     assert_eq!(stored.unit.as_deref(), Some("mm"));
+    let approval = stored.approved.expect("the approval is in the file");
+    assert_eq!(approval.by, "Q. Engineer");
+    assert_eq!(
+        approval.note.as_deref(),
+        Some("reset after the insert change")
+    );
 }
 
 /// Each bad request: a clear error naming the value, a non-zero exit, and no file left.

@@ -116,6 +116,13 @@ pub(crate) struct LimitsArgs {
     /// whose subgroups are read).
     #[arg(long, value_name = "ID")]
     pub(crate) characteristic: Option<String>,
+    /// With --write: the engineer who approves these limits, recorded in the file's
+    /// `[approved]` table (and in the archive when the daemon loads them).
+    #[arg(long, value_name = "NAME", requires = "write")]
+    pub(crate) approved_by: Option<String>,
+    /// With --approved-by: a note on the approval (why the limits were reset, say).
+    #[arg(long, value_name = "TEXT", requires = "approved_by")]
+    pub(crate) approval_note: Option<String>,
     /// Unit of the readings, recorded in the limits file (with --archive, default: the unit of
     /// the limits in force).
     #[arg(long)]
@@ -418,7 +425,19 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
     };
     if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
         let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
-        let stored = StoredLimits::from_study(&s, id, unit.clone(), spec, &source, &now);
+        let mut stored = StoredLimits::from_study(&s, id, unit.clone(), spec, &source, &now);
+        if let Some(by) = &a.approved_by {
+            if by.trim().is_empty() {
+                bail!(
+                    "--approved-by is empty; give the name of the engineer who approves the limits"
+                );
+            }
+            stored.approved = Some(linewarden::limits_file::Approval {
+                by: by.trim().to_string(),
+                at: now.clone(),
+                note: a.approval_note.clone(),
+            });
+        }
         stored.write(path)?;
         eprintln!("wrote limits for {id} to {}", path.display());
     }
