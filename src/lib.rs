@@ -30,6 +30,8 @@
 //! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
 //!   parsed, validated and written atomically.
 //! * [`report`] — the readable text of a study and of a capability analysis.
+//! * [`backtest`] — a candidate configuration's engine run on the archive's readings, its
+//!   signals matched with the record's subgroup by subgroup.
 //! * [`chart`] — control-chart pictures (both charts, limits, zones, marked signals named by
 //!   rule, excluded subgroups, a local-time or subgroup-number axis, the readings' histogram),
 //!   of a live characteristic, a study or a window of the archive, drawn to PNG or SVG; the one
@@ -43,7 +45,7 @@
 //!
 //! The binary is a thin command-line shell over these modules: `src/main.rs` parses and
 //! dispatches, and `src/cli/` holds one module per command family (`study`: limits and
-//! capability, from a file or the archive; `chart`; `report`; `arl`; `archive`; `daemon`: run,
+//! capability, from a file or the archive; `chart`; `report`; `backtest`; `arl`; `archive`; `daemon`: run,
 //! check, status, ack and approve).
 //!
 //! Dependencies run one way: `stats` ← `rules` ← `alerts` ← `archive` ← `engine` ← `daemon`,
@@ -51,6 +53,7 @@
 
 pub mod alerts;
 pub mod archive;
+pub mod backtest;
 pub mod chart;
 pub mod config;
 pub mod daemon;

@@ -7,6 +7,7 @@ mod cli;
 
 use cli::archive::{ArchiveCommand, archive_cmd};
 use cli::arl::{ArlArgs, arl_cmd};
+use cli::backtest::{BacktestArgs, backtest_cmd};
 use cli::chart::{ChartArgs, chart_cmd};
 use cli::daemon::{DaemonArgs, ack_cmd, approve_cmd, check_cmd, run_cmd, status_cmd};
 use cli::report::{ReportArgs, report_cmd};
@@ -36,6 +37,9 @@ enum Command {
     /// Write one self-contained HTML report on a characteristic over a window of the archive:
     /// limits and their provenance, charts, capability, alerts, rejections, the archive's check.
     Report(ReportArgs),
+    /// Try a candidate configuration's rules on the archive's readings, beside the signals the
+    /// record holds.
+    Backtest(BacktestArgs),
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
@@ -114,6 +118,7 @@ fn main() -> ExitCode {
         Command::Chart(a) => chart_cmd(a),
         Command::Report(a) => report_cmd(a),
         Command::Arl(a) => arl_cmd(a),
+        Command::Backtest(a) => backtest_cmd(a),
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),
         Command::Run { config } => run_cmd(&config),
