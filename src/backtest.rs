@@ -92,6 +92,36 @@ struct Tally {
     signals: BTreeMap<(String, u64), (u64, i64, bool, bool)>,
 }
 
+impl Tally {
+    /// Notes the rules that signalled on a subgroup (matched by its first reading), in the
+    /// record or under the candidate. The candidate's numbering is the one kept.
+    fn note(
+        &mut self,
+        subgroup: &crate::archive::record::SubgroupSummary,
+        readings: &[u64],
+        violations: Vec<crate::rules::Violation>,
+        in_record: bool,
+    ) {
+        let Some(&first) = readings.first() else {
+            return;
+        };
+        for v in violations {
+            let e = self.signals.entry((v.rule, first)).or_insert((
+                subgroup.number,
+                subgroup.time_ms,
+                false,
+                false,
+            ));
+            if in_record {
+                e.2 = true;
+            } else {
+                e.0 = subgroup.number;
+                e.3 = true;
+            }
+        }
+    }
+}
+
 /// Runs the backtest of `cfg`'s characteristics `ids` (all of them when empty) over the
 /// archive's records appended in `[since_ms, until_ms)`.
 pub fn run(
@@ -145,19 +175,7 @@ pub fn run(
                 && let Some(t) = tallies.get_mut(&characteristic)
             {
                 t.subgroups += 1;
-                let Some(&first) = readings.first() else {
-                    continue;
-                };
-                for v in violations {
-                    let e = t.signals.entry((v.rule, first)).or_insert((
-                        subgroup.number,
-                        subgroup.time_ms,
-                        false,
-                        false,
-                    ));
-                    e.0 = subgroup.number;
-                    e.3 = true;
-                }
+                t.note(&subgroup, &readings, violations, false);
             }
         }
     };
@@ -224,18 +242,7 @@ pub fn run(
             } => {
                 if let Some(t) = tallies.get_mut(&characteristic) {
                     t.record_subgroups += 1;
-                    let Some(&first) = readings.first() else {
-                        continue;
-                    };
-                    for v in violations {
-                        let e = t.signals.entry((v.rule, first)).or_insert((
-                            subgroup.number,
-                            subgroup.time_ms,
-                            false,
-                            false,
-                        ));
-                        e.2 = true;
-                    }
+                    t.note(&subgroup, &readings, violations, true);
                 }
             }
             _ => {}
