@@ -183,27 +183,12 @@ pub fn run(
         let e = e?;
         match e.record {
             Record::ReadingAccepted {
-                source,
-                characteristic,
-                value,
-                unit,
-                source_time_ms,
-                source_time_ignored,
-                arrival_ms,
-                part,
-                source_key,
-            } if chosen.contains(&characteristic) => {
-                let inc = Incoming {
-                    source,
-                    characteristic,
-                    value,
-                    unit,
-                    source_time_ms,
-                    source_time_ignored,
-                    arrival_ms,
-                    part,
-                    source_key,
+                ref characteristic, ..
+            } if chosen.contains(characteristic) => {
+                let Some(inc) = Incoming::from_record(e.record) else {
+                    continue;
                 };
+                let arrival_ms = inc.arrival_ms;
                 let engine = engine.get_or_insert_with(|| Engine::new(cfg, arrival_ms));
                 // Time moves as it did: the daemon's one-second tick, on the readings' clock.
                 if arrival_ms >= next_tick {

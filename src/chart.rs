@@ -373,6 +373,16 @@ fn hover_of(
     text
 }
 
+/// The location chart's statistic in words, with the unit part (" (mm)") after it.
+fn location_words(individuals: bool, unit: &str) -> String {
+    let what = if individuals {
+        "reading"
+    } else {
+        "subgroup mean"
+    };
+    format!("{what}{unit}")
+}
+
 /// The dispersion chart's statistic in words.
 fn spread_words(kind: crate::stats::variables::DispersionKind) -> &'static str {
     use crate::stats::variables::DispersionKind;
@@ -439,14 +449,7 @@ impl Picture {
             format!(" ({})", c.unit)
         };
         let location = Panel {
-            what: format!(
-                "{}{unit}",
-                if individuals {
-                    "reading"
-                } else {
-                    "subgroup mean"
-                }
-            ),
+            what: location_words(individuals, &unit),
             points: c
                 .recent
                 .iter()
@@ -541,14 +544,7 @@ impl Picture {
         };
         let beyond = |v: f64, l: &Limits| v > l.ucl || v < l.lcl;
         let location = Panel {
-            what: format!(
-                "{}{unit}",
-                if individuals {
-                    "reading"
-                } else {
-                    "subgroup mean"
-                }
-            ),
+            what: location_words(individuals, &unit),
             points: study
                 .points
                 .iter()
@@ -688,14 +684,7 @@ impl Picture {
             hover: Some(hover_of(s, chart, value, decimals, tz)),
         };
         let location = Panel {
-            what: format!(
-                "{}{unit}",
-                if individuals {
-                    "reading"
-                } else {
-                    "subgroup mean"
-                }
-            ),
+            what: location_words(individuals, &unit),
             points: w
                 .subgroups
                 .iter()

@@ -54,6 +54,35 @@ impl Incoming {
         }
     }
 
+    /// The reading an archived `reading-accepted` record holds (the inverse of
+    /// [`Incoming::record`]); None for any other record.
+    pub fn from_record(r: Record) -> Option<Incoming> {
+        match r {
+            Record::ReadingAccepted {
+                source,
+                characteristic,
+                value,
+                unit,
+                source_time_ms,
+                source_time_ignored,
+                arrival_ms,
+                part,
+                source_key,
+            } => Some(Incoming {
+                source,
+                characteristic,
+                value,
+                unit,
+                source_time_ms,
+                source_time_ignored,
+                arrival_ms,
+                part,
+                source_key,
+            }),
+            _ => None,
+        }
+    }
+
     /// The record that archives it.
     pub fn record(&self) -> Record {
         Record::ReadingAccepted {
