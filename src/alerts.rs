@@ -531,6 +531,19 @@ impl Book {
         Ok(events)
     }
 
+    /// The earliest time at which [`Book::tick`] would escalate an alert; None when none can.
+    pub fn next_due_ms(&self, policies: &Policies) -> Option<i64> {
+        self.all()
+            .filter(|a| a.status == Status::Open && a.escalated_ms.is_none())
+            .filter_map(|a| {
+                policies
+                    .of(a.severity)
+                    .escalate_after_ms
+                    .map(|after| a.raised_ms.saturating_add(after))
+            })
+            .min()
+    }
+
     /// Escalates alerts left unacknowledged past their severity's time.
     pub fn tick(&mut self, policies: &Policies, now_ms: i64) -> Vec<Event> {
         let mut events = Vec::new();

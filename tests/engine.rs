@@ -643,3 +643,144 @@ fn acknowledging_a_cusum_alert_restarts_its_sums() {
         assert_eq!(one, two, "{restart}");
     }
 }
+
+/// Runs `readings` (arrival time, characteristic, value) through an engine, ticking at the
+/// daemon's one-second pace; with `skip`, leaving out the ticks before `next_due_ms`.
+fn drive(cfg: &config::Config, readings: &[(i64, &str, f64)], skip: bool) -> Vec<Output> {
+    let mut e = Engine::new(cfg, T0);
+    let mut all = Vec::new();
+    let mut due = e.next_due_ms();
+    let mut seq = 0;
+    let mut now = T0;
+    let end = readings.last().unwrap().0 + 600_000;
+    let mut next = readings.iter().peekable();
+    while now <= end {
+        while let Some(&&(t, c, v)) = next.peek()
+            && t <= now
+        {
+            next.next();
+            seq += 1;
+            let inc = Incoming {
+                source: "test".into(),
+                characteristic: c.into(),
+                value: v,
+                unit: Some("mm".into()),
+                source_time_ms: None,
+                source_time_ignored: false,
+                arrival_ms: t,
+                part: None,
+                source_key: None,
+            };
+            let out = e.accept(seq, &inc);
+            let raised = out.iter().any(|o| {
+                matches!(
+                    o,
+                    Output::Record(Record::Alert {
+                        event: linewarden::alerts::AlertEvent::Raised { .. },
+                        ..
+                    })
+                )
+            });
+            all.extend(out);
+            due = due
+                .into_iter()
+                .chain(e.next_due_of(c))
+                .chain(if raised { e.alerts_due_ms() } else { None })
+                .min();
+        }
+        if !skip || due.is_some_and(|d| now >= d) {
+            all.extend(e.tick(now));
+            due = e.next_due_ms();
+        }
+        now += 1000;
+    }
+    all
+}
+
+#[test]
+fn ticks_left_out_before_anything_is_due_change_nothing() {
+    // Every kind of deadline: a time window, a maximum wait on a count, a silent feed, and the
+    // escalation of a stop alert nobody acknowledges.
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("bore.toml"), common::BORE_LIMITS).unwrap();
+    let path = dir.path().join("cell.toml");
+    std::fs::write(
+        &path,
+        r#"
+[daemon]
+archive_dir = "archive"
+
+[alerts]
+stop = { acknowledge = true, escalate_after = "90 s" }
+
+[[characteristic]]
+id = "bore"
+unit = "mm"
+limits = "bore.toml"
+subgroup = { size = 4, max_wait_s = 20, on_timeout = "evaluate" }
+
+[characteristic.rules]
+preset = "western-electric"
+
+[[characteristic.rules.rule]]
+kind = "stale-feed"
+max_silence_s = 45.5
+
+[[characteristic]]
+id = "face"
+unit = "mm"
+subgroup = { window_s = 30 }
+learning = { subgroups = 5 }
+"#,
+    )
+    .unwrap();
+    let cfg = config::load(&path).unwrap();
+    let mut readings = Vec::new();
+    let mut t = T0 + 500;
+    for i in 0..300i64 {
+        // Bursts and gaps: some subgroups time out, the feed goes silent twice, the bore
+        // shifts once (a stop alert that escalates).
+        let gap = match i {
+            50 | 51 => 61_000,
+            120 => 130_000,
+            _ if i % 7 == 0 => 23_000,
+            _ => 3_000 + (i % 5) * 700,
+        };
+        t += gap;
+        let shift = if (150..170).contains(&i) { 0.009 } else { 0.0 };
+        let wobble = ((i * 37) % 11) as f64 * 0.0004 - 0.002;
+        readings.push((t, "bore", 12.0 + shift + wobble));
+        if i % 3 == 0 {
+            readings.push((t + 200, "face", 38.2 + wobble));
+        }
+    }
+    let every = drive(&cfg, &readings, false);
+    let skipping = drive(&cfg, &readings, true);
+    let kinds = |o: &[Output]| {
+        let mut k: Vec<&str> = o
+            .iter()
+            .filter_map(|o| match o {
+                Output::Record(r) => Some(r.kind()),
+                _ => None,
+            })
+            .collect();
+        k.sort();
+        k.dedup();
+        k
+    };
+    for want in ["subgroup-result", "flagged", "alert"] {
+        assert!(kinds(&every).contains(&want), "the feed exercises {want}");
+    }
+    let escalated = every.iter().any(|o| {
+        matches!(
+            o,
+            Output::Record(Record::Alert {
+                event: linewarden::alerts::AlertEvent::Escalated { .. },
+                ..
+            })
+        )
+    });
+    assert!(escalated, "a stop alert escalates");
+    assert_eq!(every.len(), skipping.len());
+    assert!(every == skipping, "the same outputs in the same order");
+}

@@ -8,6 +8,7 @@ use clap::Args;
 
 use linewarden::archive::reader::Reader;
 use linewarden::format::{sig, utc_ms};
+use linewarden::rules::reading::duration_words;
 
 use super::archive::parse_time;
 
@@ -55,14 +56,16 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
         .map(|t| parse_time("--until", t))
         .transpose()?;
     let reader = Reader::open(&a.archive)?;
+    let a_config = a.config.clone();
     let bt = linewarden::backtest::run(&cfg, &reader, &a.characteristic, since, until)?;
     if let Some(path) = &a.signals {
         let mut w = csv::Writer::from_writer(Vec::new());
         w.write_record([
             "characteristic",
             "rule",
+            "level",
             "subgroup",
-            "first_reading_seq",
+            "reading_seq",
             "time",
             "in_record",
             "in_candidate",
@@ -71,8 +74,13 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
             w.write_record([
                 s.characteristic.clone(),
                 s.rule.clone(),
-                s.subgroup.to_string(),
-                s.first_reading.to_string(),
+                s.level.name().to_string(),
+                s.subgroup.map_or(String::new(), |n| n.to_string()),
+                if s.first_reading == u64::MAX {
+                    String::new()
+                } else {
+                    s.first_reading.to_string()
+                },
                 utc_ms(s.time_ms),
                 s.in_record.to_string(),
                 s.in_candidate.to_string(),
@@ -87,6 +95,16 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
         return Ok(());
     }
     let rate = |v: Option<f64>| v.map_or("—".to_string(), |v| sig(v, 3));
+    if let (Some(a), Some(b)) = (bt.first_ms, bt.last_ms) {
+        println!(
+            "Readings from {} to {} ({}), through the candidate {}.",
+            utc_ms(a),
+            utc_ms(b),
+            duration_words((b - a) as f64 / 1000.0),
+            a_config.display()
+        );
+        println!();
+    }
     for c in &bt.characteristics {
         println!(
             "{}: {} readings, {} subgroups under the candidate ({} in the record); rejected: {} in the record (they stay rejected), {} more by the candidate's checks",
@@ -102,9 +120,13 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
             "rule", "record", "candidate", "kept", "new", "gone", "per 1000", "theory", "per day"
         );
         for r in &c.rules {
+            let name = match r.level {
+                linewarden::backtest::SignalLevel::Subgroup => r.rule.clone(),
+                linewarden::backtest::SignalLevel::Reading => format!("{} (readings)", r.rule),
+            };
             println!(
                 "  {:<24} {:>7} {:>9} {:>5} {:>5} {:>5} {:>10} {:>10} {:>9}",
-                r.rule,
+                name,
                 r.record_signals,
                 r.candidate_signals,
                 r.kept,
@@ -115,6 +137,41 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
                 rate(r.per_day)
             );
         }
+        println!("  alerts   record: {}", alert_words(&c.alerts.record));
+        println!("        candidate: {}", alert_words(&c.alerts.candidate));
+        println!();
     }
+    println!("The cell (red while any of these has a stop alert nobody has acknowledged):");
+    println!("  record:    {}", alert_words(&bt.alerts.record));
+    println!("  candidate: {}", alert_words(&bt.alerts.candidate));
+    println!(
+        "Per 1000: signals per 1,000 subgroups (per 1,000 readings for a reading rule); theory: the rule's in-control rate (1,000 / ARL0, as `arl` computes it). The record's acknowledgements are replayed at their times."
+    );
     Ok(())
+}
+
+/// `2 stops, 5 warnings, 0 notices; 1 escalated; red 3.33 h in 2 stretches (14.1% of the window)`
+fn alert_words(t: &linewarden::backtest::AlertTally) -> String {
+    let lasting = |ms: i64| duration_words(ms as f64 / 1000.0);
+    let plural = |n: u64, one: &str, many: &str| format!("{n} {}", if n == 1 { one } else { many });
+    let mut s = format!(
+        "{}, {}, {}",
+        plural(t.stops, "stop", "stops"),
+        plural(t.warnings, "warning", "warnings"),
+        plural(t.notices, "notice", "notices")
+    );
+    if t.escalated > 0 {
+        s.push_str(&format!("; {} escalated", t.escalated));
+    }
+    if t.red_episodes == 0 {
+        s.push_str("; never red");
+    } else {
+        s.push_str(&format!(
+            "; red {} in {} ({}% of the window)",
+            lasting(t.red_ms),
+            plural(t.red_episodes, "stretch", "stretches"),
+            sig(t.red_share * 100.0, 3)
+        ));
+    }
+    s
 }

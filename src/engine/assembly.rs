@@ -115,6 +115,32 @@ impl Assembler {
         })
     }
 
+    /// The earliest time at which [`Assembler::tick`] would do anything (a window closing, a
+    /// maximum wait running out); None when nothing waits. Before it, a tick changes nothing.
+    pub fn next_due_ms(&self) -> Option<i64> {
+        let first = |g: &Vec<PendingReading>| g.first().map(|f| f.time_ms);
+        let mut due: Option<i64> = None;
+        let mut at = |t: i64| due = Some(due.map_or(t, |d| d.min(t)));
+        if let Grouping::Window { window_ms } = self.grouping
+            && let Some(f) = first(&self.open)
+        {
+            at(f.saturating_add(window_ms));
+        }
+        if let Some(wait) = self.max_wait_ms {
+            if !matches!(self.grouping, Grouping::Window { .. })
+                && let Some(f) = first(&self.open)
+            {
+                at(f.saturating_add(wait));
+            }
+            for g in self.parts.values() {
+                if let Some(f) = first(g) {
+                    at(f.saturating_add(wait));
+                }
+            }
+        }
+        due
+    }
+
     /// Closes windows that have ended and applies the maximum wait, at time `now_ms`.
     pub fn tick(&mut self, now_ms: i64) -> Vec<Assembled> {
         let mut out = Vec::new();

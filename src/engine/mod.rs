@@ -415,10 +415,10 @@ impl Engine {
             return Vec::new();
         };
         let mut out = c.accept(seq, inc);
-        let plan = c.cfg.reaction_plan.clone();
+        let cfg = c.cfg.clone();
         self.follow(
             &inc.characteristic,
-            plan.as_deref(),
+            cfg.reaction_plan.as_deref(),
             &mut out,
             Some(seq),
             inc.arrival_ms,
@@ -426,16 +426,46 @@ impl Engine {
         out
     }
 
+    /// The earliest time at which [`Engine::tick`] would do anything: a window closing, a
+    /// maximum wait running out, a feed going silent, an alert to escalate. Before it a tick
+    /// changes nothing, so a driver replaying history may leave ticks out until then.
+    pub fn next_due_ms(&self) -> Option<i64> {
+        self.chars
+            .values()
+            .filter_map(CharEngine::next_due_ms)
+            .chain(self.alerts.next_due_ms(&self.policies))
+            .min()
+    }
+
+    /// [`Engine::next_due_ms`] of one characteristic's subgroups and feed: after a reading of
+    /// `characteristic`, what can have come nearer (with [`Engine::alerts_due_ms`] when it
+    /// raised an alert).
+    pub fn next_due_of(&self, characteristic: &str) -> Option<i64> {
+        self.chars
+            .get(characteristic)
+            .and_then(CharEngine::next_due_ms)
+    }
+
+    /// When the first open alert escalates, if any will.
+    pub fn alerts_due_ms(&self) -> Option<i64> {
+        self.alerts.next_due_ms(&self.policies)
+    }
+
     /// Applies time: windows that closed, maximum waits that ran out, feeds gone silent,
     /// alerts left unacknowledged too long.
     pub fn tick(&mut self, now_ms: i64) -> Vec<Output> {
         let mut out = Vec::new();
-        let ids: Vec<String> = self.chars.keys().cloned().collect();
-        for id in ids {
-            let c = self.chars.get_mut(&id).expect("listed above");
-            let mut o = c.tick(now_ms);
-            let plan = c.cfg.reaction_plan.clone();
-            self.follow(&id, plan.as_deref(), &mut o, None, now_ms);
+        // Most characteristics have nothing due at a tick: only those that do are followed
+        // (the tick runs every second over every characteristic).
+        let mut due: Vec<(std::sync::Arc<Characteristic>, Vec<Output>)> = Vec::new();
+        for c in self.chars.values_mut() {
+            let o = c.tick(now_ms);
+            if !o.is_empty() {
+                due.push((c.cfg.clone(), o));
+            }
+        }
+        for (cfg, mut o) in due {
+            self.follow(&cfg.id, cfg.reaction_plan.as_deref(), &mut o, None, now_ms);
             out.extend(o);
         }
         for e in self.alerts.tick(&self.policies, now_ms) {
@@ -457,9 +487,15 @@ impl Engine {
         use crate::alerts::Level;
         let mut events = Vec::new();
         let mut reading_fired: Vec<Violation> = Vec::new();
+        let judged = out.iter().any(|o| {
+            matches!(
+                o,
+                Output::Record(Record::Flagged { .. } | Record::SubgroupResult { .. })
+            )
+        });
         let (reading_part, subgroup_parts) = match self.chars.get(characteristic) {
-            Some(c) => (c.last_part.clone(), c.last_parts.clone()),
-            None => (None, Vec::new()),
+            Some(c) if judged => (c.last_part.clone(), c.last_parts.clone()),
+            _ => (None, Vec::new()),
         };
         for o in out.iter() {
             let Output::Record(r) = o else { continue };
@@ -807,6 +843,13 @@ impl CharEngine {
             self.assembled(a, &mut out);
         }
         out
+    }
+
+    fn next_due_ms(&self) -> Option<i64> {
+        match (self.asm.next_due_ms(), self.reading_rules.next_due_ms()) {
+            (Some(a), Some(b)) => Some(a.min(b)),
+            (a, b) => a.or(b),
+        }
     }
 
     fn tick(&mut self, now_ms: i64) -> Vec<Output> {

@@ -247,6 +247,25 @@ impl ReadingEvaluator {
         out
     }
 
+    /// The earliest time at which [`ReadingEvaluator::on_tick`] could report a silent feed
+    /// (never later than the first millisecond it would); None when it cannot.
+    pub fn next_due_ms(&self) -> Option<i64> {
+        if self.state.silence_reported {
+            return None;
+        }
+        self.rules
+            .iter()
+            .filter_map(|r| match r.kind {
+                RuleKind::StaleFeed { max_silence_s } => Some(
+                    self.state
+                        .last_heard_ms
+                        .saturating_add((max_silence_s * 1000.0).floor() as i64),
+                ),
+                _ => None,
+            })
+            .min()
+    }
+
     /// Checks for silence at time `now_ms`. Reports each silence once.
     pub fn on_tick(&mut self, now_ms: i64) -> Vec<Violation> {
         let mut out = Vec::new();
