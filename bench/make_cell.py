@@ -16,6 +16,7 @@ p.add_argument("port", type=int)
 p.add_argument("--flush-ms", type=int, default=10)
 p.add_argument("--rules", default="beyond")
 p.add_argument("--size", type=int, default=1)
+p.add_argument("--web", default="", help="[web] listen address, e.g. 127.0.0.1:9631")
 a = p.parse_args()
 
 os.makedirs(os.path.join(a.dir, "limits"), exist_ok=True)
@@ -85,7 +86,7 @@ stop = {{ acknowledge = false }}
 [control]
 socket = "control.sock"
 mode = "0600"
-
+{('[web]' + chr(10) + 'listen = "' + a.web + '"' + chr(10)) if a.web else ''}
 [[source]]
 id = "bench"
 kind = "mqtt"

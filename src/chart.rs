@@ -284,11 +284,7 @@ fn with_hovers(svg: String, hovers: &[(i32, i32, String)]) -> String {
         .iter()
         .map(|(x, y, t)| ((*x, *y), t.as_str()))
         .collect();
-    let esc = |t: &str| {
-        t.replace('&', "&amp;")
-            .replace('<', "&lt;")
-            .replace('>', "&gt;")
-    };
+    let esc = crate::format::html;
     let mut out = String::with_capacity(svg.len() + hovers.len() * 80);
     for line in svg.split_inclusive('\n') {
         let centre = line

@@ -190,6 +190,22 @@ pub fn parse_rfc3339(text: &str) -> Result<i64, String> {
         .map_err(|e| e.to_string())
 }
 
+/// Text made safe for HTML and SVG, in element content and in quoted attributes.
+pub fn html(s: &str) -> String {
+    let mut o = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '&' => o.push_str("&amp;"),
+            '<' => o.push_str("&lt;"),
+            '>' => o.push_str("&gt;"),
+            '"' => o.push_str("&quot;"),
+            '\'' => o.push_str("&#39;"),
+            _ => o.push(c),
+        }
+    }
+    o
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

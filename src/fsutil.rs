@@ -54,6 +54,19 @@ pub fn release_memory() {
     }
 }
 
+/// Free bytes on the filesystem holding `path`, as an unprivileged user may use them; None
+/// when the filesystem cannot say.
+pub fn free_bytes(path: &Path) -> Option<u64> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = std::ffi::CString::new(path.as_os_str().as_bytes()).ok()?;
+    let mut s: libc::statvfs = unsafe { std::mem::zeroed() };
+    // SAFETY: `c` is a valid NUL-terminated path and `s` a writable statvfs.
+    if unsafe { libc::statvfs(c.as_ptr(), &mut s) } != 0 {
+        return None;
+    }
+    Some((s.f_bavail as u64).saturating_mul(s.f_frsize as u64))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -557,3 +557,32 @@ off = ["steady-trend"]
     let e2 = PointEvaluator::new(&b, ChartBasis::standard());
     assert!(std::ptr::eq(e1.rules().as_ptr(), e2.rules().as_ptr()));
 }
+
+#[test]
+fn a_web_address_that_is_a_name_or_has_no_port_is_refused_where_it_is_written() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cell.toml");
+    for (listen, ok) in [
+        ("localhost:9630", false),
+        ("127.0.0.1", false),
+        ("127.0.0.1:99999", false),
+        ("0.0.0.0:9630", true),
+        ("[::1]:9630", true),
+    ] {
+        std::fs::write(
+            &path,
+            format!("[daemon]\narchive_dir = \"a\"\n\n[[characteristic]]\nid = \"bore\"\nsubgroup = {{ size = 5 }}\n\n[web]\nlisten = \"{listen}\"\nport = 3\n"),
+        )
+        .unwrap();
+        let err = config::load(&path).unwrap_err().to_string();
+        // Every problem at once: the unknown key, and the address unless it is good.
+        assert!(err.contains("web.port: unknown field `port`"), "{err}");
+        assert_eq!(
+            err.contains(&format!(
+                "web.listen: \"{listen}\" is not an address and port"
+            )),
+            !ok,
+            "{listen}: {err}"
+        );
+    }
+}

@@ -286,6 +286,16 @@ fn installed_daemon_runs_as_the_service_user_with_a_read_only_config() {
         "{err}"
     );
 
+    // The installed config serves metrics on a fixed port; here on a free one, so the test
+    // never meets another daemon (a demo running beside it).
+    let web = common::peers::free_port();
+    let text = std::fs::read_to_string(&cfg).unwrap();
+    assert!(text.contains("listen = \"127.0.0.1:9630\""), "{text}");
+    std::fs::write(
+        &cfg,
+        text.replace("127.0.0.1:9630", &format!("127.0.0.1:{web}")),
+    )
+    .unwrap();
     let log = dir.path().join("daemon.log");
     let mut daemon = spawn_logged(as_service(r, &etc, &["run", "--config", cfg_s]), &log);
     let socket = r.join("run/linewarden/control.sock");
@@ -293,6 +303,19 @@ fn installed_daemon_runs_as_the_service_user_with_a_read_only_config() {
         socket.exists()
     });
     assert_eq!(mode_owner(&socket).0 & 0o777, 0o660);
+    common::peers::wait_for_port(web);
+    let mut probe = std::net::TcpStream::connect(("127.0.0.1", web)).unwrap();
+    std::io::Write::write_all(
+        &mut probe,
+        b"GET /healthz HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n",
+    )
+    .unwrap();
+    let mut answer = String::new();
+    std::io::Read::read_to_string(&mut probe, &mut answer).unwrap();
+    assert!(
+        answer.starts_with("HTTP/1.1 200") && answer.ends_with("alive\n"),
+        "{answer}"
+    );
     // The measuring machine's reports: 25 subgroups of 5 and a few more.
     let inbox = r.join("var/lib/linewarden/inbox");
     std::fs::write(inbox.join("batch-1.csv"), report(0..140)).unwrap();

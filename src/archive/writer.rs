@@ -961,6 +961,9 @@ async fn run(
             match w.flush() {
                 Ok(seq) => {
                     full.resolved(&w, &publish);
+                    // The durable sequence moved: those who watch the status see it (the
+                    // metrics, `status`), as after a sync of the group commit.
+                    publish(&w, WriterState::Running);
                     for r in flushes.drain(..) {
                         let _ = r.send(Ok(seq));
                     }

@@ -47,12 +47,7 @@ pub(crate) struct ReportArgs {
     pub(crate) spec: SpecArgs,
 }
 
-fn esc(s: &str) -> String {
-    s.replace('&', "&amp;")
-        .replace('<', "&lt;")
-        .replace('>', "&gt;")
-        .replace('"', "&quot;")
-}
+use linewarden::format::html as esc;
 
 /// One alert's life, from its records.
 #[derive(Default)]

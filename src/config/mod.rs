@@ -44,9 +44,40 @@ pub struct RawConfig {
     #[serde(default)]
     pub output: Vec<RawOutput>,
     pub control: Option<RawControl>,
+    pub web: Option<RawWeb>,
 }
 
-/// `[daemon]`.
+/// `[web]`: the daemon's HTTP endpoint (metrics and health checks).
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawWeb {
+    /// Address and port to listen on, such as "127.0.0.1:9630".
+    pub listen: String,
+}
+
+/// The daemon's HTTP endpoint.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Web {
+    pub listen: std::net::SocketAddr,
+}
+
+/// `[web]` checked: an address and port, as numbers (no name to look up).
+fn build_web(raw: &Option<RawWeb>, loc: &Locator, p: &mut Vec<Problem>) -> Option<Web> {
+    let w = raw.as_ref()?;
+    match w.listen.trim().parse::<std::net::SocketAddr>() {
+        Ok(listen) => Some(Web { listen }),
+        Err(_) => {
+            p.push(loc.problem(
+                "web.listen",
+                format!(
+                    "\"{}\" is not an address and port such as \"127.0.0.1:9630\" or \"[::1]:9630\" (numbers, not a host name)",
+                    w.listen
+                ),
+            ));
+            None
+        }
+    }
+}
 #[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawDaemon {
@@ -90,6 +121,8 @@ pub struct Config {
     pub alerts: AlertsConfig,
     pub outputs: Vec<Output>,
     pub control: Option<Control>,
+    /// The HTTP endpoint (metrics, health), when configured.
+    pub web: Option<Web>,
     /// The plant's time zone (IANA name); None for the system's.
     pub timezone: Option<String>,
     /// The plant's and the cell's names (report headers).
@@ -318,6 +351,7 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
     let alerts = outputs::build_alerts(&raw.alerts, &raw.output, loc, p);
     let outputs = outputs::build_outputs(&raw.output, &alerts, &resolve, loc, p);
     let control = outputs::build_control(&raw.control, &resolve, loc, p);
+    let web = build_web(&raw.web, loc, p);
     if let Some(tz) = &raw.daemon.timezone
         && let Err(e) = jiff::tz::TimeZone::get(tz)
     {
@@ -337,6 +371,7 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
         alerts,
         outputs,
         control,
+        web,
         timezone: raw.daemon.timezone.clone(),
         plant: raw.daemon.plant.clone(),
         cell: raw.daemon.cell.clone(),

@@ -24,6 +24,10 @@ pub(super) struct Publishers {
     pub alerts: watch::Sender<Arc<hub::AlertsView>>,
     pub light: watch::Sender<hub::Light>,
     pub states: watch::Sender<hub::States>,
+    /// Running totals for the metrics, once a second.
+    pub counts: watch::Sender<Arc<hub::Counts>>,
+    /// Every characteristic's view, for the live page.
+    pub views: watch::Sender<hub::Views>,
 }
 
 /// What the engine loop reads besides the sources.
@@ -55,6 +59,8 @@ pub(super) struct EngineTask {
     /// The characteristics that have alerts, as they stood when their alerts last changed
     /// (for the charts in emails); refreshed only for the ones that changed.
     alert_views: BTreeMap<String, Arc<CharView>>,
+    /// Every characteristic's view, kept for the live page (only while it is served).
+    views: BTreeMap<String, Arc<CharView>>,
 }
 
 impl EngineTask {
@@ -91,6 +97,7 @@ impl EngineTask {
             health_changed: false,
             states,
             alert_views: BTreeMap::new(),
+            views: BTreeMap::new(),
         };
         let alerts = task.alerts_view(true);
         task.publish.alerts.send_replace(alerts);
@@ -99,6 +106,17 @@ impl EngineTask {
         task.publish
             .states
             .send_replace(Arc::new(task.states.clone()));
+        if task.publish.views.receiver_count() > 0 {
+            task.views = task
+                .engine
+                .view()
+                .into_iter()
+                .map(|v| (v.id.clone(), Arc::new(v)))
+                .collect();
+            task.publish
+                .views
+                .send_replace(Arc::new(task.views.clone()));
+        }
         task
     }
 
@@ -142,11 +160,20 @@ impl EngineTask {
         if self.fx.dirty.is_empty() {
             return;
         }
+        let page = self.publish.views.receiver_count() > 0;
         for id in std::mem::take(&mut self.fx.dirty) {
             if let Some(v) = self.engine.view_of(&id) {
                 self.states
-                    .insert(id, hub::StateView::of(&v, self.engine.alerts()));
+                    .insert(id.clone(), hub::StateView::of(&v, self.engine.alerts()));
+                if page {
+                    self.views.insert(id, Arc::new(v));
+                }
             }
+        }
+        if page {
+            self.publish
+                .views
+                .send_replace(Arc::new(self.views.clone()));
         }
         self.publish
             .states
@@ -509,6 +536,12 @@ impl EngineTask {
                 "the outputs or the control socket changed; that takes effect at the next restart"
             );
         }
+        if new.web != cfg.web {
+            tracing::warn!(
+                component = "daemon",
+                "[web] changed; that takes effect at the next restart"
+            );
+        }
         if new.archive_dir != cfg.archive_dir {
             tracing::warn!(
                 component = "daemon",
@@ -542,6 +575,18 @@ impl EngineTask {
         self.cfg.sources = old.sources;
         self.cfg.outputs = old.outputs;
         self.cfg.control = old.control;
+        self.cfg.web = old.web;
+        // Characteristics may have come or gone: the retained states and the page's views
+        // drop the ones gone, and every one is published afresh at the next tick.
+        let ids: std::collections::BTreeSet<String> = self
+            .cfg
+            .characteristics
+            .iter()
+            .map(|c| c.id.clone())
+            .collect();
+        self.states.retain(|k, _| ids.contains(k));
+        self.views.retain(|k, _| ids.contains(k));
+        self.fx.dirty.extend(ids);
         self.fx.alerts_changed = true;
         crate::fsutil::release_memory();
         tracing::info!(component = "daemon", "reloaded {}", self.cfg.path.display());
@@ -567,6 +612,13 @@ impl EngineTask {
         .await?;
         // Retained states at most once a second, only the ones that changed.
         self.publish_states();
+        if self.publish.counts.receiver_count() > 0 {
+            self.publish.counts.send_replace(Arc::new(hub::Counts {
+                sources: self.health.values().cloned().collect(),
+                subgroups: self.fx.subgroups.clone(),
+                violations: self.fx.violations.clone(),
+            }));
+        }
         self.health_changed = true;
         Ok(())
     }

@@ -87,6 +87,21 @@ impl StateView {
     }
 }
 
+/// Running totals since the daemon started, for the metrics endpoint; published once a second.
+#[derive(Debug, Clone, Default)]
+pub struct Counts {
+    /// Each source's health and reading counts.
+    pub sources: Vec<SourceHealth>,
+    /// Subgroups checked, per characteristic.
+    pub subgroups: BTreeMap<String, u64>,
+    /// Violations per (characteristic, rule, severity).
+    pub violations: BTreeMap<(String, String, Severity), u64>,
+}
+
+/// Every characteristic as the engine sees it (recent subgroups, limits, standing), for the
+/// live page; refreshed at most once a second, only the ones that changed.
+pub type Views = Arc<BTreeMap<String, Arc<CharView>>>;
+
 /// Every characteristic's retained state, refreshed at most once a second.
 pub type States = Arc<BTreeMap<String, StateView>>;
 

@@ -15,6 +15,7 @@
 //! * [`outputs`] — where alerts go (stack light, MQTT, email).
 //! * [`control`] — the control socket (status, acknowledgements, approvals); [`hub`] — the
 //!   views the engine loop publishes to outputs and control.
+//! * [`web`] — the HTTP endpoint: metrics for the plant's monitoring, health checks.
 //! * [`notify`] — systemd readiness, watchdog and status notifications; [`clock`] — the one
 //!   clock.
 
@@ -24,7 +25,9 @@ mod engine_task;
 pub mod hub;
 pub mod notify;
 pub mod outputs;
+pub mod page;
 pub mod sources;
+pub mod web;
 
 pub use clock::now_ms;
 use engine_task::EngineTask;
@@ -48,6 +51,8 @@ pub enum DaemonError {
     Archive(#[from] ArchiveError),
     #[error("the archive writer did not finish within {0:?}")]
     LateWriter(Duration),
+    #[error("[web]: {0}")]
+    Web(String),
 }
 
 /// What a run did, for the caller and the tests.
@@ -73,6 +78,9 @@ struct Effects {
     journal: std::collections::HashMap<String, Journal>,
     /// Each characteristic's decimals, as its latest checked subgroup gave them.
     decimals: std::collections::HashMap<String, usize>,
+    /// Subgroups checked and violations, for the metrics.
+    subgroups: std::collections::BTreeMap<String, u64>,
+    violations: std::collections::BTreeMap<(String, String, crate::rules::Severity), u64>,
 }
 
 /// What the journal has said of one alert.
@@ -105,7 +113,8 @@ pub async fn run(
     crate::fsutil::release_memory();
 
     let progress = Arc::new(std::sync::atomic::AtomicI64::new(now_ms()));
-    let (publish, outputs, mut inbox) = start_outputs(&cfg, &progress, reload);
+    let (publish, outputs, mut inbox) =
+        start_outputs(&cfg, &progress, reload, archive.status()).await?;
     let (tx, rx) = mpsc::channel(SOURCE_QUEUE);
     let health = sources::start(&cfg.sources, &cfg.archive_dir, tx, &shutdown).await;
     let notifier = Arc::new(notify::Notifier::from_env());
@@ -228,19 +237,25 @@ impl OutputTasks {
 
 /// Starts every configured output and the control socket, with the channels between them and
 /// the engine loop.
-fn start_outputs(
+async fn start_outputs(
     cfg: &Config,
     progress: &Arc<std::sync::atomic::AtomicI64>,
     reload: mpsc::Receiver<()>,
-) -> (engine_task::Publishers, OutputTasks, engine_task::Inbox) {
+    archive_status: watch::Receiver<crate::archive::writer::Status>,
+) -> Result<(engine_task::Publishers, OutputTasks, engine_task::Inbox), DaemonError> {
     let (stop, stop_rx) = watch::channel(false);
     let (alerts_tx, alerts_rx) = watch::channel(Arc::new(hub::AlertsView::default()));
     let (light_tx, light_rx) = watch::channel(hub::Light::Off);
     let (states_tx, states_rx) = watch::channel::<hub::States>(Default::default());
     let (req_tx, req_rx) = mpsc::channel::<hub::Request>(64);
     let (deliv_tx, deliv_rx) = mpsc::channel::<hub::Delivery>(1024);
+    let (counts_tx, counts_rx) = watch::channel(Arc::new(hub::Counts::default()));
+    let (views_tx, views_rx) = watch::channel::<hub::Views>(Default::default());
     let mut tasks = Vec::new();
+    let mut failures = Vec::new();
     for o in &cfg.outputs {
+        let failed = Arc::new(std::sync::atomic::AtomicU64::new(0));
+        failures.push((o.id.clone(), failed.clone()));
         let t = outputs::spawn(
             o.clone(),
             outputs::Feeds {
@@ -252,6 +267,7 @@ fn start_outputs(
                 shutdown: stop_rx.clone(),
                 progress: progress.clone(),
                 timezone: cfg.tz(),
+                failures: failed,
             },
         );
         tracing::info!(component = "output", output = %o.id, "alerts go to {}", o.describe());
@@ -279,11 +295,44 @@ fn start_outputs(
             ),
         }
     }
-    (
+    if let Some(w) = &cfg.web {
+        // A port that cannot be opened stops the start: the plant's monitoring expects it.
+        let listener = tokio::net::TcpListener::bind(w.listen)
+            .await
+            .map_err(|e| DaemonError::Web(format!("cannot listen on {}: {e}", w.listen)))?;
+        tracing::info!(
+            component = "web",
+            "live page on http://{}/ (cell monitor on /monitor), metrics on /metrics, health on /healthz and /readyz",
+            listener.local_addr().map_or(w.listen, |a| a)
+        );
+        let state = web::WebState {
+            alerts: alerts_rx.clone(),
+            counts: counts_rx,
+            archive: archive_status,
+            progress: progress.clone(),
+            failures: Arc::new(failures),
+            archive_dir: cfg.archive_dir.clone(),
+            views: views_rx,
+            light: light_rx.clone(),
+            cell: cfg.cell.clone().unwrap_or_else(|| "linewarden".to_string()),
+            timezone: cfg.tz(),
+            reaction_plans: Arc::new(
+                cfg.characteristics
+                    .iter()
+                    .filter_map(|c| Some((c.id.clone(), c.reaction_plan.clone()?)))
+                    .collect(),
+            ),
+            charts: Default::default(),
+        };
+        tasks.push(tokio::spawn(web::serve(listener, state, stop_rx.clone())));
+    }
+    Ok((
         engine_task::Publishers {
             alerts: alerts_tx,
             light: light_tx,
             states: states_tx,
+            counts: counts_tx,
+            views: views_tx,
         },
         OutputTasks { stop, tasks },
         engine_task::Inbox {
@@ -291,7 +340,7 @@ fn start_outputs(
             delivered: deliv_rx,
             reload,
         },
-    )
+    ))
 }
 
 /// Pings systemd's watchdog only while the engine loop turns (it stamps `progress` at every
@@ -429,7 +478,15 @@ async fn carry_out(
                 }
                 records.push(r)
             }
-            Output::Violation { .. } => summary.violations += 1,
+            Output::Violation {
+                characteristic,
+                violation,
+            } => {
+                summary.violations += 1;
+                *fx.violations
+                    .entry((characteristic, violation.rule, violation.severity))
+                    .or_default() += 1;
+            }
             Output::Checked {
                 characteristic,
                 subgroup,
@@ -439,6 +496,12 @@ async fn carry_out(
                 decimals,
             } => {
                 summary.subgroups += 1;
+                match fx.subgroups.get_mut(characteristic.as_str()) {
+                    Some(n) => *n += 1,
+                    None => {
+                        fx.subgroups.insert(characteristic.clone(), 1);
+                    }
+                }
                 if fx.decimals.get(characteristic.as_str()) != Some(&decimals) {
                     fx.decimals.insert(characteristic.clone(), decimals);
                 }

@@ -38,6 +38,8 @@ pub fn demo_config(dir: &std::path::Path) -> linewarden::config::Config {
     let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
     let mut cfg = linewarden::config::load(&root.join("config/demo.toml")).unwrap();
     cfg.archive_dir = dir.join("archive");
+    // Tests run side by side: none of them takes the demo's fixed port.
+    cfg.web = None;
     if let Some(c) = &mut cfg.control {
         c.socket = dir.join("control.sock");
     }
@@ -63,6 +65,13 @@ pub fn demo_config(dir: &std::path::Path) -> linewarden::config::Config {
 
 /// Runs the daemon on `cfg` until its sources end, on a two-worker runtime as in production.
 pub fn run_daemon(cfg: linewarden::config::Config) -> linewarden::daemon::Summary {
+    try_run_daemon(cfg).unwrap()
+}
+
+/// [`run_daemon`], giving back the daemon's error (one that refuses to start).
+pub fn try_run_daemon(
+    cfg: linewarden::config::Config,
+) -> Result<linewarden::daemon::Summary, linewarden::daemon::DaemonError> {
     let rt = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
@@ -71,7 +80,6 @@ pub fn run_daemon(cfg: linewarden::config::Config) -> linewarden::daemon::Summar
     let (_stop, stop_rx) = tokio::sync::watch::channel(false);
     let (_reload, reload_rx) = tokio::sync::mpsc::channel(1);
     rt.block_on(linewarden::daemon::run(cfg, stop_rx, reload_rx))
-        .unwrap()
 }
 
 /// The daemon running in this process on a two-worker runtime, as in production, until
@@ -107,6 +115,11 @@ impl InProcess {
 
     pub fn is_finished(&self) -> bool {
         self.daemon.is_finished()
+    }
+
+    /// Asks for a reload of the config, as SIGHUP does.
+    pub fn reload(&self) {
+        self._reload.try_send(()).unwrap();
     }
 
     /// Stops it as SIGTERM would, and waits for a clean end.

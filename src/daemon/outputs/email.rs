@@ -47,12 +47,7 @@ fn transport(e: &EmailOutput) -> Result<AsyncSmtpTransport<Tokio1Executor>, Stri
     Ok(b.timeout(Some(Duration::from_secs(20))).build())
 }
 
-fn escape(s: &str) -> String {
-    s.replace('&', "&amp;")
-        .replace('<', "&lt;")
-        .replace('>', "&gt;")
-        .replace('"', "&quot;")
-}
+use crate::format::html as escape;
 
 /// The size of the chart picture in an email, in pixels.
 const CHART_WIDTH: u32 = 860;
@@ -264,6 +259,7 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
         let msg = match compose(&e, &o.id, &view, &due, &f.timezone) {
             Ok(m) => m,
             Err(err) => {
+                f.failed();
                 tracing::error!(
                     "cannot write the email for {}: {err}; skipping it",
                     ids.join(", ")
@@ -292,6 +288,7 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
                 attempt = 0;
             }
             Err(err) => {
+                f.failed();
                 if failing_since.is_none() || attempt.is_multiple_of(10) {
                     tracing::warn!(
                         "cannot send mail through {}:{}: {err}; retrying, the alerts wait",

@@ -92,6 +92,7 @@ pub async fn run(_o: Output, s: StackLight, mut f: Feeds) {
             c = connect(&s) => match c {
                 Ok(c) => c,
                 Err(e) => {
+                    f.failed();
                     if down_since.is_none() {
                         tracing::warn!("stack light unreachable: {e}; retrying");
                         down_since = Some(tokio::time::Instant::now());
@@ -137,6 +138,7 @@ pub async fn run(_o: Output, s: StackLight, mut f: Feeds) {
                     }
                 }
                 Err(e) => {
+                    f.failed();
                     tracing::warn!("stack light lost: {e}; reconnecting");
                     down_since.get_or_insert_with(tokio::time::Instant::now);
                     continue 'connect;

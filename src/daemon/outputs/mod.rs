@@ -36,6 +36,16 @@ pub struct Feeds {
     pub progress: Arc<std::sync::atomic::AtomicI64>,
     /// The plant's time zone, for the times people read.
     pub timezone: jiff::tz::TimeZone,
+    /// Failed attempts to deliver (a send refused, a device or broker lost), for the metrics.
+    pub failures: Arc<std::sync::atomic::AtomicU64>,
+}
+
+impl Feeds {
+    /// Counts a failed attempt to deliver.
+    pub fn failed(&self) {
+        self.failures
+            .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    }
 }
 
 /// Starts output `o`.

@@ -175,6 +175,7 @@ pub async fn run(o: Output, broker: Broker, prefix: String, mut f: Feeds) {
                     states_due = true;
                 }
                 Some(Heard::Lost(e)) => {
+                    f.failed();
                     if connected || down_since.is_none() {
                         tracing::warn!("lost the broker {}: {e}; alerts wait and go out when it is back", broker.url());
                         down_since.get_or_insert_with(tokio::time::Instant::now);
