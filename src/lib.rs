@@ -20,7 +20,8 @@
 //! * [`daemon`] — the tokio shell around the engine: [`daemon::sources`] (replay, folder,
 //!   serial, MQTT, one module each, one event type), [`daemon::outputs`] (stack light, MQTT,
 //!   email), [`daemon::control`] (the status and acknowledgement socket), [`daemon::hub`] (what
-//!   the engine loop publishes to them), [`daemon::web`] (metrics and health over HTTP),
+//!   the engine loop publishes to them), [`daemon::web`] (metrics, health and the live page over HTTP, with
+//!   [`daemon::access`] for acknowledging from it),
 //!   [`daemon::notify`] (systemd) and [`daemon::clock`].
 //! * [`archive`] — the append-only record of everything: framed, checksummed, sealed and
 //!   hash-chained segment files; the group-committing writer and its task; readers, `verify`,

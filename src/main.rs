@@ -43,6 +43,12 @@ enum Command {
     /// How often a rule set raises a false alarm, and how fast it catches a mean shift
     /// (average run lengths).
     Arl(ArlArgs),
+    /// Make a line of the live page's users file (`[web] users`): the name and an argon2 hash
+    /// of a password read from standard input (asked for twice, unechoed, at a terminal).
+    WebUser {
+        /// The user's name, as the archive will record who acknowledged.
+        name: String,
+    },
     /// Run the daemon: read the sources, check every subgroup, archive everything, alert.
     Run {
         /// The config file.
@@ -121,6 +127,7 @@ fn main() -> ExitCode {
         Command::Backtest(a) => backtest_cmd(a),
         Command::Archive(a) => archive_cmd(a),
         Command::Check { config } => check_cmd(&config),
+        Command::WebUser { name } => cli::daemon::web_user_cmd(&name),
         Command::Run { config } => run_cmd(&config),
         Command::Status { to, json, brief } => status_cmd(&to, json, brief),
         Command::Ack {

@@ -586,3 +586,54 @@ fn a_web_address_that_is_a_name_or_has_no_port_is_refused_where_it_is_written() 
         );
     }
 }
+
+/// Acknowledging from the page, configured wrong in every way at once: each problem once, with
+/// where it is (the users file's by line), and nothing listens.
+#[test]
+fn a_bad_page_login_setup_is_refused_with_every_problem_and_its_line() {
+    let dir = tempfile::tempdir().unwrap();
+    let hash = linewarden::daemon::access::hash_password("a-long-password").unwrap();
+    std::fs::write(
+        dir.path().join("users"),
+        format!(
+            "# people\ndana:{hash}\ndana:{hash}\nno hash here\nomar:$2y$10$notargon\nev e:{hash}\n"
+        ),
+    )
+    .unwrap();
+    std::fs::write(dir.path().join("cert.pem"), "not a certificate\n").unwrap();
+    let path = dir.path().join("cell.toml");
+    std::fs::write(
+        &path,
+        "[daemon]\narchive_dir = \"a\"\n\n[[characteristic]]\nid = \"bore\"\nsubgroup = { size = 5 }\n\n\
+         [web]\nlisten = \"0.0.0.0:9630\"\nusers = \"users\"\nhosts = [\"http://cell4\", \"cell4\", \"CELL4\"]\n\
+         tls_certificate = \"cert.pem\"\nsession_hours = 0\n",
+    )
+    .unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    for want in [
+        "users line 3: user \"dana\" is listed twice",
+        "users line 4: expected NAME:HASH",
+        "users line 5: user \"omar\": the hash is not an argon2 hash string",
+        "users line 6: the user name \"ev e\" may hold letters",
+        "web.hosts[0]: \"http://cell4\" is not a host name",
+        "web.hosts[2]: \"CELL4\" is listed twice",
+        "web.tls_key: tls_certificate is set without tls_key",
+        "web.session_hours: 0 is not a login's length",
+    ] {
+        assert_eq!(err.matches(want).count(), 1, "{want:?} once in\n{err}");
+    }
+    // With the names given, no complaint about them; an empty users file is one problem.
+    std::fs::write(dir.path().join("users"), "# nobody yet\n").unwrap();
+    std::fs::write(
+        &path,
+        "[daemon]\narchive_dir = \"a\"\n\n[[characteristic]]\nid = \"bore\"\nsubgroup = { size = 5 }\n\n\
+         [web]\nlisten = \"0.0.0.0:9630\"\nusers = \"users\"\n",
+    )
+    .unwrap();
+    let err = config::load(&path).unwrap_err().to_string();
+    assert!(err.contains("names no user"), "{err}");
+    assert!(
+        err.contains("web.hosts: acknowledging from the page on 0.0.0.0:9630"),
+        "{err}"
+    );
+}

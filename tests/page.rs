@@ -2,7 +2,8 @@
 //! WebDriver): the overview lists the characteristics, a violation fed to the daemon shows on
 //! an open page within 2 seconds without a reload, the characteristic's page says what fired,
 //! what to check first and how to acknowledge, and the cell monitor turns red. Screenshots go
-//! to target/page-*.png for people to look at.
+//! to target/page-*.png for people to look at. A technician logs in and acknowledges from the
+//! page, and the archive holds the acknowledgement with their name.
 
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
@@ -13,7 +14,7 @@ use fantoccini::{ClientBuilder, Locator};
 mod common;
 use common::peers::{free_port, wait_for_port};
 
-fn cell(dir: &Path, port: u16) -> std::path::PathBuf {
+fn cell(dir: &Path, port: u16, web: &str) -> std::path::PathBuf {
     std::fs::write(dir.join("bore.toml"), common::BORE_LIMITS).unwrap();
     std::fs::create_dir_all(dir.join("inbox")).unwrap();
     let text = format!(
@@ -50,6 +51,7 @@ settle_ms = 20
 
 [web]
 listen = "127.0.0.1:{port}"
+{web}
 "#
     );
     let p = dir.join("cell.toml");
@@ -145,6 +147,24 @@ async fn text_of(c: &fantoccini::Client, css: &str) -> String {
     v.as_str().unwrap_or_default().to_string()
 }
 
+/// Waits up to 5 s for the element `css` to show a text containing `want` (after a click, the
+/// next page takes a moment to come).
+async fn until_text(c: &fantoccini::Client, css: &str, want: &str) {
+    let start = Instant::now();
+    loop {
+        let text = text_of(c, css).await;
+        if text.contains(want) {
+            return;
+        }
+        assert!(
+            start.elapsed() < Duration::from_secs(5),
+            "{want:?} not in {css}: {text:?}; the page: {}",
+            text_of(c, "body").await
+        );
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+}
+
 async fn shot(c: &fantoccini::Client, name: &str) {
     let png = c.screenshot().await.unwrap();
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("target");
@@ -159,7 +179,7 @@ fn a_violation_shows_on_an_open_page_within_two_seconds_without_a_reload() {
     };
     let dir = tempfile::tempdir().unwrap();
     let port = free_port();
-    let cfg = cell(dir.path(), port);
+    let cfg = cell(dir.path(), port, "");
     let daemon = common::InProcess::start(&cfg);
     wait_for_port(port);
     let d = dir.path().to_path_buf();
@@ -277,4 +297,159 @@ fn a_violation_shows_on_an_open_page_within_two_seconds_without_a_reload() {
         c.close().await.unwrap();
     });
     daemon.stop();
+}
+
+/// The bore's alert, acknowledged from the page by a logged-in technician: a wrong password is
+/// refused, the right one brings them back where they were, the note they type is not wiped by
+/// the page's live updates, and the archive records the acknowledgement with their name.
+#[test]
+fn a_technician_logs_in_on_the_page_and_acknowledges_and_the_archive_holds_it() {
+    use linewarden::alerts::AlertEvent;
+    use linewarden::archive::reader::{Filter, Reader};
+    use linewarden::archive::record::Record;
+    let Some((_driver, driver_port)) = chromedriver() else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path().to_path_buf();
+    let hash = linewarden::daemon::access::hash_password("night-shift-7").unwrap();
+    std::fs::write(
+        d.join("users"),
+        format!("# who may acknowledge\ndana:{hash}\n"),
+    )
+    .unwrap();
+    let port = free_port();
+    let cfg = cell(&d, port, "users = \"users\"");
+    let daemon = common::InProcess::start(&cfg);
+    wait_for_port(port);
+    report(&d, "r1", 0, 12.001);
+    report(&d, "r2", 4, 12.02);
+    common::wait("both reports", Duration::from_secs(20), || {
+        d.join("inbox/done/r2.csv").exists()
+    });
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    rt.block_on(async {
+        let c = browser(driver_port).await;
+        let base = format!("http://127.0.0.1:{port}");
+        c.goto(&format!("{base}/c/bore")).await.unwrap();
+        let start = Instant::now();
+        while !text_of(&c, "main").await.contains("beyond-limits") {
+            assert!(start.elapsed() < Duration::from_secs(10), "no alert shown");
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        // Not logged in: the way to log in, and no form.
+        assert!(c.find(Locator::Css("form.ack")).await.is_err());
+        c.find(Locator::LinkText("Log in to acknowledge"))
+            .await
+            .unwrap()
+            .click()
+            .await
+            .unwrap();
+        let login = |user: &'static str, pw: &'static str| {
+            let c = c.clone();
+            async move {
+                c.find(Locator::Css("input[name=user]"))
+                    .await
+                    .unwrap()
+                    .send_keys(user)
+                    .await
+                    .unwrap();
+                c.find(Locator::Css("input[name=password]"))
+                    .await
+                    .unwrap()
+                    .send_keys(pw)
+                    .await
+                    .unwrap();
+                c.find(Locator::Css("form.login button"))
+                    .await
+                    .unwrap()
+                    .click()
+                    .await
+                    .unwrap();
+            }
+        };
+        login("dana", "night-shift-8").await;
+        until_text(&c, "#refused", "Wrong name or password.").await;
+        shot(&c, "login-refused").await;
+        login("dana", "night-shift-7").await;
+        // Back on the characteristic's page, logged in.
+        until_text(&c, "header .who", "Logged in as dana").await;
+        assert_eq!(c.current_url().await.unwrap().path(), "/c/bore");
+        // A note being typed survives the live updates that come meanwhile.
+        let note = c.find(Locator::Css("form.ack input[name=note]")).await.unwrap();
+        note.send_keys("insert worn, changed; first part measured 12.001").await.unwrap();
+        report(&d, "r3", 8, 12.001);
+        let d2 = d.clone();
+        tokio::task::spawn_blocking(move || {
+            common::wait("the third report", Duration::from_secs(20), || {
+                d2.join("inbox/done/r3.csv").exists()
+            })
+        })
+        .await
+        .unwrap();
+        tokio::time::sleep(Duration::from_millis(2500)).await;
+        let typed = c
+            .execute(
+                "const e = document.querySelector('form.ack input[name=note]'); return e ? e.value : null;",
+                vec![],
+            )
+            .await
+            .unwrap();
+        assert_eq!(
+            typed,
+            serde_json::json!("insert worn, changed; first part measured 12.001"),
+            "the note was wiped by a live update"
+        );
+        shot(&c, "acknowledge-form").await;
+        c.find(Locator::Css("form.ack button"))
+            .await
+            .unwrap()
+            .click()
+            .await
+            .unwrap();
+        until_text(
+            &c,
+            "#acked",
+            "bore-2-beyond-limits-up is acknowledged by dana",
+        )
+        .await;
+        assert!(c.find(Locator::Css("form.ack")).await.is_err(), "still a form");
+        // The card says so as the page comes back (the condition was gone: the alert is over).
+        assert_eq!(text_of(&c, "main .state").await, "In control");
+        shot(&c, "acknowledged").await;
+        // Logging out ends the session: the page offers the login again.
+        c.find(Locator::Css("header form button"))
+            .await
+            .unwrap()
+            .click()
+            .await
+            .unwrap();
+        until_text(&c, "header .who", "Log in to acknowledge").await;
+        c.close().await.unwrap();
+    });
+    daemon.stop();
+    let r = Reader::open(&d.join("archive")).unwrap();
+    let acks: Vec<(String, String, Option<String>)> = r
+        .iter(&Filter::default())
+        .flatten()
+        .filter_map(|e| match e.record {
+            Record::Alert {
+                alert_id,
+                event: AlertEvent::Acknowledged { by, note, .. },
+                ..
+            } => Some((alert_id, by, note)),
+            _ => None,
+        })
+        .collect();
+    assert_eq!(
+        acks,
+        vec![(
+            "bore-2-beyond-limits-up".to_string(),
+            "dana".to_string(),
+            Some("insert worn, changed; first part measured 12.001".to_string())
+        )]
+    );
 }

@@ -166,6 +166,24 @@ pub(crate) fn check_cmd(path: &std::path::Path) -> Result<()> {
             ),
         }
     }
+    if let Some(w) = &c.web {
+        println!(
+            "  web          {}://{}/{}",
+            if w.tls.is_some() { "https" } else { "http" },
+            w.listen,
+            match (&w.users, w.acknowledging()) {
+                (Some(u), Ok(())) => format!(
+                    "; acknowledging after a login ({} users in {})",
+                    linewarden::config::web::read_users(u).map_or(0, |l| l.len()),
+                    u.display()
+                ),
+                _ => "; showing only".to_string(),
+            }
+        );
+        for warning in w.warnings() {
+            eprintln!("warning: {}: {warning}", path.display());
+        }
+    }
     // What the daemon writes must be writable by the user running this (the unit runs check as
     // the service user): the archive, and where learned limits go.
     let mut places = vec![("the archive", c.archive_dir.clone())];
@@ -343,4 +361,65 @@ pub(crate) fn run_cmd(path: &std::path::Path) -> Result<()> {
         );
         Ok(())
     })
+}
+
+/// `linewarden web-user NAME`: prints `NAME:HASH` for the users file.
+pub(crate) fn web_user_cmd(name: &str) -> Result<()> {
+    use std::io::{BufRead, IsTerminal};
+    linewarden::config::web::check_user_name(name).map_err(|e| anyhow::anyhow!(e))?;
+    let stdin = std::io::stdin();
+    let tty = stdin.is_terminal();
+    let read = |prompt: &str| -> Result<String> {
+        if tty {
+            eprint!("{prompt}");
+        }
+        let _quiet = tty.then(Unechoed::new).flatten();
+        let mut line = String::new();
+        stdin.lock().read_line(&mut line)?;
+        if tty {
+            eprintln!();
+        }
+        Ok(line.trim_end_matches(['\r', '\n']).to_string())
+    };
+    let password = read(&format!("Password for {name}: "))?;
+    if password.is_empty() {
+        anyhow::bail!("no password given (one line on standard input)");
+    }
+    if password.chars().count() < 8 {
+        anyhow::bail!("the password has fewer than 8 characters; choose a longer one");
+    }
+    if tty && read("Again: ")? != password {
+        anyhow::bail!("the two passwords differ; nothing was made");
+    }
+    let hash =
+        linewarden::daemon::access::hash_password(&password).map_err(|e| anyhow::anyhow!(e))?;
+    println!("{name}:{hash}");
+    Ok(())
+}
+
+/// The terminal's echo off while it lives.
+struct Unechoed(libc::termios);
+
+impl Unechoed {
+    fn new() -> Option<Unechoed> {
+        // SAFETY: tcgetattr and tcsetattr on standard input with a termios we own.
+        unsafe {
+            let mut t: libc::termios = std::mem::zeroed();
+            if libc::tcgetattr(0, &mut t) != 0 {
+                return None;
+            }
+            let saved = t;
+            t.c_lflag &= !libc::ECHO;
+            (libc::tcsetattr(0, libc::TCSANOW, &t) == 0).then_some(Unechoed(saved))
+        }
+    }
+}
+
+impl Drop for Unechoed {
+    fn drop(&mut self) {
+        // SAFETY: restores the settings read in `new`.
+        unsafe {
+            libc::tcsetattr(0, libc::TCSANOW, &self.0);
+        }
+    }
 }

@@ -16,6 +16,7 @@ use serde::{Deserialize, Serialize};
 pub mod characteristics;
 pub mod outputs;
 pub mod sources;
+pub mod web;
 pub use characteristics::{
     Characteristic, Grouping, OnTimeout, RawCharacteristic, RawLearning, RawSubgroup,
 };
@@ -27,6 +28,7 @@ pub use sources::{
     Broker, Duplicates, MAX_PACKET, MqttSource, Payload, RawSource, ReportRows, Secret,
     SerialGauge, Source, TopicFilter,
 };
+pub use web::{RawWeb, Web, WebUser};
 
 use crate::diag::{Locator, Problem, Problems};
 
@@ -47,37 +49,6 @@ pub struct RawConfig {
     pub web: Option<RawWeb>,
 }
 
-/// `[web]`: the daemon's HTTP endpoint (metrics and health checks).
-#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawWeb {
-    /// Address and port to listen on, such as "127.0.0.1:9630".
-    pub listen: String,
-}
-
-/// The daemon's HTTP endpoint.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Web {
-    pub listen: std::net::SocketAddr,
-}
-
-/// `[web]` checked: an address and port, as numbers (no name to look up).
-fn build_web(raw: &Option<RawWeb>, loc: &Locator, p: &mut Vec<Problem>) -> Option<Web> {
-    let w = raw.as_ref()?;
-    match w.listen.trim().parse::<std::net::SocketAddr>() {
-        Ok(listen) => Some(Web { listen }),
-        Err(_) => {
-            p.push(loc.problem(
-                "web.listen",
-                format!(
-                    "\"{}\" is not an address and port such as \"127.0.0.1:9630\" or \"[::1]:9630\" (numbers, not a host name)",
-                    w.listen
-                ),
-            ));
-            None
-        }
-    }
-}
 #[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawDaemon {
@@ -351,7 +322,7 @@ fn build(raw: &RawConfig, base: &Path, path: &Path, loc: &Locator, p: &mut Vec<P
     let alerts = outputs::build_alerts(&raw.alerts, &raw.output, loc, p);
     let outputs = outputs::build_outputs(&raw.output, &alerts, &resolve, loc, p);
     let control = outputs::build_control(&raw.control, &resolve, loc, p);
-    let web = build_web(&raw.web, loc, p);
+    let web = web::build_web(&raw.web, &resolve, loc, p);
     if let Some(tz) = &raw.daemon.timezone
         && let Err(e) = jiff::tz::TimeZone::get(tz)
     {

@@ -230,18 +230,23 @@ impl EngineTask {
                 Some(()) = inbox.reload.recv() => self.on_reload().await?,
                 _ = tick.tick() => self.on_tick().await?,
             }
-            if self.fx.alerts_changed {
-                self.fx.alerts_changed = false;
-                let alerts = self.alerts_view(true);
-                self.publish.alerts.send_replace(alerts);
-                self.health_changed = true;
-            }
-            if self.health_changed {
-                let l = self.light();
-                self.publish
-                    .light
-                    .send_if_modified(|old| std::mem::replace(old, l) != l);
-            }
+            self.publish_alerts_and_light();
+        }
+    }
+
+    /// Publishes the alerts if they changed, and the light if it may have.
+    fn publish_alerts_and_light(&mut self) {
+        if self.fx.alerts_changed {
+            self.fx.alerts_changed = false;
+            let alerts = self.alerts_view(true);
+            self.publish.alerts.send_replace(alerts);
+            self.health_changed = true;
+        }
+        if self.health_changed {
+            let l = self.light();
+            self.publish
+                .light
+                .send_if_modified(|old| std::mem::replace(old, l) != l);
         }
     }
 
@@ -389,6 +394,10 @@ impl EngineTask {
                             &mut self.fx,
                         )
                         .await?;
+                        // Whoever acknowledged looks at the state next (the page shows it
+                        // at once): it is published before the answer, not at the next tick.
+                        self.publish_alerts_and_light();
+                        self.publish_states();
                         hub::AckReply {
                             ok: true,
                             acknowledged: ids,

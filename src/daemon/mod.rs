@@ -15,10 +15,13 @@
 //! * [`outputs`] — where alerts go (stack light, MQTT, email).
 //! * [`control`] — the control socket (status, acknowledgements, approvals); [`hub`] — the
 //!   views the engine loop publishes to outputs and control.
-//! * [`web`] — the HTTP endpoint: metrics for the plant's monitoring, health checks.
+//! * [`web`] — the HTTP endpoint (plain or TLS): metrics for the plant's monitoring, health
+//!   checks; [`page`] — the live page; [`access`] — logins, sessions and the checks on every
+//!   form that acknowledges from the page.
 //! * [`notify`] — systemd readiness, watchdog and status notifications; [`clock`] — the one
 //!   clock.
 
+pub mod access;
 pub mod clock;
 pub mod control;
 mod engine_task;
@@ -300,11 +303,32 @@ async fn start_outputs(
         let listener = tokio::net::TcpListener::bind(w.listen)
             .await
             .map_err(|e| DaemonError::Web(format!("cannot listen on {}: {e}", w.listen)))?;
+        let tls = match &w.tls {
+            Some(t) => Some(t.load().map_err(DaemonError::Web)?),
+            None => None,
+        };
         tracing::info!(
             component = "web",
-            "live page on http://{}/ (cell monitor on /monitor), metrics on /metrics, health on /healthz and /readyz",
+            "live page on {}://{}/ (cell monitor on /monitor), metrics on /metrics, health on /healthz and /readyz",
+            if tls.is_some() { "https" } else { "http" },
             listener.local_addr().map_or(w.listen, |a| a)
         );
+        for warning in w.warnings() {
+            tracing::warn!(component = "web", "{warning}");
+        }
+        let access = w.users.as_ref().map(|_| {
+            match w.acknowledging() {
+                Ok(()) => tracing::info!(
+                    component = "web",
+                    "acknowledging from the page: people of {} may log in",
+                    w.users
+                        .as_ref()
+                        .map_or(String::new(), |p| p.display().to_string())
+                ),
+                Err(e) => tracing::warn!(component = "web", "{e}"),
+            }
+            Arc::new(access::Access::new(w.clone(), req_tx.clone()))
+        });
         let state = web::WebState {
             alerts: alerts_rx.clone(),
             counts: counts_rx,
@@ -323,8 +347,15 @@ async fn start_outputs(
                     .collect(),
             ),
             charts: Default::default(),
+            web: Arc::new(w.clone()),
+            access,
         };
-        tasks.push(tokio::spawn(web::serve(listener, state, stop_rx.clone())));
+        tasks.push(tokio::spawn(web::serve(
+            listener,
+            tls,
+            state,
+            stop_rx.clone(),
+        )));
     }
     Ok((
         engine_task::Publishers {

@@ -14,23 +14,57 @@ use std::convert::Infallible;
 use std::sync::Arc;
 use std::time::Duration;
 
-use axum::extract::{Path, Query, State};
+use axum::extract::{Form, Path, Query, State};
 use axum::http::{HeaderMap, StatusCode, header};
 use axum::response::sse::{Event, KeepAlive, Sse};
-use axum::response::{Html, IntoResponse, Response};
+use axum::response::{AppendHeaders, Html, IntoResponse, Redirect, Response};
 use futures_util::stream::Stream;
 
+use super::access::{LOGIN_COOKIE, LoginRefused, MAX_NOTE, SESSION_COOKIE, Session, same};
 use super::hub::Light;
-use super::web::WebState;
+use super::web::{Peer, WebState};
 use crate::alerts::{Alert, Standing, Status};
 use crate::engine::CharView;
 use crate::format::{fixed, html as esc};
 
-/// `?fragment=1`: only the live part of the page (what the page's script fetches).
+/// `?fragment=1`: only the live part of the page (what the page's script fetches);
+/// `?acked=ID`: after an acknowledgement from this page, say how it stands.
 #[derive(serde::Deserialize, Default)]
 pub struct Fragment {
     #[serde(default)]
     fragment: Option<String>,
+    #[serde(default)]
+    acked: Option<String>,
+}
+
+/// Who is looking: logged in (with the session's CSRF token for the forms) or not, and where
+/// (for the way back after logging in).
+pub struct Viewer {
+    session: Option<Session>,
+    can_login: bool,
+    here: String,
+}
+
+fn viewer(state: &WebState, headers: &HeaderMap, here: &str) -> Viewer {
+    let access = state.access.as_ref();
+    Viewer {
+        session: access.and_then(|a| a.session(headers)),
+        can_login: access.is_some_and(|a| a.enabled().is_ok()),
+        here: here.to_string(),
+    }
+}
+
+/// Percent-encodes a query value.
+fn query_value(v: &str) -> String {
+    v.bytes()
+        .map(|b| {
+            if b.is_ascii_alphanumeric() || matches!(b, b'-' | b'_' | b'.' | b'~') {
+                (b as char).to_string()
+            } else {
+                format!("%{b:02X}")
+            }
+        })
+        .collect()
 }
 
 /// The meaning of a standing in plain words, and its class (colour by IEC 60073 meaning: red
@@ -88,54 +122,101 @@ th:first-child,td:first-child{text-align:left}
 .mon{grid-template-columns:repeat(auto-fill,minmax(30em,1fr))}
 .mon .card{font-size:2.4em;padding:.4em .6em}
 .mon .card h2{font-size:1.1em}
+header .who{margin-left:auto}
+form.inline{display:inline;margin:0}
+form.ack{margin-top:.5em}
+.done{background:#e8f5e9;border-left:.5em solid #2e7d32;padding:.4em .8em}
+.refused{background:#ffebee;border-left:.5em solid #c62828;padding:.4em .8em}
+.login{max-width:26em}.login label{display:block;margin:.6em 0}.login input{width:100%;font-size:1.1em}
+button{font-size:1em;padding:.3em .9em}
 "#;
 
 /// Reconnects by itself (EventSource does), and on each change fetches this page's live part.
 const SCRIPT: &str = r#"
 const live = document.getElementById('live');
 const es = new EventSource('/events');
-es.addEventListener('changed', async () => {
+let waiting = false;
+// Someone filling in a form (a note to an acknowledgement) keeps it until they leave it.
+const busy = () => { const a = document.activeElement; return a && a.closest && live.contains(a) && a.closest('form'); };
+async function refresh() {
+  if (busy()) { waiting = true; return; }
+  waiting = false;
   const sep = location.search ? '&' : '?';
   try {
     const r = await fetch(location.pathname + location.search + sep + 'fragment=1', {cache: 'no-store'});
-    if (r.ok) { live.innerHTML = await r.text(); document.body.dataset.updated = Date.now(); }
+    if (r.ok && !busy()) { live.innerHTML = await r.text(); document.body.dataset.updated = Date.now(); }
   } catch (e) {}
-});
+}
+es.addEventListener('changed', refresh);
+document.addEventListener('focusout', () => setTimeout(() => { if (waiting) refresh(); }, 300));
 "#;
 
-/// The part of a page that updates: the header with the cell's light, and the content.
-fn live(state: &WebState, class: &str, body: &str) -> String {
+/// The part of a page that updates: the header with the cell's light (and who is logged in),
+/// and the content.
+fn live(state: &WebState, who: Option<&Viewer>, class: &str, body: &str) -> String {
     let (lc, lw) = light_words(*state.light.borrow());
+    let login = match who {
+        Some(Viewer {
+            session: Some(s), ..
+        }) => format!(
+            "<span class=\"who\">Logged in as {user}</span>\
+             <form method=\"post\" action=\"/logout\" class=\"inline\">\
+             <input type=\"hidden\" name=\"csrf\" value=\"{csrf}\"><button>Log out</button></form>",
+            user = esc(&s.user),
+            csrf = esc(&s.csrf),
+        ),
+        Some(Viewer {
+            can_login: true,
+            here,
+            ..
+        }) => format!(
+            "<a class=\"who\" href=\"/login?next={}\">Log in to acknowledge</a>",
+            query_value(here)
+        ),
+        _ => String::new(),
+    };
     format!(
         "<header><strong>{cell}</strong><span class=\"light {lc}\" id=\"light\">{lw}</span>\
-         <a href=\"/\">All characteristics</a><a href=\"/monitor\">Cell monitor</a></header>\
+         <a href=\"/\">All characteristics</a><a href=\"/monitor\">Cell monitor</a>{login}</header>\
          <main class=\"{class}\">{body}</main>",
         cell = esc(&state.cell),
     )
 }
 
-fn page(state: &WebState, title: &str, class: &str, body: &str) -> String {
+fn page(state: &WebState, who: Option<&Viewer>, title: &str, class: &str, body: &str) -> String {
     format!(
         "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\">\
          <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\
          <title>{t}</title><style>{STYLE}</style></head><body>\
          <div id=\"live\">{live}</div><script>{SCRIPT}</script></body></html>",
         t = esc(title),
-        live = live(state, class, body),
+        live = live(state, who, class, body),
+    )
+}
+
+/// A page that does not update itself (the login form, an answer to a form).
+fn still_page(state: &WebState, title: &str, body: &str) -> String {
+    format!(
+        "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\">\
+         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\
+         <title>{t}</title><style>{STYLE}</style></head><body>{live}</body></html>",
+        t = esc(title),
+        live = live(state, None, "one", body),
     )
 }
 
 fn fragment_or_page(
     state: &WebState,
+    who: Option<&Viewer>,
     q: &Fragment,
     title: &str,
     class: &str,
     body: String,
 ) -> Response {
     let html = if q.fragment.is_some() {
-        live(state, class, &body)
+        live(state, who, class, &body)
     } else {
-        page(state, title, class, &body)
+        page(state, who, title, class, &body)
     };
     ([(header::CACHE_CONTROL, "no-store")], Html(html)).into_response()
 }
@@ -203,7 +284,11 @@ const OVERVIEW_CHARTS: usize = 48;
 
 /// `/`: every characteristic, its state in words and colour, its latest subgroup, a small
 /// chart (for the first [`OVERVIEW_CHARTS`], most urgent first).
-pub async fn overview(State(state): State<WebState>, Query(q): Query<Fragment>) -> Response {
+pub async fn overview(
+    State(state): State<WebState>,
+    headers: HeaderMap,
+    Query(q): Query<Fragment>,
+) -> Response {
     let views = state.views.borrow().clone();
     let book = state.alerts.borrow().book.clone();
     let s2 = state.clone();
@@ -238,7 +323,8 @@ pub async fn overview(State(state): State<WebState>, Query(q): Query<Fragment>) 
     })
     .await
     .unwrap_or_default();
-    fragment_or_page(&state, &q, &state.cell, "", body)
+    let who = viewer(&state, &headers, "/");
+    fragment_or_page(&state, Some(&who), &q, &state.cell, "", body)
 }
 
 /// `/monitor`: the cell monitor, large type, no interaction needed.
@@ -262,21 +348,24 @@ pub async fn monitor(State(state): State<WebState>, Query(q): Query<Fragment>) -
             words = esc(&words),
         ));
     }
-    fragment_or_page(&state, &q, "Cell monitor", "mon", body)
+    fragment_or_page(&state, None, &q, "Cell monitor", "mon", body)
 }
 
 /// `/c/{id}`: one characteristic: its charts, its open alerts with what to check first and how
 /// to acknowledge, its recent subgroups.
 pub async fn characteristic(
     State(state): State<WebState>,
+    headers: HeaderMap,
     Path(id): Path<String>,
     Query(q): Query<Fragment>,
 ) -> Response {
+    let who = viewer(&state, &headers, &format!("/c/{id}"));
     let Some(v) = state.views.borrow().get(&id).cloned() else {
         return (
             StatusCode::NOT_FOUND,
             Html(page(
                 &state,
+                Some(&who),
                 "Not found",
                 "one",
                 &format!("<p>No characteristic is called \"{}\".</p>", esc(&id)),
@@ -287,6 +376,9 @@ pub async fn characteristic(
     let book = state.alerts.borrow().book.clone();
     let plan = state.reaction_plans.get(&id).cloned();
     let s2 = state.clone();
+    let session = who.session.clone();
+    let can_login = who.can_login;
+    let acked = q.acked.clone();
     let body = tokio::task::spawn_blocking(move || {
         let on = alerts_of(&book, &v.id);
         let (class, words) = standing_words(&v);
@@ -298,6 +390,19 @@ pub async fn characteristic(
             words = esc(&words),
             latest = latest_words(&v),
         );
+        if let Some(a) = acked.as_deref().and_then(|id| {
+            book.by_characteristic
+                .get(&v.id)
+                .and_then(|l| l.iter().find(|a| a.id == id))
+        }) && let Some(k) = &a.ack
+        {
+            b.push_str(&format!(
+                "<p class=\"done\" id=\"acked\">{id} is acknowledged by {by} at {at}.</p>",
+                id = esc(&a.id),
+                by = esc(&k.by),
+                at = esc(&crate::format::local_ms(k.at_ms, &s2.timezone)),
+            ));
+        }
         for a in &on {
             let sev = match a.severity {
                 crate::rules::Severity::Stop => "stop",
@@ -330,10 +435,32 @@ pub async fn characteristic(
                 b.push_str(&format!("<br><span class=\"plan\">What to check first:</span> {}", esc(p)));
             }
             if a.status == Status::Open {
-                b.push_str(&format!(
-                    "<br>Acknowledge: <code>linewarden ack {} --by NAME [--note TEXT]</code>",
-                    esc(&a.id)
-                ));
+                match &session {
+                    Some(s) => b.push_str(&format!(
+                        "<form method=\"post\" action=\"/ack\" class=\"ack\">\
+                         <input type=\"hidden\" name=\"csrf\" value=\"{csrf}\">\
+                         <input type=\"hidden\" name=\"alert\" value=\"{id}\">\
+                         <input type=\"hidden\" name=\"back\" value=\"{back}\">\
+                         <label>Note (what you found or did) <input name=\"note\" maxlength=\"{MAX_NOTE}\" size=\"50\"></label> \
+                         <button>Acknowledge as {user}</button></form>",
+                        csrf = esc(&s.csrf),
+                        id = esc(&a.id),
+                        back = esc(&v.id),
+                        user = esc(&s.user),
+                    )),
+                    None => {
+                        b.push_str(&format!(
+                            "<br>Acknowledge: <code>linewarden ack {} --by NAME [--note TEXT]</code>",
+                            esc(&a.id)
+                        ));
+                        if can_login {
+                            b.push_str(&format!(
+                                " or <a href=\"/login?next={}\">log in</a> to acknowledge here",
+                                query_value(&format!("/c/{}", v.id))
+                            ));
+                        }
+                    }
+                }
             }
             b.push_str("</div>");
         }
@@ -354,7 +481,7 @@ pub async fn characteristic(
     })
     .await
     .unwrap_or_default();
-    fragment_or_page(&state, &q, &id, "one", body)
+    fragment_or_page(&state, Some(&who), &q, &id, "one", body)
 }
 
 /// `/events`: one event, `changed`, whenever what the pages show has changed, at most one a
@@ -447,3 +574,337 @@ pub type Plans = Arc<BTreeMap<String, String>>;
 /// characteristic and size, so it is bounded by the cell's size.
 pub type ChartCache =
     Arc<std::sync::Mutex<std::collections::HashMap<(String, u32), (u64, Arc<String>)>>>;
+
+/// A path on this page to go back to after logging in (never another site).
+fn local_path(next: Option<&str>) -> String {
+    match next {
+        Some(n)
+            if n.starts_with('/')
+                && !n.starts_with("//")
+                && !n.contains(['\\', '\r', '\n'])
+                && n.len() < 300 =>
+        {
+            n.to_string()
+        }
+        _ => "/".to_string(),
+    }
+}
+
+/// A refusal in plain words on a page of its own, with the way back.
+fn refused(state: &WebState, code: StatusCode, words: &str, back: &str) -> Response {
+    (
+        code,
+        [(header::CACHE_CONTROL, "no-store")],
+        Html(still_page(
+            state,
+            "Refused",
+            &format!(
+                "<p class=\"refused\" id=\"refused\">{}</p><p><a href=\"{}\">Back</a></p>",
+                esc(words),
+                esc(back)
+            ),
+        )),
+    )
+        .into_response()
+}
+
+#[derive(serde::Deserialize, Default)]
+pub struct Next {
+    #[serde(default)]
+    next: Option<String>,
+}
+
+/// The login form, with a fresh token in a short-lived cookie and in the form (a POST without
+/// both, the same, is refused).
+fn login_page(state: &WebState, next: &str, problem: Option<&str>, code: StatusCode) -> Response {
+    let Some(access) = &state.access else {
+        return refused(
+            state,
+            StatusCode::NOT_FOUND,
+            "Acknowledging from this page is not configured ([web] users).",
+            "/",
+        );
+    };
+    if let Err(e) = access.enabled() {
+        return refused(state, StatusCode::FORBIDDEN, &e, "/");
+    }
+    let t = super::access::token();
+    let body = format!(
+        "<form method=\"post\" action=\"/login\" class=\"login\"><h2>Log in to acknowledge alerts</h2>{problem}\
+         <input type=\"hidden\" name=\"csrf\" value=\"{t}\">\
+         <input type=\"hidden\" name=\"next\" value=\"{next}\">\
+         <label>Name <input name=\"user\" autocomplete=\"username\" required autofocus></label>\
+         <label>Password <input name=\"password\" type=\"password\" autocomplete=\"current-password\" required></label>\
+         <button>Log in</button></form>",
+        problem = problem
+            .map(|p| format!("<p class=\"refused\" id=\"refused\">{}</p>", esc(p)))
+            .unwrap_or_default(),
+        next = esc(next),
+    );
+    (
+        code,
+        AppendHeaders([
+            (header::SET_COOKIE, access.set_cookie(LOGIN_COOKIE, &t, 900)),
+            (header::CACHE_CONTROL, "no-store".to_string()),
+        ]),
+        Html(still_page(state, "Log in", &body)),
+    )
+        .into_response()
+}
+
+/// `GET /login`.
+pub async fn login_form(State(state): State<WebState>, Query(q): Query<Next>) -> Response {
+    login_page(&state, &local_path(q.next.as_deref()), None, StatusCode::OK)
+}
+
+#[derive(serde::Deserialize)]
+pub struct LoginForm {
+    #[serde(default)]
+    user: String,
+    #[serde(default)]
+    password: String,
+    #[serde(default)]
+    csrf: String,
+    #[serde(default)]
+    next: Option<String>,
+}
+
+/// The checks every POST passes before its form is looked at: logins possible here, and the
+/// request from this page (Origin). The `Host` was checked on the way in.
+fn post_guard(state: &WebState, headers: &HeaderMap) -> Result<(), Box<Response>> {
+    let Some(access) = &state.access else {
+        return Err(Box::new(refused(
+            state,
+            StatusCode::NOT_FOUND,
+            "Acknowledging from this page is not configured ([web] users).",
+            "/",
+        )));
+    };
+    if let Err(e) = access.enabled() {
+        return Err(Box::new(refused(state, StatusCode::FORBIDDEN, &e, "/")));
+    }
+    if let Err(e) = access.same_origin(headers) {
+        tracing::warn!(component = "web", "refused a form: {e}");
+        return Err(Box::new(refused(state, StatusCode::FORBIDDEN, &e, "/")));
+    }
+    Ok(())
+}
+
+/// `POST /login`.
+pub async fn login(
+    State(state): State<WebState>,
+    axum::extract::ConnectInfo(peer): Peer,
+    headers: HeaderMap,
+    Form(f): Form<LoginForm>,
+) -> Response {
+    if let Err(r) = post_guard(&state, &headers) {
+        return *r;
+    }
+    let access = state.access.clone().expect("checked by post_guard");
+    let next = local_path(f.next.as_deref());
+    let token_ok = super::access::cookie(&headers, LOGIN_COOKIE)
+        .is_some_and(|c| !f.csrf.is_empty() && same(&c, &f.csrf));
+    if !token_ok {
+        return login_page(
+            &state,
+            &next,
+            Some("The login form had expired or did not come from this page. Please log in again."),
+            StatusCode::FORBIDDEN,
+        );
+    }
+    match access.login(peer.ip(), f.user.trim(), &f.password).await {
+        Ok((token, s)) => {
+            tracing::info!(component = "web", "{} logged in from {}", s.user, peer.ip());
+            let max_age = (s.expires_ms - super::clock::now_ms()) / 1000;
+            (
+                AppendHeaders([
+                    (
+                        header::SET_COOKIE,
+                        access.set_cookie(SESSION_COOKIE, &token, max_age),
+                    ),
+                    (header::SET_COOKIE, access.set_cookie(LOGIN_COOKIE, "", 0)),
+                ]),
+                Redirect::to(&next),
+            )
+                .into_response()
+        }
+        Err(LoginRefused::Wrong) => {
+            tracing::warn!(
+                component = "web",
+                "failed login as {:?} from {}",
+                f.user,
+                peer.ip()
+            );
+            login_page(
+                &state,
+                &next,
+                Some("Wrong name or password."),
+                StatusCode::UNAUTHORIZED,
+            )
+        }
+        Err(LoginRefused::TooMany { retry_after_s }) => {
+            tracing::warn!(
+                component = "web",
+                "login as {:?} from {} refused: too many failed attempts",
+                f.user,
+                peer.ip()
+            );
+            let mut r = login_page(
+                &state,
+                &next,
+                Some(&format!(
+                    "Too many failed logins: try again in {}.",
+                    crate::rules::reading::duration_words(retry_after_s as f64)
+                )),
+                StatusCode::TOO_MANY_REQUESTS,
+            );
+            if let Ok(v) = retry_after_s.to_string().parse() {
+                r.headers_mut().insert(header::RETRY_AFTER, v);
+            }
+            r
+        }
+        Err(LoginRefused::Unavailable(e)) => {
+            tracing::error!(component = "web", "logins refused: {e}");
+            refused(
+                &state,
+                StatusCode::SERVICE_UNAVAILABLE,
+                "Logins are not possible now: the users file cannot be read (the daemon's log says why).",
+                "/",
+            )
+        }
+    }
+}
+
+#[derive(serde::Deserialize)]
+pub struct CsrfForm {
+    #[serde(default)]
+    csrf: String,
+}
+
+/// The session of a POST whose form carries its token.
+fn session_of(state: &WebState, headers: &HeaderMap, csrf: &str) -> Result<Session, Box<Response>> {
+    let access = state.access.as_ref().expect("checked by post_guard");
+    match access.session(headers) {
+        Some(s) if !csrf.is_empty() && same(&s.csrf, csrf) => Ok(s),
+        Some(_) => Err(Box::new(refused(
+            state,
+            StatusCode::FORBIDDEN,
+            "The form did not carry this login's token (it came from elsewhere, or from before a new login); nothing was done.",
+            "/",
+        ))),
+        None => Err(Box::new(refused(
+            state,
+            StatusCode::UNAUTHORIZED,
+            "You are not logged in (or your login has run out); nothing was done. Log in and try again.",
+            "/login",
+        ))),
+    }
+}
+
+/// `POST /logout`.
+pub async fn logout(
+    State(state): State<WebState>,
+    headers: HeaderMap,
+    Form(f): Form<CsrfForm>,
+) -> Response {
+    if let Err(r) = post_guard(&state, &headers) {
+        return *r;
+    }
+    if let Err(r) = session_of(&state, &headers, &f.csrf) {
+        return *r;
+    }
+    let access = state.access.clone().expect("checked by post_guard");
+    access.logout(&headers);
+    (
+        AppendHeaders([(header::SET_COOKIE, access.set_cookie(SESSION_COOKIE, "", 0))]),
+        Redirect::to("/"),
+    )
+        .into_response()
+}
+
+#[derive(serde::Deserialize)]
+pub struct AckForm {
+    #[serde(default)]
+    csrf: String,
+    #[serde(default)]
+    alert: String,
+    #[serde(default)]
+    note: String,
+    #[serde(default)]
+    back: String,
+}
+
+/// `POST /ack`: acknowledges an alert as the logged-in user; the archive records it with
+/// their name, as from `linewarden ack`.
+pub async fn acknowledge(
+    State(state): State<WebState>,
+    axum::extract::ConnectInfo(peer): Peer,
+    headers: HeaderMap,
+    Form(f): Form<AckForm>,
+) -> Response {
+    if let Err(r) = post_guard(&state, &headers) {
+        return *r;
+    }
+    let s = match session_of(&state, &headers, &f.csrf) {
+        Ok(s) => s,
+        Err(r) => return *r,
+    };
+    let access = state.access.clone().expect("checked by post_guard");
+    let back = if state.views.borrow().contains_key(&f.back) {
+        format!("/c/{}", f.back)
+    } else {
+        "/".to_string()
+    };
+    match access.still_listed(&s.user) {
+        Ok(true) => {}
+        Ok(false) => {
+            access.logout(&headers);
+            return refused(
+                &state,
+                StatusCode::FORBIDDEN,
+                &format!(
+                    "{} is no longer in the users file; nothing was done.",
+                    s.user
+                ),
+                &back,
+            );
+        }
+        Err(e) => {
+            tracing::error!(component = "web", "acknowledgement refused: {e}");
+            return refused(
+                &state,
+                StatusCode::SERVICE_UNAVAILABLE,
+                "The users file cannot be read now, so nothing was done (the daemon's log says why).",
+                &back,
+            );
+        }
+    }
+    let note = f.note.trim();
+    if note.chars().count() > MAX_NOTE {
+        return refused(
+            &state,
+            StatusCode::BAD_REQUEST,
+            &format!(
+                "The note has {} characters; {MAX_NOTE} at most. Nothing was done.",
+                note.chars().count()
+            ),
+            &back,
+        );
+    }
+    let note = (!note.is_empty()).then(|| note.to_string());
+    let answer = access.acknowledge(&f.alert, &s.user, note, peer).await;
+    if answer.ok {
+        Redirect::to(&format!("{back}?acked={}", query_value(&f.alert))).into_response()
+    } else {
+        refused(
+            &state,
+            StatusCode::CONFLICT,
+            &format!(
+                "{} was not acknowledged: {}",
+                f.alert,
+                answer.error.unwrap_or_default()
+            ),
+            &back,
+        )
+    }
+}

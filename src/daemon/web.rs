@@ -53,36 +53,185 @@ pub struct WebState {
     pub reaction_plans: super::page::Plans,
     /// Charts drawn for the page, by characteristic and width, with the state they show.
     pub charts: super::page::ChartCache,
+    /// `[web]` as configured (the names the page answers to).
+    pub web: Arc<crate::config::Web>,
+    /// Logins and acknowledgements, when a users file is configured.
+    pub access: Option<Arc<super::access::Access>>,
 }
 
-/// The routes.
-pub fn router(state: WebState) -> Router {
+/// The routes. The page's (everything but the metrics and health checks, which machines
+/// fetch by whatever name they know the box by) answer only to the names in `[web] hosts`: a
+/// request with another `Host` is refused before it is read.
+pub fn router(state: WebState) -> Router<()> {
     use super::page;
-    Router::new()
+    use axum::routing::post;
+    let pages = Router::new()
         .route("/", get(page::overview))
         .route("/monitor", get(page::monitor))
         .route("/c/{id}", get(page::characteristic))
         .route("/events", get(page::events))
+        .route("/login", get(page::login_form).post(page::login))
+        .route("/logout", post(page::logout))
+        .route("/ack", post(page::acknowledge))
+        .layer(axum::middleware::from_fn_with_state(
+            state.clone(),
+            host_guard,
+        ));
+    Router::new()
+        .merge(pages)
         .route("/metrics", get(metrics))
         .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
+        // Forms are a few hundred bytes; nothing posted here needs more.
+        .layer(axum::extract::DefaultBodyLimit::max(16 * 1024))
         .with_state(state)
 }
 
-/// Serves until `shutdown` turns true.
+/// Refuses a page request whose `Host` is not one the page answers to (a foreign site's name
+/// resolved to this box: DNS rebinding).
+async fn host_guard(
+    State(state): State<WebState>,
+    req: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> Response {
+    let host = req
+        .headers()
+        .get(header::HOST)
+        .and_then(|h| h.to_str().ok())
+        .unwrap_or_default();
+    if state.web.host_allowed(host) {
+        return next.run(req).await;
+    }
+    tracing::debug!(component = "web", "refused a request for the host {host:?}");
+    (
+        StatusCode::MISDIRECTED_REQUEST,
+        format!(
+            "This page does not answer to the name {host:?}. The names it answers to are set in [web] hosts.\n"
+        ),
+    )
+        .into_response()
+}
+
+/// The client's address, for the login limits and the log.
+pub type Peer = axum::extract::ConnectInfo<std::net::SocketAddr>;
+
+/// Serves until `shutdown` turns true; over TLS when the config has a certificate.
 pub async fn serve(
     listener: tokio::net::TcpListener,
+    tls: Option<Arc<rustls::ServerConfig>>,
     state: WebState,
     mut shutdown: watch::Receiver<bool>,
 ) {
+    use axum::serve::ListenerExt;
     let done = async move {
         let _ = shutdown.wait_for(|s| *s).await;
     };
-    if let Err(e) = axum::serve(listener, router(state))
-        .with_graceful_shutdown(done)
-        .await
-    {
+    let app = router(state).into_make_service_with_connect_info::<std::net::SocketAddr>();
+    let r = match tls {
+        None => {
+            axum::serve(listener.tap_io(|_| {}), app)
+                .with_graceful_shutdown(done)
+                .await
+        }
+        Some(cfg) => {
+            axum::serve(TlsListener::new(listener, cfg).tap_io(|_| {}), app)
+                .with_graceful_shutdown(done)
+                .await
+        }
+    };
+    if let Err(e) = r {
         tracing::error!(component = "web", "the web endpoint stopped: {e}");
+    }
+}
+
+/// Handshakes at once at most; more wait for their turn to be accepted.
+const MAX_HANDSHAKES: usize = 64;
+/// A client that has not finished its TLS handshake by then is dropped.
+const HANDSHAKE_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(10);
+
+/// Accepts TCP connections and hands on those that complete a TLS handshake. Handshakes run
+/// side by side, each with a time limit, so a client that opens a connection and says nothing
+/// holds up no one.
+pub struct TlsListener {
+    local: std::net::SocketAddr,
+    ready: tokio::sync::mpsc::Receiver<(
+        tokio_rustls::server::TlsStream<tokio::net::TcpStream>,
+        std::net::SocketAddr,
+    )>,
+    _accepting: tokio::task::JoinHandle<()>,
+}
+
+impl Drop for TlsListener {
+    fn drop(&mut self) {
+        self._accepting.abort();
+    }
+}
+
+impl TlsListener {
+    pub fn new(listener: tokio::net::TcpListener, cfg: Arc<rustls::ServerConfig>) -> TlsListener {
+        let local = listener
+            .local_addr()
+            .unwrap_or_else(|_| ([0, 0, 0, 0], 0).into());
+        let (tx, ready) = tokio::sync::mpsc::channel(16);
+        let acceptor = tokio_rustls::TlsAcceptor::from(cfg);
+        let slots = Arc::new(tokio::sync::Semaphore::new(MAX_HANDSHAKES));
+        let accepting = tokio::spawn(async move {
+            loop {
+                let Ok(permit) = slots.clone().acquire_owned().await else {
+                    return;
+                };
+                let (tcp, peer) = match listener.accept().await {
+                    Ok(x) => x,
+                    Err(e) => {
+                        tracing::debug!(component = "web", "accept failed: {e}");
+                        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+                        continue;
+                    }
+                };
+                let acceptor = acceptor.clone();
+                let tx = tx.clone();
+                tokio::spawn(async move {
+                    let _permit = permit;
+                    match tokio::time::timeout(HANDSHAKE_TIMEOUT, acceptor.accept(tcp)).await {
+                        Ok(Ok(s)) => {
+                            let _ = tx.send((s, peer)).await;
+                        }
+                        Ok(Err(e)) => {
+                            tracing::debug!(
+                                component = "web",
+                                "TLS handshake with {peer} failed: {e}"
+                            )
+                        }
+                        Err(_) => tracing::debug!(
+                            component = "web",
+                            "TLS handshake with {peer} timed out"
+                        ),
+                    }
+                });
+            }
+        });
+        TlsListener {
+            local,
+            ready,
+            _accepting: accepting,
+        }
+    }
+}
+
+impl axum::serve::Listener for TlsListener {
+    type Io = tokio_rustls::server::TlsStream<tokio::net::TcpStream>;
+    type Addr = std::net::SocketAddr;
+
+    async fn accept(&mut self) -> (Self::Io, Self::Addr) {
+        match self.ready.recv().await {
+            Some(x) => x,
+            // The accepting task ended (the runtime is shutting down): wait to be dropped.
+            None => std::future::pending().await,
+        }
+    }
+
+    fn local_addr(&self) -> std::io::Result<Self::Addr> {
+        Ok(self.local)
     }
 }
 
@@ -411,6 +560,14 @@ mod tests {
             timezone: jiff::tz::TimeZone::UTC,
             reaction_plans: Default::default(),
             charts: Default::default(),
+            web: Arc::new(crate::config::Web {
+                listen: ([127, 0, 0, 1], 9630).into(),
+                hosts: Vec::new(),
+                users: None,
+                tls: None,
+                session_ms: 3_600_000,
+            }),
+            access: None,
         }
     }
 
