@@ -234,3 +234,75 @@ pub fn archive_recovery(data: &[u8], dir: &Path) {
         Err(e) => assert!(!e.to_string().is_empty()),
     }
 }
+
+/// What a browser (or anyone) sends the page and what the users file holds: a `Host`, an
+/// `Origin`, a `Cookie` header and a users file's text, one per line of the input (the rest is
+/// the file). Nothing panics; a host taken is a plain lowercase name; a POST judged from this
+/// page names this page's own, allowed host over http; a cookie's value holds no separator; the
+/// users taken have valid, distinct names and argon2 hashes.
+pub fn web_request(data: &[u8]) {
+    use crate::config::web::{HostName, Web, check_user_name, parse_host, parse_users};
+    use crate::daemon::access::{cookie, same_origin};
+    use axum::http::{HeaderMap, HeaderValue, header};
+    let Ok(text) = std::str::from_utf8(data) else {
+        return;
+    };
+    let mut parts = text.splitn(4, '\n');
+    let host = parts.next().unwrap_or("");
+    let origin = parts.next().unwrap_or("");
+    let cookies = parts.next().unwrap_or("");
+    let users = parts.next().unwrap_or("");
+    if let Some(h) = parse_host(host) {
+        assert!(!h.host.is_empty());
+        assert!(h.host.chars().all(|c| c.is_ascii_lowercase()
+            || c.is_ascii_digit()
+            || matches!(c, '.' | '-' | '_' | ':')));
+    }
+    let web = Web {
+        listen: ([127, 0, 0, 1], 9630).into(),
+        hosts: ["127.0.0.1", "localhost", "::1"]
+            .iter()
+            .map(|h| HostName {
+                host: h.to_string(),
+                port: None,
+            })
+            .collect(),
+        users: None,
+        tls: None,
+        session_ms: 1,
+    };
+    let mut headers = HeaderMap::new();
+    for (name, value) in [
+        (header::HOST, host),
+        (header::ORIGIN, origin),
+        (header::COOKIE, cookies),
+    ] {
+        if let Ok(v) = HeaderValue::from_str(value) {
+            headers.insert(name, v);
+        }
+    }
+    if same_origin(&web, &headers).is_ok() {
+        let h = headers.get(header::HOST).unwrap().to_str().unwrap();
+        let o = headers.get(header::ORIGIN).unwrap().to_str().unwrap();
+        let authority = o.strip_prefix("http://").unwrap();
+        assert!(
+            authority
+                .split(['/', '?', '#'])
+                .next()
+                .unwrap()
+                .eq_ignore_ascii_case(h)
+        );
+        let parsed = parse_host(h).unwrap();
+        assert!(web.hosts.iter().any(|a| a.host == parsed.host), "{h}");
+    }
+    if let Some(v) = cookie(&headers, "linewarden_session") {
+        assert!(!v.contains(';'));
+    }
+    if let Ok(list) = parse_users(users, std::path::Path::new("users")) {
+        for (i, u) in list.iter().enumerate() {
+            assert!(check_user_name(&u.name).is_ok());
+            assert!(!list[..i].iter().any(|x| x.name == u.name));
+            assert!(argon2::PasswordHash::new(&u.hash).is_ok());
+        }
+    }
+}

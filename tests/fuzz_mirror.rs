@@ -49,6 +49,7 @@ mirror!(
 );
 mirror!(control_request, "control_request", checks::control_request);
 mirror!(archive_frames, "archive_frames", checks::archive_frames);
+mirror!(web_request, "web_request", checks::web_request);
 
 #[test]
 fn archive_recovery() {

@@ -600,5 +600,32 @@ fn the_users_file_line_from_the_command_line_logs_in() {
     let host = format!("127.0.0.1:{port}");
     let send = |r: &str| plain(port, r);
     assert!(login(&send, &host, &format!("http://{host}"), PASSWORD).is_ok());
+    // Where to go after the login, hostile: another site, a header break, bytes no header
+    // may hold. Each goes to the overview instead (and the daemon answers on).
+    for next in [
+        "%2F%2Fevil.example",
+        "%2Fc%2F%0D%0ASet-Cookie:x=1",
+        "%2Fc%2F%C3%A9%01",
+        "http%3A%2F%2Fevil.example",
+    ] {
+        let form = send(&request("GET", "/login", &host, "", None));
+        let (pre, _) = form.cookie("linewarden_login").unwrap();
+        let a = send(&request(
+            "POST",
+            "/login",
+            &host,
+            &format!("Origin: http://{host}\r\nCookie: linewarden_login={pre}\r\n"),
+            Some(&format!(
+                "csrf={}&next={next}&user=dana&password={PASSWORD}",
+                form.csrf()
+            )),
+        ));
+        assert_eq!(a.status, 303, "{next}: {}", a.body);
+        assert_eq!(a.header("location").as_deref(), Some("/"), "{next}");
+    }
+    assert_eq!(
+        send(&request("GET", "/healthz", &host, "", None)).status,
+        200
+    );
     daemon.stop();
 }

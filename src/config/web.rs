@@ -181,6 +181,11 @@ pub fn read_users(path: &Path) -> Result<Vec<WebUser>, Vec<String>> {
             path.display()
         )]
     })?;
+    parse_users(&text, path)
+}
+
+/// A users file's text (`path` only names it in the problems).
+pub fn parse_users(text: &str, path: &Path) -> Result<Vec<WebUser>, Vec<String>> {
     let mut users: Vec<WebUser> = Vec::new();
     let mut problems = Vec::new();
     for (i, line) in text.lines().enumerate() {

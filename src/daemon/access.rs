@@ -311,33 +311,35 @@ impl Access {
         }
     }
 
-    /// Whether a POST comes from this page: its `Origin` (or, when a browser sends none, its
-    /// `Referer`) names the same scheme and host as the request itself. The reason when not.
+    /// Whether a POST comes from this page ([`same_origin`]).
     pub fn same_origin(&self, headers: &HeaderMap) -> Result<(), String> {
-        let host = headers
-            .get(axum::http::header::HOST)
-            .and_then(|h| h.to_str().ok())
-            .unwrap_or_default();
-        let scheme = if self.web.tls.is_some() {
-            "https"
-        } else {
-            "http"
-        };
-        let from = headers
-            .get(axum::http::header::ORIGIN)
-            .or_else(|| headers.get(axum::http::header::REFERER))
-            .and_then(|h| h.to_str().ok())
-            .ok_or("the request names no Origin or Referer, so it cannot be told from a foreign site's; it is refused")?;
-        let authority = from
-            .strip_prefix(scheme)
-            .and_then(|r| r.strip_prefix("://"))
-            .map(|r| r.split(['/', '?', '#']).next().unwrap_or(""));
-        match authority {
-            Some(a) if a.eq_ignore_ascii_case(host) && self.web.host_allowed(a) => Ok(()),
-            _ => Err(format!(
-                "the request comes from {from:?}, not from this page ({scheme}://{host}); it is refused"
-            )),
-        }
+        same_origin(&self.web, headers)
+    }
+}
+
+/// Whether a POST comes from this page: its `Origin` (or, when a browser sends none, its
+/// `Referer`) names the same scheme and host as the request itself, and that host is one the
+/// page answers to. The reason when not.
+pub fn same_origin(web: &Web, headers: &HeaderMap) -> Result<(), String> {
+    let host = headers
+        .get(axum::http::header::HOST)
+        .and_then(|h| h.to_str().ok())
+        .unwrap_or_default();
+    let scheme = if web.tls.is_some() { "https" } else { "http" };
+    let from = headers
+        .get(axum::http::header::ORIGIN)
+        .or_else(|| headers.get(axum::http::header::REFERER))
+        .and_then(|h| h.to_str().ok())
+        .ok_or("the request names no Origin or Referer, so it cannot be told from a foreign site's; it is refused")?;
+    let authority = from
+        .strip_prefix(scheme)
+        .and_then(|r| r.strip_prefix("://"))
+        .map(|r| r.split(['/', '?', '#']).next().unwrap_or(""));
+    match authority {
+        Some(a) if !a.is_empty() && a.eq_ignore_ascii_case(host) && web.host_allowed(a) => Ok(()),
+        _ => Err(format!(
+            "the request comes from {from:?}, not from this page ({scheme}://{host}); it is refused"
+        )),
     }
 }
 

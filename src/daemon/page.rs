@@ -578,10 +578,12 @@ pub type ChartCache =
 /// A path on this page to go back to after logging in (never another site).
 fn local_path(next: Option<&str>) -> String {
     match next {
+        // Printable ASCII only: it goes into a Location header as it is.
         Some(n)
             if n.starts_with('/')
                 && !n.starts_with("//")
-                && !n.contains(['\\', '\r', '\n'])
+                && !n.contains('\\')
+                && n.bytes().all(|b| b.is_ascii_graphic())
                 && n.len() < 300 =>
         {
             n.to_string()
@@ -894,7 +896,11 @@ pub async fn acknowledge(
     let note = (!note.is_empty()).then(|| note.to_string());
     let answer = access.acknowledge(&f.alert, &s.user, note, peer).await;
     if answer.ok {
-        Redirect::to(&format!("{back}?acked={}", query_value(&f.alert))).into_response()
+        Redirect::to(&local_path(Some(&format!(
+            "{back}?acked={}",
+            query_value(&f.alert)
+        ))))
+        .into_response()
     } else {
         refused(
             &state,
