@@ -132,3 +132,63 @@ fn monte_carlo_agrees_with_the_exact_chain() {
     let [lo, hi] = r[0].ci95.unwrap();
     assert!(lo < 370.4 && 370.4 < hi, "CI {lo}..{hi}, mean {}", r[0].arl);
 }
+
+/// `arl --chart`: the attribute charts' beyond-limits ARLs from the command line, against
+/// scipy 1.17.1 (binom.sf + binom.cdf at the np chart's exact limits 22 and 58, poisson.sf);
+/// bad values are refused with the flag named.
+#[test]
+fn attribute_chart_arls_from_the_command_line_match_scipy() {
+    let run = |args: &[&str]| {
+        let o = std::process::Command::new(env!("CARGO_BIN_EXE_linewarden"))
+            .args(args)
+            .output()
+            .unwrap();
+        (
+            o.status.success(),
+            String::from_utf8_lossy(&o.stdout).into_owned(),
+            String::from_utf8_lossy(&o.stderr).into_owned(),
+        )
+    };
+    let (ok, out, err) = run(&[
+        "arl", "--chart", "np", "--p0", "0.1", "--n", "400", "--at", "0.1,0.15", "--json",
+    ]);
+    assert!(ok, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).unwrap();
+    assert_eq!(v["limits"]["lcl"], 22.0);
+    assert_eq!(v["limits"]["ucl"], 58.0);
+    let p = |i: usize| {
+        v["results"][i]["p_above"].as_f64().unwrap() + v["results"][i]["p_below"].as_f64().unwrap()
+    };
+    within(p(0), 0.0021528989788261446, 1e-9, "np in control");
+    within(p(1), 0.5770276927189687, 1e-9, "np at 0.15");
+    let (ok, out, err) = run(&["arl", "--chart", "c", "--p0", "4", "--json"]);
+    assert!(ok, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).unwrap();
+    within(
+        v["results"][0]["arl"].as_f64().unwrap(),
+        1.0 / 0.0028397661205137414,
+        1e-9,
+        "c in control",
+    );
+    let (ok, out, _) = run(&["arl", "--chart", "p", "--p0", "0.02", "--n", "200"]);
+    assert!(
+        ok && out.contains("one false alarm every 133.7 samples"),
+        "{out}"
+    );
+    assert!(out.contains("set to zero"), "{out}");
+    for (args, want) in [
+        (
+            &["arl", "--chart", "p", "--p0", "1.5", "--n", "200"][..],
+            "--p0 1.5",
+        ),
+        (&["arl", "--chart", "p", "--p0", "0.1"][..], "needs --n"),
+        (
+            &["arl", "--chart", "np", "--p0", "0.1", "--n", "20.5"][..],
+            "whole number",
+        ),
+        (&["arl", "--chart", "u", "--n", "2"][..], "needs --p0"),
+    ] {
+        let (ok, _, err) = run(args);
+        assert!(!ok && err.contains(want), "{args:?}: {err}");
+    }
+}

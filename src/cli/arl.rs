@@ -40,6 +40,29 @@ pub(crate) struct ArlArgs {
     /// Print JSON instead of the table.
     #[arg(long)]
     pub(crate) json: bool,
+    /// An attribute chart instead of a rule set: the beyond-limits rule's ARL from exact
+    /// binomial (p, np) or Poisson (c, u) probabilities, with --p0 and --n.
+    #[arg(long, value_enum, conflicts_with_all = ["preset", "rules", "config"])]
+    pub(crate) chart: Option<AttributeKind>,
+    /// The in-control fraction nonconforming (p, np) or defects per unit (c, u) the limits
+    /// are set from.
+    #[arg(long, value_name = "X", requires = "chart")]
+    pub(crate) p0: Option<f64>,
+    /// Parts per sample (p, np) or inspection units per sample (u; c: 1).
+    #[arg(long, value_name = "N", requires = "chart")]
+    pub(crate) n: Option<f64>,
+    /// True fractions or rates to evaluate (default: p0 and 1.5, 2 and 3 times it).
+    #[arg(long, value_delimiter = ',', value_name = "X,...", requires = "chart")]
+    pub(crate) at: Vec<f64>,
+}
+
+/// An attribute chart on the command line.
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub(crate) enum AttributeKind {
+    P,
+    Np,
+    C,
+    U,
 }
 
 /// A TOML file holding just a `[rules]` table.
@@ -51,6 +74,9 @@ pub(crate) struct RulesFile {
 
 pub(crate) fn arl_cmd(a: ArlArgs) -> Result<()> {
     use linewarden::rules::{RuleSet, RulesConfig};
+    if let Some(kind) = a.chart {
+        return attribute_arl(&a, kind);
+    }
     let mut cfg = RulesConfig::default();
     let mut source = String::new();
     let mut text = String::new();
@@ -197,5 +223,123 @@ pub(crate) fn arl_report(a: &ArlArgs, set: &linewarden::rules::RuleSet) -> Resul
         );
     }
     println!("\nShifts are in sigmas of the plotted point (sigma/sqrt(n) for subgroup means).");
+    Ok(())
+}
+
+/// `arl --chart p|np|c|u`: the beyond-limits rule on an attribute chart, exactly.
+fn attribute_arl(a: &ArlArgs, kind: AttributeKind) -> Result<()> {
+    use linewarden::format::sig;
+    use linewarden::stats::attributes::{AttributeChart, beyond_limits_probability};
+    let chart = match kind {
+        AttributeKind::P => AttributeChart::P,
+        AttributeKind::Np => AttributeChart::Np,
+        AttributeKind::C => AttributeChart::C,
+        AttributeKind::U => AttributeChart::U,
+    };
+    let Some(p0) = a.p0 else {
+        bail!(
+            "--chart {} needs --p0 (the in-control fraction or rate)",
+            chart.name()
+        );
+    };
+    let n = match (chart, a.n) {
+        (AttributeChart::C, None) => 1.0,
+        (_, Some(n)) => n,
+        (_, None) => bail!("--chart {} needs --n (the sample size)", chart.name()),
+    };
+    let proportion = matches!(chart, AttributeChart::P | AttributeChart::Np);
+    let usable = if proportion {
+        p0 > 0.0 && p0 < 1.0
+    } else {
+        p0 > 0.0 && p0.is_finite()
+    };
+    if !usable {
+        bail!(
+            "--p0 {p0} is not {}",
+            if proportion {
+                "a fraction nonconforming between 0 and 1"
+            } else {
+                "a positive defect rate"
+            }
+        );
+    }
+    let limits = chart.limits(p0, n);
+    let at: Vec<f64> = if a.at.is_empty() {
+        [1.0, 1.5, 2.0, 3.0]
+            .iter()
+            .map(|k| k * p0)
+            .filter(|x| !proportion || *x <= 1.0)
+            .collect()
+    } else {
+        a.at.clone()
+    };
+    let mut rows = Vec::new();
+    for x in &at {
+        let (above, below) = beyond_limits_probability(chart, &limits, n, *x)
+            .map_err(|e| anyhow::anyhow!("--at {x}: {e}"))?;
+        rows.push((*x, above, below, 1.0 / (above + below)));
+    }
+    if a.json {
+        let v = json!({
+            "chart": chart.name(),
+            "p0": p0,
+            "n": n,
+            "limits": {"lcl": limits.lcl, "center": limits.center, "ucl": limits.ucl},
+            "results": rows.iter().map(|(x, up, down, arl)| json!({
+                "true_value": x, "p_above": up, "p_below": down,
+                "arl": if arl.is_finite() { json!(arl) } else { json!(null) },
+            })).collect::<Vec<_>>(),
+        });
+        println!("{}", serde_json::to_string_pretty(&v)?);
+        return Ok(());
+    }
+    let what = if proportion {
+        "fraction nonconforming"
+    } else {
+        "defects per unit"
+    };
+    println!(
+        "{} chart, {what} {} in control, n = {}: limits {} to {} (centre {})",
+        chart.name(),
+        sig(p0, 4),
+        linewarden::format::num(n),
+        sig(limits.lcl, 5),
+        sig(limits.ucl, 5),
+        sig(limits.center, 5)
+    );
+    println!(
+        "Beyond-limits rule, exact {} probabilities.",
+        if proportion { "binomial" } else { "Poisson" }
+    );
+    if limits.lcl == 0.0 {
+        println!(
+            "The lower limit falls below zero by the formula and is set to zero: no sample can signal below it."
+        );
+    }
+    println!();
+    println!(
+        "  {:<12} {:>12} {:>12} {:>10}  in words",
+        "true value", "P(above)", "P(below)", "ARL"
+    );
+    for (x, up, down, arl) in &rows {
+        let words = if !arl.is_finite() {
+            "never signalled: no count can fall beyond the limits".to_string()
+        } else if (x - p0).abs() <= 1e-12 * p0 {
+            format!("one false alarm every {} samples", sig(*arl, 4))
+        } else {
+            format!("signalled after {} samples on average", sig(*arl, 4))
+        };
+        println!(
+            "  {:<12} {:>12} {:>12} {:>10}  {words}",
+            sig(*x, 4),
+            sig(*up, 4),
+            sig(*down, 4),
+            if arl.is_finite() {
+                sig(*arl, 5)
+            } else {
+                "infinite".to_string()
+            }
+        );
+    }
     Ok(())
 }

@@ -253,3 +253,270 @@ pub fn study(
         warnings,
     })
 }
+
+/// A sample's chance of falling beyond the limits of an attribute chart, exactly: the count of
+/// a p or np sample is binomial (`size` parts, each nonconforming with probability `true_value`),
+/// of a c sample Poisson with mean `true_value`, of a u sample Poisson with mean
+/// `true_value × size`. A point is beyond a limit when strictly above the upper or below the
+/// lower, as the beyond-limits rule judges it. Returns (above, below).
+pub fn beyond_limits_probability(
+    chart: AttributeChart,
+    limits: &Limits,
+    size: f64,
+    true_value: f64,
+) -> Result<(f64, f64), StatsError> {
+    use statrs::distribution::{Binomial, DiscreteCDF, Poisson};
+    let bad = |name, value, expected| StatsError::BadParameter {
+        name,
+        value,
+        expected,
+    };
+    if !(size > 0.0 && size.is_finite()) {
+        return Err(bad("sample size", size, "a positive number of units"));
+    }
+    // The limits as counts: the plotted value times the size for p and u.
+    let scale = match chart {
+        AttributeChart::P | AttributeChart::U => size,
+        AttributeChart::Np | AttributeChart::C => 1.0,
+    };
+    // The largest count not above the upper limit, and the smallest not below the lower one (a
+    // count exactly at a limit is within it; a hair of tolerance for the products' rounding).
+    let within_up = (limits.ucl * scale + 1e-9).floor();
+    let within_down = (limits.lcl * scale - 1e-9).ceil();
+    match chart {
+        AttributeChart::P | AttributeChart::Np => {
+            if size.fract() != 0.0 {
+                return Err(bad("sample size", size, "a whole number of parts"));
+            }
+            let b = Binomial::new(true_value, size as u64)
+                .ok()
+                .filter(|_| (0.0..=1.0).contains(&true_value))
+                .ok_or(bad(
+                    "fraction nonconforming",
+                    true_value,
+                    "a fraction from 0 to 1",
+                ))?;
+            let above = if within_up >= size {
+                0.0
+            } else if within_up < 0.0 {
+                1.0
+            } else {
+                b.sf(within_up as u64)
+            };
+            let below = if within_down <= 0.0 {
+                0.0
+            } else {
+                b.cdf(within_down as u64 - 1)
+            };
+            Ok((above, below))
+        }
+        AttributeChart::C | AttributeChart::U => {
+            let mean = if chart == AttributeChart::C {
+                true_value
+            } else {
+                true_value * size
+            };
+            let d = Poisson::new(mean)
+                .ok()
+                .filter(|_| mean > 0.0 && mean.is_finite())
+                .ok_or(bad("defect rate", true_value, "a positive rate"))?;
+            let above = if within_up < 0.0 {
+                1.0
+            } else {
+                d.sf(within_up as u64)
+            };
+            let below = if within_down <= 0.0 {
+                0.0
+            } else {
+                d.cdf(within_down as u64 - 1)
+            };
+            Ok((above, below))
+        }
+    }
+}
+
+/// The average run length of the beyond-limits rule on an attribute chart (samples until the
+/// first point beyond a limit), exactly: the reciprocal of [`beyond_limits_probability`];
+/// infinite when no count can fall beyond.
+pub fn beyond_limits_arl(
+    chart: AttributeChart,
+    limits: &Limits,
+    size: f64,
+    true_value: f64,
+) -> Result<f64, StatsError> {
+    let (a, b) = beyond_limits_probability(chart, limits, size, true_value)?;
+    Ok(1.0 / (a + b))
+}
+
+/// Capability from pass/fail results: the fraction nonconforming with its exact
+/// (Clopper–Pearson) interval, in parts per million, and the equivalent normal Z (the distance
+/// in standard deviations from the mean to a normal tail holding the same fraction).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AttributeCapability {
+    pub nonconforming: u64,
+    pub inspected: u64,
+    pub confidence: f64,
+    pub fraction: f64,
+    /// The exact two-sided interval of the fraction.
+    pub fraction_low: f64,
+    pub fraction_high: f64,
+    pub ppm: f64,
+    pub ppm_low: f64,
+    pub ppm_high: f64,
+    /// Φ⁻¹(1 − fraction); infinite with no nonconforming part.
+    pub z: f64,
+    /// Z at the interval's ends (the high fraction gives the low Z).
+    pub z_low: f64,
+    pub z_high: f64,
+}
+
+/// The Clopper–Pearson interval of a binomial proportion, `x` of `n`, two-sided at
+/// `confidence`: beta quantiles (0 when x = 0, 1 when x = n).
+pub fn clopper_pearson(x: u64, n: u64, confidence: f64) -> Result<(f64, f64), StatsError> {
+    use statrs::distribution::{Beta, ContinuousCDF};
+    let bad = |name, value, expected| StatsError::BadParameter {
+        name,
+        value,
+        expected,
+    };
+    if n == 0 {
+        return Err(bad("inspected", 0.0, "at least one part inspected"));
+    }
+    if x > n {
+        return Err(bad(
+            "nonconforming",
+            x as f64,
+            "no more nonconforming parts than parts inspected",
+        ));
+    }
+    if !(confidence > 0.0 && confidence < 1.0) {
+        return Err(bad(
+            "confidence",
+            confidence,
+            "a level between 0 and 1, such as 0.95",
+        ));
+    }
+    let alpha = 1.0 - confidence;
+    let (xf, nf) = (x as f64, n as f64);
+    let low = if x == 0 {
+        0.0
+    } else {
+        Beta::new(xf, nf - xf + 1.0)
+            .map(|b| b.inverse_cdf(alpha / 2.0))
+            .unwrap_or(0.0)
+    };
+    let high = if x == n {
+        1.0
+    } else {
+        Beta::new(xf + 1.0, nf - xf)
+            .map(|b| b.inverse_cdf(1.0 - alpha / 2.0))
+            .unwrap_or(1.0)
+    };
+    Ok((low, high))
+}
+
+/// [`AttributeCapability`] of `nonconforming` out of `inspected`.
+pub fn attribute_capability(
+    nonconforming: u64,
+    inspected: u64,
+    confidence: f64,
+) -> Result<AttributeCapability, StatsError> {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    let (lo, hi) = clopper_pearson(nonconforming, inspected, confidence)?;
+    let fraction = nonconforming as f64 / inspected as f64;
+    let n = Normal::standard();
+    let z = |p: f64| {
+        if p <= 0.0 {
+            f64::INFINITY
+        } else if p >= 1.0 {
+            f64::NEG_INFINITY
+        } else {
+            // Φ⁻¹(1 − p) as −Φ⁻¹(p): the same, and precise for small fractions.
+            -n.inverse_cdf(p)
+        }
+    };
+    Ok(AttributeCapability {
+        nonconforming,
+        inspected,
+        confidence,
+        fraction,
+        fraction_low: lo,
+        fraction_high: hi,
+        ppm: fraction * 1e6,
+        ppm_low: lo * 1e6,
+        ppm_high: hi * 1e6,
+        z: z(fraction),
+        z_low: z(hi),
+        z_high: z(lo),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn close(a: f64, b: f64, rel: f64) -> bool {
+        (a - b).abs() <= rel * b.abs()
+    }
+
+    // Reference values: scipy 1.17.1, scipy.stats.binomtest(x, n).proportion_ci(
+    // confidence_level=c, method="exact"), and scipy.stats.norm.isf for Z.
+    #[test]
+    fn clopper_pearson_matches_scipy() {
+        for (x, n, c, lo, hi) in [
+            (7, 50, 0.95, 0.05819170033997344, 0.26739600249700846),
+            (0, 200, 0.95, 0.0, 0.018275340355148807),
+            (3, 5000, 0.95, 0.00012375152045600987, 0.0017524436035038196),
+            (7, 50, 0.99, 0.042468787378833785, 0.3091069659648189),
+            (50, 50, 0.95, 0.9288782635357954, 1.0),
+        ] {
+            let (l, h) = clopper_pearson(x, n, c).unwrap();
+            assert!(close(l, lo, 1e-9), "{x}/{n}: {l} vs {lo}");
+            assert!(close(h, hi, 1e-9), "{x}/{n}: {h} vs {hi}");
+        }
+        let cap = attribute_capability(3, 5000, 0.95).unwrap();
+        assert!(close(cap.ppm, 600.0, 1e-12));
+        assert!(close(cap.z, 3.2388801183529776, 1e-9), "{}", cap.z);
+        assert!(cap.z_low < cap.z && cap.z < cap.z_high);
+        let z = attribute_capability(7, 50, 0.95).unwrap().z;
+        assert!(close(z, 1.0803193408149558, 1e-9), "{z}");
+        assert!(attribute_capability(0, 200, 0.95).unwrap().z.is_infinite());
+        assert!(clopper_pearson(5, 4, 0.95).is_err());
+        assert!(clopper_pearson(0, 0, 0.95).is_err());
+        assert!(clopper_pearson(1, 4, 1.0).is_err());
+    }
+
+    // Reference values: scipy 1.17.1, scipy.stats.binom.sf and binom.cdf, poisson.sf.
+    #[test]
+    fn beyond_limits_arls_match_scipy_binomial_and_poisson() {
+        // p chart, p0 = 0.02, n = 200: UCL 0.0497 (a count of 10 or more), LCL 0.
+        let l = AttributeChart::P.limits(0.02, 200.0);
+        for (p, want) in [(0.02, 0.007479287865361496), (0.04, 0.28079999866412103)] {
+            let (a, b) = beyond_limits_probability(AttributeChart::P, &l, 200.0, p).unwrap();
+            assert_eq!(b, 0.0);
+            assert!(close(a, want, 1e-9), "{p}: {a} vs {want}");
+        }
+        let arl = beyond_limits_arl(AttributeChart::P, &l, 200.0, 0.02).unwrap();
+        assert!(close(arl, 1.0 / 0.007479287865361496, 1e-9), "{arl}");
+        assert!(beyond_limits_probability(AttributeChart::P, &l, 200.5, 0.1).is_err());
+        assert!(beyond_limits_probability(AttributeChart::P, &l, 200.0, 1.5).is_err());
+        // np chart, p0 = 0.1, n = 400: limits exactly 22 and 58; a count at a limit is within.
+        let l = AttributeChart::Np.limits(0.1, 400.0);
+        assert_eq!((l.lcl, l.ucl), (22.0, 58.0));
+        for (p, want) in [(0.1, 0.0021528989788261446), (0.15, 0.5770276927189687)] {
+            let (a, b) = beyond_limits_probability(AttributeChart::Np, &l, 400.0, p).unwrap();
+            assert!(close(a + b, want, 1e-9), "{p}: {} vs {want}", a + b);
+        }
+        // c chart, c0 = 4: UCL 10; u chart, u0 = 1.6 per unit on 2.5 units: UCL 4.0 per unit,
+        // the same count of 10.
+        let c = AttributeChart::C.limits(4.0, 1.0);
+        let u = AttributeChart::U.limits(1.6, 2.5);
+        for (k, want) in [(1.0, 0.0028397661205137414), (2.0, 0.18411420744145338)] {
+            let (a, _) = beyond_limits_probability(AttributeChart::C, &c, 1.0, 4.0 * k).unwrap();
+            assert!(close(a, want, 1e-9), "c {k}: {a} vs {want}");
+            let (a, _) = beyond_limits_probability(AttributeChart::U, &u, 2.5, 1.6 * k).unwrap();
+            assert!(close(a, want, 1e-9), "u {k}: {a} vs {want}");
+        }
+        assert!(beyond_limits_probability(AttributeChart::C, &c, 1.0, 0.0).is_err());
+    }
+}
