@@ -672,8 +672,12 @@ pub struct LoginForm {
 }
 
 /// The checks every POST passes before its form is looked at: logins possible here, and the
-/// request from this page (Origin). The `Host` was checked on the way in.
-fn post_guard(state: &WebState, headers: &HeaderMap) -> Result<(), Box<Response>> {
+/// request from this page (Origin). The `Host` was checked on the way in. The page's access
+/// control, when they pass.
+fn post_guard(
+    state: &WebState,
+    headers: &HeaderMap,
+) -> Result<std::sync::Arc<super::access::Access>, Box<Response>> {
     let Some(access) = &state.access else {
         return Err(Box::new(refused(
             state,
@@ -689,7 +693,7 @@ fn post_guard(state: &WebState, headers: &HeaderMap) -> Result<(), Box<Response>
         tracing::warn!(component = "web", "refused a form: {e}");
         return Err(Box::new(refused(state, StatusCode::FORBIDDEN, &e, "/")));
     }
-    Ok(())
+    Ok(access.clone())
 }
 
 /// `POST /login`.
@@ -699,10 +703,10 @@ pub async fn login(
     headers: HeaderMap,
     Form(f): Form<LoginForm>,
 ) -> Response {
-    if let Err(r) = post_guard(&state, &headers) {
-        return *r;
-    }
-    let access = state.access.clone().expect("checked by post_guard");
+    let access = match post_guard(&state, &headers) {
+        Ok(a) => a,
+        Err(r) => return *r,
+    };
     let next = local_path(f.next.as_deref());
     let token_ok = super::access::cookie(&headers, LOGIN_COOKIE)
         .is_some_and(|c| !f.csrf.is_empty() && same(&c, &f.csrf));
@@ -784,8 +788,12 @@ pub struct CsrfForm {
 }
 
 /// The session of a POST whose form carries its token.
-fn session_of(state: &WebState, headers: &HeaderMap, csrf: &str) -> Result<Session, Box<Response>> {
-    let access = state.access.as_ref().expect("checked by post_guard");
+fn session_of(
+    state: &WebState,
+    access: &super::access::Access,
+    headers: &HeaderMap,
+    csrf: &str,
+) -> Result<Session, Box<Response>> {
     match access.session(headers) {
         Some(s) if !csrf.is_empty() && same(&s.csrf, csrf) => Ok(s),
         Some(_) => Err(Box::new(refused(
@@ -809,13 +817,13 @@ pub async fn logout(
     headers: HeaderMap,
     Form(f): Form<CsrfForm>,
 ) -> Response {
-    if let Err(r) = post_guard(&state, &headers) {
+    let access = match post_guard(&state, &headers) {
+        Ok(a) => a,
+        Err(r) => return *r,
+    };
+    if let Err(r) = session_of(&state, &access, &headers, &f.csrf) {
         return *r;
     }
-    if let Err(r) = session_of(&state, &headers, &f.csrf) {
-        return *r;
-    }
-    let access = state.access.clone().expect("checked by post_guard");
     access.logout(&headers);
     (
         AppendHeaders([(header::SET_COOKIE, access.set_cookie(SESSION_COOKIE, "", 0))]),
@@ -844,14 +852,14 @@ pub async fn acknowledge(
     headers: HeaderMap,
     Form(f): Form<AckForm>,
 ) -> Response {
-    if let Err(r) = post_guard(&state, &headers) {
-        return *r;
-    }
-    let s = match session_of(&state, &headers, &f.csrf) {
+    let access = match post_guard(&state, &headers) {
+        Ok(a) => a,
+        Err(r) => return *r,
+    };
+    let s = match session_of(&state, &access, &headers, &f.csrf) {
         Ok(s) => s,
         Err(r) => return *r,
     };
-    let access = state.access.clone().expect("checked by post_guard");
     let back = if state.views.borrow().contains_key(&f.back) {
         format!("/c/{}", f.back)
     } else {
