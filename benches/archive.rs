@@ -26,6 +26,8 @@ fn record(i: u64) -> Record {
         arrival_ms: 1_796_112_000_000 + i as i64,
         part: None,
         source_key: Some(format!("cell4/gauges/{i}")),
+        word: None,
+        inspected: None,
     }
 }
 

@@ -141,6 +141,9 @@ fn generate(dir: &Path, cfg: &linewarden::config::Config, readings: u64) {
             arrival_ms: t,
             part: None,
             source_key: None,
+            word: None,
+            inspected: None,
+            sent: None,
         };
         let seq = w.append(&inc.record(), t).unwrap();
         let outs = engine.accept(seq, &inc);

@@ -44,6 +44,7 @@ fn assembly(c: &mut Criterion) {
                 value: 12.0 + (seq % 7) as f64 * 0.001,
                 time_ms: seq as i64,
                 part: None,
+                inspected: None,
             }))
         })
     });
@@ -61,6 +62,7 @@ fn assembly(c: &mut Criterion) {
                 value: 12.0,
                 time_ms: seq as i64,
                 part: Some(format!("P{}", seq / 5)),
+                inspected: None,
             }))
         })
     });
@@ -90,6 +92,7 @@ fn payloads(c: &mut Criterion) {
         time: Some("/at".into()),
         characteristic: None,
         part: Some("/part".into()),
+        inspected: None,
     });
     let body = br#"{"value": 12.0031, "at": "2026-12-02T08:15:03.250Z", "part": "VB00417"}"#;
     g.bench_function("json (value, RFC 3339 time, part)", |b| {
@@ -122,6 +125,8 @@ fn archive_append(c: &mut Criterion) {
         arrival_ms: 1_796_198_400_003,
         part: Some("VB00417".into()),
         source_key: Some("mqtt:513:5d41402abc4b2a76".into()),
+        word: None,
+        inspected: None,
     };
     // Encoding, CRC and buffering of 1,000 readings, then one write to the page cache (the
     // fdatasync is what benches/archive.rs measures).
@@ -190,6 +195,9 @@ fn engine(c: &mut Criterion) {
                     arrival_ms: seq as i64,
                     part: None,
                     source_key: None,
+                    word: None,
+                    inspected: None,
+                    sent: None,
                 };
                 black_box(e.accept(seq, &inc))
             })

@@ -45,6 +45,7 @@ fn points(count: usize) -> Vec<Plotted> {
                 n: 1,
                 mean: z,
                 dispersion: Some(r),
+                attribute: None,
             }
         })
         .collect()

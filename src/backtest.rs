@@ -524,7 +524,8 @@ pub fn run(
                 let time = inc.time_ms();
                 t.first_ms = Some(t.first_ms.map_or(time, |f| f.min(time)));
                 t.last_ms = Some(t.last_ms.map_or(time, |l| l.max(time)));
-                if engine.check(&inc).is_err() {
+                let mut inc = inc;
+                if engine.admit(&mut inc).is_err() {
                     t.rejected_by_candidate += 1;
                     continue;
                 }

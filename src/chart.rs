@@ -370,6 +370,17 @@ fn hover_of(
 }
 
 /// The location chart's statistic in words, with the unit part (" (mm)") after it.
+/// What an attribute chart plots, for its panel.
+fn attribute_words(a: crate::stats::attributes::AttributeChart) -> &'static str {
+    use crate::stats::attributes::AttributeChart;
+    match a {
+        AttributeChart::P => "fraction nonconforming (p)",
+        AttributeChart::Np => "number nonconforming (np)",
+        AttributeChart::C => "defects per inspection (c)",
+        AttributeChart::U => "defects per unit (u)",
+    }
+}
+
 fn location_words(individuals: bool, unit: &str) -> String {
     let what = if individuals {
         "reading"
@@ -434,8 +445,12 @@ impl Picture {
         };
         let (loc_marked, disp_marked) = (marked(Chart::Location), marked(Chart::Dispersion));
         let basis = c.basis.as_ref();
-        let individuals = basis.map(|b| b.chart) == Some(VariablesChart::Individuals)
-            || c.recent.iter().all(|s| s.n == 1);
+        let attribute = basis.and_then(|b| b.attribute());
+        let individuals = basis.map(|b| b.chart)
+            == Some(crate::limits_file::ChartKind::Variables(
+                VariablesChart::Individuals,
+            ))
+            || (attribute.is_none() && c.recent.iter().all(|s| s.n == 1));
         let decimals = c
             .decimals
             .unwrap_or_else(|| decimals_for(spread_of(c.recent.iter().map(|s| s.mean))));
@@ -444,8 +459,19 @@ impl Picture {
         } else {
             format!(" ({})", c.unit)
         };
+        // An attribute chart's point has the limits of its own sample size.
+        let at = |b: &crate::rules::point::ChartBasis,
+                  s: &crate::archive::record::SubgroupSummary| {
+            match (b.attribute(), s.inspected) {
+                (Some(a), Some(size)) => b.attribute_at(a, size),
+                _ => (b.sigma_point(s.n), b.location_for(s.n)),
+            }
+        };
         let location = Panel {
-            what: location_words(individuals, &unit),
+            what: match attribute {
+                Some(a) => attribute_words(a).to_string(),
+                None => location_words(individuals, &unit),
+            },
             points: c
                 .recent
                 .iter()
@@ -453,8 +479,8 @@ impl Picture {
                     number: s.number,
                     time_ms: s.time_ms,
                     value: s.mean,
-                    limits: basis.map(|b| b.location_for(s.n)),
-                    sigma: basis.map(|b| b.sigma_point(s.n)),
+                    limits: basis.map(|b| at(b, s).1),
+                    sigma: basis.map(|b| at(b, s).0),
                     marked: loc_marked.contains(&s.number),
                     label: None,
                     excluded: false,
@@ -480,7 +506,11 @@ impl Picture {
             } else {
                 "subgroup range"
             },
-            |b| spread_words(b.chart.dispersion_kind()),
+            |b| {
+                b.chart
+                    .variables()
+                    .map_or("subgroup range", |v| spread_words(v.dispersion_kind()))
+            },
         );
         let spread: Vec<Point> = c
             .recent
@@ -691,7 +721,7 @@ impl Picture {
             usl: None,
             decimals,
         };
-        let kind = match w.limits.as_ref().map(|l| l.chart) {
+        let kind = match w.limits.as_ref().and_then(|l| l.chart.variables()) {
             Some(c) => spread_words(c.dispersion_kind()),
             None if individuals => "moving range",
             None => "subgroup range",
@@ -1358,6 +1388,8 @@ mod tests {
                     n,
                     mean: 12.0 + 0.001 * (i % 3) as f64,
                     dispersion: Some(0.004),
+                    found: None,
+                    inspected: None,
                 })
                 .collect()
         };
@@ -1365,7 +1397,8 @@ mod tests {
             let sigma = 0.002;
             let kind = chart.dispersion_kind();
             let basis = ChartBasis {
-                chart,
+                chart: chart.into(),
+                below_severity: None,
                 center: 12.001,
                 sigma,
                 nominal_n: n,

@@ -72,11 +72,40 @@ pub fn mqtt_payload(data: &[u8]) {
         time: Some("/t".into()),
         characteristic: Some("/c".into()),
         part: Some("/p".into()),
+        inspected: None,
     });
-    for src in [&plain, &json] {
+    let batch = source(Payload::Json {
+        value: "/v".into(),
+        time: None,
+        characteristic: None,
+        part: None,
+        inspected: Some("/n".into()),
+    });
+    // A pass/fail characteristic's word lists, as the engine applies them.
+    let words = crate::config::AttributeSettings {
+        chart: crate::stats::attributes::AttributeChart::P,
+        conforming: vec!["OK".into()],
+        nonconforming: vec!["NOK".into()],
+        below_severity: None,
+    };
+    for src in [&plain, &json, &batch] {
         for t in [topic.as_ref(), "cell/face/m"] {
             match crate::daemon::sources::mqtt::parse(src, t, payload) {
-                Ok(r) => assert!(!r.characteristic.is_empty()),
+                Ok(r) => {
+                    assert!(!r.characteristic.is_empty());
+                    // A word is short and printable and stands in for the number; mapped, it
+                    // is 0 or 1, or the reason names it.
+                    if let Some(w) = &r.word {
+                        assert!(r.value.is_nan());
+                        assert!(!w.is_empty() && w.chars().count() <= 40);
+                        assert!(!w.chars().any(char::is_control));
+                        match words.count_of(w) {
+                            Ok(v) => assert!(v == 0.0 || v == 1.0),
+                            Err(why) => assert!(why.contains("is neither")),
+                        }
+                    }
+                    assert_eq!(r.inspected.is_some(), std::ptr::eq(src, &batch));
+                }
                 Err(u) => assert!(!u.reason.is_empty()),
             }
         }

@@ -126,6 +126,24 @@ pub enum InputError {
     },
     #[error("{file}: no readings found")]
     Empty { file: String },
+    #[error("{file}:{line}:{column}: {value} is not {what}{}", col_name(name))]
+    BadCount {
+        file: String,
+        line: u64,
+        column: usize,
+        name: Option<String>,
+        value: String,
+        what: &'static str,
+    },
+    #[error(
+        "{file}:{line}: {count} nonconforming of {size} inspected: a sample cannot have more nonconforming units than units"
+    )]
+    CountAboveSize {
+        file: String,
+        line: u64,
+        count: String,
+        size: String,
+    },
 }
 
 fn show(value: &str) -> String {
@@ -395,6 +413,132 @@ fn single(cx: &Context, rows: &[Row], opts: &InputOptions) -> Result<Parsed, Inp
             "the last {left} reading(s) (from line {}) do not fill a subgroup of {size} and were left out",
             rows[whole].line
         ));
+    }
+    Ok(out)
+}
+
+/// Options for [`parse_counts`]: the columns of an attribute chart's samples.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CountOptions {
+    /// The column with the count found (nonconforming units, or defects).
+    pub count_column: String,
+    /// The column with the units inspected; without it every sample is one unit (c charts).
+    pub size_column: Option<String>,
+    /// Counts of nonconforming units, which cannot exceed the units inspected (p and np).
+    pub proportion: bool,
+    pub delimiter: u8,
+    pub decimal_comma: bool,
+}
+
+/// The samples of an attribute chart read from a file: one row per sample.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ParsedCounts {
+    pub samples: Vec<crate::stats::attributes::AttributeSample>,
+    /// The line each sample is on.
+    pub lines: Vec<u64>,
+}
+
+/// Reads an attribute chart's samples: a header row naming the count column (and the size
+/// column), then one row per sample. A count must be whole and zero or more, a size more than
+/// zero (whole for parts), and a count of nonconforming parts no more than the parts; each
+/// error names the file, line, column and value.
+pub fn parse_counts(
+    text: &str,
+    file: &str,
+    opts: &CountOptions,
+) -> Result<ParsedCounts, InputError> {
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .comment(Some(b'#'))
+        .trim(csv::Trim::All)
+        .delimiter(opts.delimiter)
+        .from_reader(text.as_bytes());
+    let mut rows = Vec::new();
+    for record in reader.records() {
+        let record = record.map_err(|e| InputError::Csv {
+            file: file.to_string(),
+            line: e.position().map(|p| p.line()).unwrap_or(0),
+            message: e.to_string(),
+        })?;
+        let line = record.position().map(|p| p.line()).unwrap_or(0);
+        rows.push(Row {
+            line,
+            fields: record.iter().map(str::to_string).collect(),
+        });
+    }
+    let header = match rows.first() {
+        Some(first) if first.fields.iter().all(|f| f.parse::<f64>().is_err()) => {
+            Some(rows.remove(0).fields)
+        }
+        _ => None,
+    };
+    let cx = Context {
+        file,
+        header: header.as_deref(),
+        decimal_comma: opts.decimal_comma,
+    };
+    let count_col = cx.column(&opts.count_column, "counts", "count")?;
+    let size_col = opts
+        .size_column
+        .as_deref()
+        .map(|c| cx.column(c, "counts", "size"))
+        .transpose()?;
+    let width = cx.header.map_or(0, <[String]>::len);
+    let mut out = ParsedCounts {
+        samples: Vec::with_capacity(rows.len()),
+        lines: Vec::with_capacity(rows.len()),
+    };
+    for row in &rows {
+        if row.fields.len() != width {
+            return Err(InputError::Ragged {
+                file: file.to_string(),
+                line: row.line,
+                expected: width,
+                found: row.fields.len(),
+            });
+        }
+        let bad = |column: usize, what: &'static str| InputError::BadCount {
+            file: file.to_string(),
+            line: row.line,
+            column: column + 1,
+            name: cx.name_of(column),
+            value: row.fields.get(column).cloned().unwrap_or_default(),
+            what,
+        };
+        let count = cx.number(row, count_col)?;
+        if count < 0.0 || count.fract() != 0.0 {
+            return Err(bad(count_col, "a count: a whole number of zero or more"));
+        }
+        let size = match size_col {
+            Some(c) => {
+                let n = cx.number(row, c)?;
+                if n <= 0.0 {
+                    return Err(bad(c, "a number of units inspected: more than zero"));
+                }
+                if opts.proportion && n.fract() != 0.0 {
+                    return Err(bad(c, "a number of parts inspected: a whole number"));
+                }
+                n
+            }
+            None => 1.0,
+        };
+        if opts.proportion && count > size {
+            return Err(InputError::CountAboveSize {
+                file: file.to_string(),
+                line: row.line,
+                count: row.fields[count_col].clone(),
+                size: size_col.map_or("1".into(), |c| row.fields[c].clone()),
+            });
+        }
+        out.samples
+            .push(crate::stats::attributes::AttributeSample { count, size });
+        out.lines.push(row.line);
+    }
+    if out.samples.is_empty() {
+        return Err(InputError::Empty {
+            file: file.to_string(),
+        });
     }
     Ok(out)
 }

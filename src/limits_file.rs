@@ -42,6 +42,28 @@
 //! reason = "mean 12.0093 above the upper control limit 12.0066 (trial limits of round 1)"
 //! ```
 //!
+//! An attribute chart (p, np, c, u) stores its centre and the limits at its nominal sample size
+//! (`subgroup_size`, units inspected); other sizes get their own limits from the centre. Its
+//! `sigma` is the standard deviation of the plotted value at the nominal size, and it has no
+//! `[dispersion]` table:
+//!
+//! ```toml
+//! format = 1
+//! characteristic = "leak-test"
+//! chart = "p"
+//! subgroup_size = 50
+//!
+//! [sigma]
+//! within = 0.0308
+//! overall = 0.0308
+//! method = "binomial: sqrt(pbar (1 - pbar) / n) at n = 50"
+//!
+//! [location]
+//! center = 0.05
+//! ucl = 0.1425
+//! lcl = 0         # 0.05 - 3 x 0.0308 is below zero: clamped (common practice)
+//! ```
+//!
 //! Limits the daemon learned from its first subgroups say `provisional = true` in
 //! `[provenance]` until an engineer approves them (`linewarden approve`), which adds:
 //!
@@ -59,9 +81,52 @@ use serde::{Deserialize, Serialize};
 use crate::diag::{Locator, Problem, Problems};
 use crate::format::num;
 use crate::stats::Limits;
+use crate::stats::attributes::AttributeChart;
+use crate::stats::attributes::AttributeStudy;
 use crate::stats::capability::Spec;
 use crate::stats::study::{Exclusion, Study};
 use crate::stats::variables::{DispersionKind, VariablesChart};
+
+/// The chart stored limits are for: a variables chart or an attribute chart, written by its
+/// name (`"xbar-r"`, `"p"`, ...).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(untagged)]
+pub enum ChartKind {
+    Variables(VariablesChart),
+    Attribute(AttributeChart),
+}
+
+impl ChartKind {
+    /// The name used in files and on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            ChartKind::Variables(v) => v.name(),
+            ChartKind::Attribute(a) => a.name(),
+        }
+    }
+
+    /// The variables chart, when it is one.
+    pub fn variables(self) -> Option<VariablesChart> {
+        match self {
+            ChartKind::Variables(v) => Some(v),
+            ChartKind::Attribute(_) => None,
+        }
+    }
+
+    /// The attribute chart, when it is one.
+    pub fn attribute(self) -> Option<AttributeChart> {
+        match self {
+            ChartKind::Attribute(a) => Some(a),
+            ChartKind::Variables(_) => None,
+        }
+    }
+}
+
+impl From<VariablesChart> for ChartKind {
+    fn from(v: VariablesChart) -> Self {
+        ChartKind::Variables(v)
+    }
+}
 
 /// The format version this build writes and reads.
 pub const FORMAT: u32 = 1;
@@ -72,13 +137,16 @@ pub const FORMAT: u32 = 1;
 pub struct StoredLimits {
     pub format: u32,
     pub characteristic: String,
-    pub chart: VariablesChart,
+    pub chart: ChartKind,
+    /// Readings per subgroup; for an attribute chart, the nominal units inspected.
     pub subgroup_size: usize,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub unit: Option<String>,
     pub sigma: SigmaRecord,
     pub location: Limits,
-    pub dispersion: DispersionRecord,
+    /// The dispersion chart (variables charts only).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dispersion: Option<DispersionRecord>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub spec: Option<Spec>,
     pub provenance: Provenance,
@@ -169,7 +237,7 @@ impl StoredLimits {
         StoredLimits {
             format: FORMAT,
             characteristic: characteristic.to_string(),
-            chart: study.chart,
+            chart: study.chart.into(),
             subgroup_size: study.subgroup_size,
             unit,
             sigma: SigmaRecord {
@@ -182,12 +250,12 @@ impl StoredLimits {
                 ucl: tidy(study.location.ucl),
                 lcl: tidy(study.location.lcl),
             },
-            dispersion: DispersionRecord {
+            dispersion: Some(DispersionRecord {
                 kind: study.dispersion_kind,
                 center: tidy(study.dispersion.center),
                 ucl: tidy(study.dispersion.ucl),
                 lcl: tidy(study.dispersion.lcl),
-            },
+            }),
             spec,
             provenance: Provenance {
                 computed_at: computed_at.to_string(),
@@ -200,6 +268,64 @@ impl StoredLimits {
                 provisional: false,
             },
             approved: None,
+        }
+    }
+
+    /// Limits from a finished attribute study, at the nominal sample size `size` (units
+    /// inspected per subgroup).
+    pub fn from_attribute_study(
+        study: &AttributeStudy,
+        size: usize,
+        characteristic: &str,
+        source: &str,
+        computed_at: &str,
+    ) -> Self {
+        let chart = study.chart;
+        let at = chart.limits(study.parameter, size as f64);
+        let sigma = tidy(attribute_sigma(chart, study.parameter, size as f64));
+        let used: Vec<usize> = (1..=study.samples_total)
+            .filter(|i| !study.excluded.iter().any(|e| e.subgroup == *i))
+            .collect();
+        StoredLimits {
+            format: FORMAT,
+            characteristic: characteristic.to_string(),
+            chart: ChartKind::Attribute(chart),
+            subgroup_size: size,
+            unit: None,
+            sigma: SigmaRecord {
+                within: sigma,
+                overall: sigma,
+                method: attribute_sigma_method(chart, size),
+            },
+            location: Limits {
+                center: tidy(at.center),
+                ucl: tidy(at.ucl),
+                lcl: tidy(at.lcl),
+            },
+            dispersion: None,
+            spec: None,
+            provenance: Provenance {
+                computed_at: computed_at.to_string(),
+                source: source.to_string(),
+                tool: format!("linewarden {}", env!("CARGO_PKG_VERSION")),
+                subgroups_total: study.samples_total,
+                subgroups_used: study.samples_used,
+                used: ranges(&used),
+                excluded: study.excluded.clone(),
+                provisional: false,
+            },
+            approved: None,
+        }
+    }
+
+    /// The centre parameter of an attribute chart: p̄ (p, np), c̄ (c) or ū (u).
+    pub fn attribute_parameter(&self) -> Option<f64> {
+        match self.chart {
+            ChartKind::Attribute(AttributeChart::Np) => {
+                Some(self.location.center / self.subgroup_size.max(1) as f64)
+            }
+            ChartKind::Attribute(_) => Some(self.location.center),
+            ChartKind::Variables(_) => None,
         }
     }
 
@@ -268,7 +394,14 @@ impl StoredLimits {
             );
         }
         let n = self.subgroup_size;
-        match self.chart {
+        let chart = match self.chart {
+            ChartKind::Variables(v) => v,
+            ChartKind::Attribute(a) => {
+                self.attribute_problems(a, &mut bad);
+                return out;
+            }
+        };
+        match chart {
             VariablesChart::Individuals if n != 1 => bad(
                 "subgroup_size",
                 format!("{n} does not fit chart = \"individuals\", which needs 1"),
@@ -277,19 +410,30 @@ impl StoredLimits {
                 "subgroup_size",
                 format!(
                     "{n} does not fit chart = \"{}\", which needs 2 to 100",
-                    self.chart.name()
+                    chart.name()
                 ),
             ),
             _ => {}
         }
-        let expected_kind = self.chart.dispersion_kind();
-        if self.dispersion.kind != expected_kind {
+        let expected_kind = chart.dispersion_kind();
+        let Some(d) = &self.dispersion else {
+            bad(
+                "dispersion",
+                format!(
+                    "is missing; chart = \"{}\" needs its [dispersion] table (kind = \"{}\", center, ucl, lcl)",
+                    chart.name(),
+                    expected_kind.name()
+                ),
+            );
+            return out;
+        };
+        if d.kind != expected_kind {
             bad(
                 "dispersion.kind",
                 format!(
                     "\"{}\" does not go with chart = \"{}\"; expected \"{}\"",
-                    self.dispersion.kind.name(),
-                    self.chart.name(),
+                    d.kind.name(),
+                    chart.name(),
                     expected_kind.name()
                 ),
             );
@@ -304,7 +448,6 @@ impl StoredLimits {
         }
         let l = &self.location;
         order(&mut bad, "location", l.lcl, l.center, l.ucl, false);
-        let d = &self.dispersion;
         if d.lcl < 0.0 {
             bad(
                 "dispersion.lcl",
@@ -317,6 +460,12 @@ impl StoredLimits {
         {
             bad("spec", e.to_string());
         }
+        self.common_problems(&mut bad);
+        out
+    }
+
+    /// Problems of the parts every chart has: the approval and the provenance.
+    fn common_problems(&self, bad: &mut impl FnMut(&str, String)) {
         if let Some(a) = &self.approved {
             if a.by.trim().is_empty() {
                 bad(
@@ -343,7 +492,103 @@ impl StoredLimits {
                 ),
             );
         }
-        out
+    }
+
+    /// Problems of an attribute chart's limits: a sample size, a centre in range, limits that
+    /// follow from it (the lower clamped at zero), no variables tables.
+    fn attribute_problems(&self, chart: AttributeChart, bad: &mut impl FnMut(&str, String)) {
+        let n = self.subgroup_size;
+        if !(1..=1_000_000).contains(&n) {
+            bad(
+                "subgroup_size",
+                format!("{n} units inspected is out of range; use 1 to 1000000"),
+            );
+        }
+        if self.dispersion.is_some() {
+            bad(
+                "dispersion",
+                format!(
+                    "does not apply to chart = \"{}\": an attribute chart has no dispersion chart",
+                    chart.name()
+                ),
+            );
+        }
+        if self.spec.is_some() {
+            bad(
+                "spec",
+                format!(
+                    "does not apply to chart = \"{}\": an attribute chart has no specification limits",
+                    chart.name()
+                ),
+            );
+        }
+        let l = &self.location;
+        for (key, v) in [("lcl", l.lcl), ("center", l.center), ("ucl", l.ucl)] {
+            if !(v.is_finite() && v >= 0.0) {
+                bad(
+                    &format!("location.{key}"),
+                    format!("{} must be a number of zero or more", num(v)),
+                );
+                return;
+            }
+        }
+        let proportion = matches!(chart, AttributeChart::P);
+        if proportion && l.center >= 1.0 {
+            bad(
+                "location.center",
+                format!("{} is not a fraction nonconforming below 1", num(l.center)),
+            );
+            return;
+        }
+        if chart == AttributeChart::Np && l.center >= n as f64 {
+            bad(
+                "location.center",
+                format!(
+                    "{} nonconforming is not below the {n} units inspected",
+                    num(l.center)
+                ),
+            );
+            return;
+        }
+        if l.center <= 0.0 {
+            bad(
+                "location.center",
+                "is 0: with no nonconformities at all the limits collapse and every find signals; take a longer baseline".into(),
+            );
+            return;
+        }
+        if let Some(p) = self.attribute_parameter() {
+            let want = chart.limits(p, n as f64);
+            // Within a hundredth of the plotted value's sigma: rounding passes, moved limits do
+            // not.
+            let tol = 0.01 * attribute_sigma(chart, p, n as f64) + 1e-9;
+            for (key, found, expected) in [("ucl", l.ucl, want.ucl), ("lcl", l.lcl, want.lcl)] {
+                if (found - expected).abs() > tol {
+                    bad(
+                        &format!("location.{key}"),
+                        format!(
+                            "{} is not what the centre {} gives on the {} chart at {n} units ({}{})",
+                            num(found),
+                            num(l.center),
+                            chart.name(),
+                            num(expected),
+                            if key == "lcl" && expected == 0.0 {
+                                ", the lower limit clamped at zero"
+                            } else {
+                                ""
+                            }
+                        ),
+                    );
+                }
+            }
+        }
+        if !(self.sigma.within > 0.0 && self.sigma.within.is_finite()) {
+            bad(
+                "sigma.within",
+                format!("{} must be a positive number", num(self.sigma.within)),
+            );
+        }
+        self.common_problems(bad);
     }
 
     /// Writes the file atomically (see [`crate::fsutil::write_atomic`]).
@@ -363,6 +608,26 @@ impl StoredLimits {
             source,
         })?;
         Ok(Self::parse(&text, &path.display().to_string())?)
+    }
+}
+
+/// The standard deviation of the plotted value of an attribute chart at `size` units, for a
+/// centre parameter `p` (p̄, c̄ or ū).
+pub fn attribute_sigma(chart: AttributeChart, p: f64, size: f64) -> f64 {
+    match chart {
+        AttributeChart::P => (p * (1.0 - p) / size).sqrt(),
+        AttributeChart::Np => (size * p * (1.0 - p)).sqrt(),
+        AttributeChart::C => p.sqrt(),
+        AttributeChart::U => (p / size).sqrt(),
+    }
+}
+
+fn attribute_sigma_method(chart: AttributeChart, size: usize) -> String {
+    match chart {
+        AttributeChart::P => format!("binomial: sqrt(pbar (1 - pbar) / n) at n = {size}"),
+        AttributeChart::Np => format!("binomial: sqrt(n pbar (1 - pbar)) at n = {size}"),
+        AttributeChart::C => format!("Poisson: sqrt(cbar) per {size} unit(s)"),
+        AttributeChart::U => format!("Poisson: sqrt(ubar / n) at n = {size}"),
     }
 }
 

@@ -23,6 +23,8 @@ fn reading(c: &str, v: f64, i: i64) -> Record {
         arrival_ms: T0 + i,
         part: None,
         source_key: None,
+        word: None,
+        inspected: None,
     }
 }
 
@@ -35,6 +37,8 @@ fn subgroup(c: &str, number: u64, readings: Vec<u64>) -> Record {
             n: readings.len(),
             mean: 12.0,
             dispersion: Some(0.01),
+            found: None,
+            inspected: None,
         },
         readings,
         partial: false,

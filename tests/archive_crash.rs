@@ -65,6 +65,8 @@ fn child_appender() {
                 arrival_ms: 0,
                 part: None,
                 source_key: Some(format!("k{}", next + i)),
+                word: None,
+                inspected: None,
             })
             .collect();
         handle.append_blocking(batch).expect("append");

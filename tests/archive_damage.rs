@@ -26,6 +26,8 @@ fn reading(i: u64) -> Record {
         arrival_ms: T0 + i as i64,
         part: Some(format!("VB{i:05}")),
         source_key: None,
+        word: None,
+        inspected: None,
     }
 }
 

@@ -24,6 +24,8 @@ fn reading(n: u64) -> Record {
         arrival_ms: 0,
         part: Some(format!("part-{n:08}")),
         source_key: Some(format!("key-{n}")),
+        word: None,
+        inspected: None,
     }
 }
 

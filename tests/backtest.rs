@@ -19,7 +19,7 @@ fn the_running_configuration_reproduces_the_record_exactly() {
     common::run_daemon(cfg.clone());
     let reader = Reader::open(&dir.path().join("archive")).unwrap();
     let bt = linewarden::backtest::run(&cfg, &reader, &[], None, None).unwrap();
-    assert_eq!(bt.characteristics.len(), 3);
+    assert_eq!(bt.characteristics.len(), 4);
     let mut signals = 0;
     for c in &bt.characteristics {
         assert!(c.subgroups > 0, "{}", c.id);
@@ -196,6 +196,9 @@ fn record(cfg: &linewarden::config::Config, feed: &[Step]) {
                     arrival_ms: t,
                     part: None,
                     source_key: None,
+                    word: None,
+                    inspected: None,
+                    sent: None,
                 };
                 engine.check(&inc).unwrap();
                 let seq = w.append(&inc.record(), t).unwrap();

@@ -437,6 +437,8 @@ fn small_archive(dir: &Path) {
                 arrival_ms: t0 + i * 60_000,
                 part: Some(format!("p{i}")),
                 source_key: None,
+                word: None,
+                inspected: None,
             },
             t0 + i * 60_000,
         )

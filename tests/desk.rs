@@ -254,7 +254,7 @@ fn bad_requests_to_the_desk_leave_no_file() {
     let cases: Vec<(Vec<&str>, &str)> = vec![
         (
             vec!["--characteristic", "vb210-bor"],
-            "holds no subgroups of characteristic \"vb210-bor\" (it holds subgroups of: vb210-bore, vb210-face, vb210-port)",
+            "holds no subgroups of characteristic \"vb210-bor\" (it holds subgroups of: vb210-bore, vb210-face, vb210-leak, vb210-port)",
         ),
         (
             vec![

@@ -52,6 +52,9 @@ fn feed(engine: &mut Engine, log: &mut Log, c: &str, v: f64, t: i64) -> Vec<Stri
         arrival_ms: t,
         part: None,
         source_key: None,
+        word: None,
+        inspected: None,
+        sent: None,
     };
     if let Err(reason) = engine.check(&inc) {
         log.append(Record::ReadingRejected {
@@ -207,6 +210,9 @@ preset = "nelson"
             arrival_ms: T0 + i,
             part: None,
             source_key: None,
+            word: None,
+            inspected: None,
+            sent: None,
         };
         let seq = log.append(inc.record());
         outputs.extend(e.accept(seq, &inc));
@@ -275,6 +281,9 @@ fn feed_face(e: &mut Engine, log: &mut Log, from: i64, n: i64, level: f64) -> Ve
             arrival_ms: T0 + i * 1000,
             part: Some(format!("P{i}")),
             source_key: None,
+            word: None,
+            inspected: None,
+            sent: None,
         };
         let seq = log.append(inc.record());
         let out = e.accept(seq, &inc);
@@ -670,6 +679,9 @@ fn drive(cfg: &config::Config, readings: &[(i64, &str, f64)], skip: bool) -> Vec
                 arrival_ms: t,
                 part: None,
                 source_key: None,
+                word: None,
+                inspected: None,
+                sent: None,
             };
             let out = e.accept(seq, &inc);
             let raised = out.iter().any(|o| {

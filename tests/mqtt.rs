@@ -507,6 +507,8 @@ fn recent_keys_include_rejected_messages() {
             arrival_ms: 0,
             part: None,
             source_key: Some(a.clone()),
+            word: None,
+            inspected: None,
         },
         0,
     )
@@ -527,4 +529,183 @@ fn recent_keys_include_rejected_messages() {
     drop(w);
     assert_eq!(recent_keys(dir.path(), "mqtt:cell"), [a, r]);
     assert!(recent_keys(dir.path(), "mqtt:other").is_empty());
+}
+
+/// A pass/fail station and an end-of-line tester reporting batches, over the broker: words and
+/// batch counts become points; a word in neither list, a batch with more bad parts than parts,
+/// one without its units and one of zero units are archived as rejected with the message they
+/// came in, and the station goes on.
+fn attribute_station(port: u16, dir: &Path) {
+    // p chart at 10% in subgroups of 5: σ = √(0.1·0.9/5) = 0.13416, UCL 0.50249, LCL 0.
+    std::fs::write(
+        dir.join("leak.toml"),
+        r#"format = 1
+characteristic = "leak"
+chart = "p"
+subgroup_size = 5
+[sigma]
+within = 0.1341640786
+overall = 0.1341640786
+method = "binomial: sqrt(pbar (1 - pbar) / n) at n = 5"
+[location]
+center = 0.1
+ucl = 0.5024922359
+lcl = 0.0
+[provenance]
+computed_at = "2026-12-01T08:00:00Z"
+source = "test"
+tool = "linewarden test"
+subgroups_total = 25
+subgroups_used = 25
+used = "1-25"
+"#,
+    )
+    .unwrap();
+    let text = format!(
+        r#"[daemon]
+archive_dir = "archive"
+flush_interval_ms = 5
+
+[[characteristic]]
+id = "leak"
+chart = "p"
+conforming = ["OK"]
+nonconforming = ["NOK"]
+limits = "leak.toml"
+subgroup = {{ size = 5 }}
+[characteristic.rules]
+[[characteristic.rules.rule]]
+kind = "beyond-limits"
+
+[[characteristic]]
+id = "eol"
+chart = "p"
+subgroup = {{ size = 1 }}
+learning = {{ subgroups = 100 }}
+
+[[source]]
+id = "station"
+kind = "mqtt"
+broker = "mqtt://127.0.0.1:{port}"
+client_id = "linewarden-station-{port}"
+topics = ["cell4/leak/result"]
+characteristic = "leak"
+
+[[source]]
+id = "tester"
+kind = "mqtt"
+broker = "mqtt://127.0.0.1:{port}"
+client_id = "linewarden-tester-{port}"
+topics = ["cell4/eol/batch"]
+characteristic = "eol"
+payload = "json"
+value_pointer = "/bad"
+inspected_pointer = "/tested"
+"#
+    );
+    let cfg = dir.join("cell.toml");
+    std::fs::write(&cfg, text).unwrap();
+    let d = Daemon::start(&cfg, &dir.join("daemon.log"));
+    d.wait_subscribed(2);
+    let rt = runtime();
+    let c = publisher(&rt, port, "pub-station");
+    rt.block_on(async {
+        for w in [
+            "OK", "NOK", " ok ", "NOK", "nok", "BROKEN", "OK", "OK", "1", "0", "OK",
+        ] {
+            c.publish("cell4/leak/result", rumqttc::QoS::AtLeastOnce, false, w)
+                .await
+                .unwrap();
+        }
+        for b in [
+            r#"{"bad": 2, "tested": 50}"#,
+            r#"{"bad": 60, "tested": 50}"#,
+            r#"{"bad": 1}"#,
+            r#"{"bad": 1, "tested": 0}"#,
+            r#"{"bad": "NOK", "tested": 5}"#,
+        ] {
+            c.publish("cell4/eol/batch", rumqttc::QoS::AtLeastOnce, false, b)
+                .await
+                .unwrap();
+        }
+    });
+    let archive = dir.join("archive");
+    wait_until("the station's results", Duration::from_secs(20), || {
+        count_accepted(&archive, "mqtt:station") == 10
+            && archived(&archive, "mqtt:station").1.len() == 1
+            && archived(&archive, "mqtt:tester").1.len() == 4
+    });
+    d.stop();
+    let (_, rejected) = archived(&archive, "mqtt:station");
+    assert_eq!(rejected, ["cell4/leak/result: BROKEN"]);
+    let (batches, rejected) = archived(&archive, "mqtt:tester");
+    assert_eq!(batches.values().map(Vec::len).sum::<usize>(), 1);
+    assert_eq!(rejected.len(), 4, "{rejected:?}");
+    let r = Reader::open(&archive).unwrap();
+    let mut reasons = Vec::new();
+    let mut points = Vec::new();
+    for e in r.iter(&Filter::default()).flatten() {
+        match e.record {
+            Record::ReadingRejected { reason, .. } => reasons.push(reason),
+            Record::SubgroupResult {
+                characteristic,
+                subgroup,
+                violations,
+                ..
+            } => points.push((
+                characteristic,
+                subgroup.found,
+                subgroup.inspected,
+                violations
+                    .iter()
+                    .map(|v| v.message.clone())
+                    .collect::<Vec<_>>(),
+            )),
+            _ => {}
+        }
+    }
+    for want in [
+        "\"BROKEN\" is neither a conforming word (\"OK\") nor a nonconforming one (\"NOK\")",
+        "60 nonconforming of 50 inspected",
+        "no units inspected at /tested",
+        "0 units inspected is not a batch",
+        "\"NOK\" is neither a conforming word (none) nor a nonconforming one (none)",
+    ] {
+        assert_eq!(
+            reasons.iter().filter(|r| r.contains(want)).count(),
+            1,
+            "{want}: {reasons:?}"
+        );
+    }
+    let leak: Vec<_> = points.iter().filter(|p| p.0 == "leak").collect();
+    assert_eq!(leak.len(), 2, "{points:?}");
+    assert_eq!((leak[0].1, leak[0].2), (Some(3.0), Some(5.0)));
+    assert!(
+        leak[0].3[0]
+            .starts_with("3 of 5 parts nonconforming (60.0%) is above the upper limit 50.2%"),
+        "{:?}",
+        leak[0].3
+    );
+    assert_eq!((leak[1].1, leak[1].2), (Some(1.0), Some(5.0)));
+    assert!(leak[1].3.is_empty());
+    let eol: Vec<_> = points.iter().filter(|p| p.0 == "eol").collect();
+    assert_eq!((eol[0].1, eol[0].2), (Some(2.0), Some(50.0)));
+}
+
+#[test]
+fn rumqttd_a_pass_fail_station_and_a_batch_tester() {
+    let dir = tempfile::tempdir().unwrap();
+    let port = free_port();
+    let _b = start_rumqttd(port);
+    attribute_station(port, dir.path());
+}
+
+#[test]
+fn mosquitto_a_pass_fail_station_and_a_batch_tester() {
+    let dir = tempfile::tempdir().unwrap();
+    let port = free_port();
+    let Some(_b) = start_mosquitto(dir.path(), port) else {
+        return;
+    };
+    attribute_station(port, dir.path());
 }

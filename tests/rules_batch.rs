@@ -19,7 +19,7 @@ const N: usize = 4;
 fn basis() -> ChartBasis {
     let sp = SIGMA / 2.0;
     ChartBasis {
-        chart: VariablesChart::XbarR,
+        chart: VariablesChart::XbarR.into(),
         center: CENTER,
         sigma: SIGMA,
         nominal_n: N,
@@ -35,6 +35,7 @@ fn basis() -> ChartBasis {
         },
         unit: "mm".into(),
         decimals: None,
+        below_severity: None,
     }
 }
 
@@ -218,6 +219,7 @@ proptest! {
                 n: N,
                 mean: b.center + z * sp,
                 dispersion: Some(ranges[i] * SIGMA),
+                attribute: None,
             })
             .collect();
         let mut eval = PointEvaluator::new(&set, b.clone());
@@ -248,6 +250,7 @@ fn state_survives_a_round_trip_through_json() {
         n: N,
         mean: CENTER + z * sp,
         dispersion: Some(2.0 * SIGMA),
+        attribute: None,
     };
     let zs = [0.3, 0.5, 0.2, 0.6, 0.4, 0.7, 0.25];
     for (i, z) in zs.iter().enumerate() {

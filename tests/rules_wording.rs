@@ -33,6 +33,7 @@ fn fired_at_end(set: &RuleSet, zs: &[f64]) -> Vec<String> {
                 n: 1,
                 mean: *z,
                 dispersion: None,
+                attribute: None,
             })
             .into_iter()
             .map(|v| v.rule)

@@ -69,6 +69,12 @@ pub struct SubgroupSummary {
     pub mean: f64,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub dispersion: Option<f64>,
+    /// Attribute charts: nonconforming units (or defects) found in the subgroup.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub found: Option<f64>,
+    /// Attribute charts: units inspected in the subgroup.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub inspected: Option<f64>,
 }
 
 /// A reading waiting to complete a subgroup.
@@ -80,6 +86,9 @@ pub struct PendingReading {
     pub time_ms: i64,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub part: Option<String>,
+    /// Units inspected, for a batch result on an attribute chart.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub inspected: Option<f64>,
 }
 
 /// The recent state of one characteristic, as the archive knows it.
@@ -131,6 +140,14 @@ pub enum Record {
         /// hash and row), so that redeliveries are recognised.
         #[serde(default, skip_serializing_if = "Option::is_none")]
         source_key: Option<String>,
+        /// The word a pass/fail station sent ("NOK"), when it sent one; `value` is what it
+        /// counts as (1 nonconforming, 0 conforming) under the characteristic's word lists.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        word: Option<String>,
+        /// Units inspected, for a message that reports a whole batch (`value` is then the
+        /// count found in them); absent for one unit.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        inspected: Option<f64>,
     },
     ReadingRejected {
         source: String,
@@ -321,6 +338,7 @@ impl Tail {
                 source_time_ignored,
                 arrival_ms,
                 part,
+                inspected,
                 ..
             } => {
                 let time_ms = match source_time_ms {
@@ -336,6 +354,7 @@ impl Tail {
                     value: *value,
                     time_ms,
                     part: part.clone(),
+                    inspected: *inspected,
                 });
             }
             Record::LimitsInstalled {

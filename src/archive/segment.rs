@@ -305,6 +305,10 @@ fn reading_envelope(payload: &[u8]) -> Option<Envelope> {
         part: Option<String>,
         #[serde(default)]
         source_key: Option<String>,
+        #[serde(default)]
+        word: Option<String>,
+        #[serde(default)]
+        inspected: Option<f64>,
     }
     let w: Wire = serde_json::from_slice(payload).ok()?;
     if w.kind != "reading-accepted" {
@@ -324,6 +328,8 @@ fn reading_envelope(payload: &[u8]) -> Option<Envelope> {
             arrival_ms: w.arrival_ms,
             part: w.part,
             source_key: w.source_key,
+            word: w.word,
+            inspected: w.inspected,
         },
     })
 }
@@ -415,6 +421,9 @@ mod tests {
             arrival_ms: 1_796_000_000_456,
             part: part.map(str::to_string),
             source_key: Some("cell4/gauges#9f2c".into()),
+            // A pass/fail station's word and a batch's units ride the quick path too.
+            word: part.map(|_| "NOK \u{e9}".into()),
+            inspected: part.map(|_| 50.0),
         }
     }
 

@@ -159,7 +159,7 @@ pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
         let title = a.title.clone().unwrap_or_else(|| {
             format!(
                 "{} chart of {} ({} subgroups)",
-                chart_words(study.chart),
+                chart_words(study.chart.into()),
                 input.input.display(),
                 study.subgroups_total
             )
@@ -199,11 +199,17 @@ pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
 }
 
 /// The chart's name as the trade writes it.
-pub(crate) fn chart_words(c: linewarden::stats::variables::VariablesChart) -> &'static str {
+pub(crate) fn chart_words(c: linewarden::limits_file::ChartKind) -> &'static str {
+    use linewarden::limits_file::ChartKind;
+    use linewarden::stats::attributes::AttributeChart;
     use linewarden::stats::variables::VariablesChart;
     match c {
-        VariablesChart::XbarR => "Xbar-R",
-        VariablesChart::XbarS => "Xbar-S",
-        VariablesChart::Individuals => "Individuals and moving range",
+        ChartKind::Variables(VariablesChart::XbarR) => "Xbar-R",
+        ChartKind::Variables(VariablesChart::XbarS) => "Xbar-S",
+        ChartKind::Variables(VariablesChart::Individuals) => "Individuals and moving range",
+        ChartKind::Attribute(AttributeChart::P) => "p (fraction nonconforming)",
+        ChartKind::Attribute(AttributeChart::Np) => "np (number nonconforming)",
+        ChartKind::Attribute(AttributeChart::C) => "c (defects per inspection)",
+        ChartKind::Attribute(AttributeChart::U) => "u (defects per unit)",
     }
 }

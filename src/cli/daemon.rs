@@ -127,6 +127,9 @@ pub(crate) fn check_cmd(path: &std::path::Path) -> Result<()> {
                 ch.baseline_subgroups
             ),
         };
+        for w in ch.warnings() {
+            eprintln!("warning: {}: {w}", path.display());
+        }
         println!(
             "  {:<12} {} chart, rules: {}; {limits}",
             ch.id,

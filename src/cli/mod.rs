@@ -3,6 +3,7 @@
 
 pub(crate) mod archive;
 pub(crate) mod arl;
+pub(crate) mod attribute;
 pub(crate) mod backtest;
 pub(crate) mod chart;
 pub(crate) mod daemon;

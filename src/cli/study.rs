@@ -18,14 +18,36 @@ pub(crate) enum ChartArg {
     XbarR,
     XbarS,
     Individuals,
+    /// Fraction nonconforming (count and size columns).
+    P,
+    /// Number nonconforming at a constant size.
+    Np,
+    /// Defects per inspection unit.
+    C,
+    /// Defects per unit, sizes may vary.
+    U,
 }
 
-impl From<ChartArg> for VariablesChart {
-    fn from(c: ChartArg) -> Self {
-        match c {
-            ChartArg::XbarR => VariablesChart::XbarR,
-            ChartArg::XbarS => VariablesChart::XbarS,
-            ChartArg::Individuals => VariablesChart::Individuals,
+impl ChartArg {
+    /// The variables chart, when it names one.
+    pub(crate) fn variables(self) -> Option<VariablesChart> {
+        match self {
+            ChartArg::XbarR => Some(VariablesChart::XbarR),
+            ChartArg::XbarS => Some(VariablesChart::XbarS),
+            ChartArg::Individuals => Some(VariablesChart::Individuals),
+            _ => None,
+        }
+    }
+
+    /// The attribute chart, when it names one.
+    pub(crate) fn attribute(self) -> Option<linewarden::stats::attributes::AttributeChart> {
+        use linewarden::stats::attributes::AttributeChart;
+        match self {
+            ChartArg::P => Some(AttributeChart::P),
+            ChartArg::Np => Some(AttributeChart::Np),
+            ChartArg::C => Some(AttributeChart::C),
+            ChartArg::U => Some(AttributeChart::U),
+            _ => None,
         }
     }
 }
@@ -56,9 +78,18 @@ pub(crate) struct InputArgs {
     #[arg(long)]
     pub(crate) decimal_comma: bool,
     /// Chart to estimate sigma with. Default: individuals for single readings, X̄-R for
-    /// subgroups up to 10, X̄-S above.
+    /// subgroups up to 10, X̄-S above. p, np, c, u: an attribute chart, whose file has a row
+    /// per sample with a count column and a size column (limits and capability).
     #[arg(long, value_enum)]
     pub(crate) chart: Option<ChartArg>,
+    /// Attribute charts: the column with the count found (nonconforming parts or defects).
+    /// Default: "count".
+    #[arg(long, value_name = "NAME")]
+    pub(crate) count_column: Option<String>,
+    /// Attribute charts: the column with the units inspected. Default: "size" (a c chart
+    /// needs none).
+    #[arg(long, value_name = "NAME")]
+    pub(crate) size_column: Option<String>,
 }
 
 #[derive(Args)]
@@ -165,6 +196,16 @@ pub(crate) fn load_and_study(
     exclude: &ExcludeArgs,
 ) -> Result<(Study, Vec<Vec<f64>>, Vec<String>)> {
     let name = input.input.display().to_string();
+    if let Some(a) = input.chart.and_then(ChartArg::attribute) {
+        bail!(
+            "--chart {}: this command reads measured subgroups; for an attribute chart use linewarden limits --chart {} (and capability --chart p or np)",
+            a.name(),
+            a.name()
+        );
+    }
+    if input.count_column.is_some() || input.size_column.is_some() {
+        bail!("--count-column and --size-column are for attribute charts (--chart p, np, c or u)");
+    }
     let text = std::fs::read_to_string(&input.input)
         .with_context(|| format!("cannot read input file {name}"))?;
     let delimiter = delimiter_byte(&input.delimiter)?;
@@ -182,7 +223,7 @@ pub(crate) fn load_and_study(
     let parsed = input::parse(&text, &name, &opts)?;
     let s = run_study(
         &parsed.subgroups,
-        input.chart.map(VariablesChart::from),
+        input.chart.and_then(ChartArg::variables),
         exclude,
         &name,
     )?;
@@ -334,7 +375,15 @@ pub(crate) fn study_of_window(
         linewarden::format::utc_ms(first),
         linewarden::format::utc_ms(last),
     );
-    let chart = win.limits.as_ref().map(|l| l.chart);
+    let chart = match win.limits.as_ref().map(|l| l.chart) {
+        Some(linewarden::limits_file::ChartKind::Attribute(a)) => bail!(
+            "characteristic {} is an attribute characteristic ({} chart); a study from the archive is for measured characteristics. Its learned limits and the record's subgroups are in the archive (linewarden archive export)",
+            win.characteristic,
+            a.name()
+        ),
+        Some(linewarden::limits_file::ChartKind::Variables(v)) => Some(v),
+        None => None,
+    };
     let s = run_study(&subgroups, chart, exclude, &source)?;
     Ok((s, subgroups, source))
 }
@@ -398,6 +447,14 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
         bail!(
             "--characteristic {id:?} is not a valid identifier; use letters, digits, '-', '_' and '.'"
         );
+    }
+    if let Some(chart) = a
+        .input
+        .as_ref()
+        .and_then(|i| i.chart)
+        .and_then(ChartArg::attribute)
+    {
+        return super::attribute::limits(&a, chart);
     }
     let spec = spec_of(&a.spec)?;
     let mut unit = a.unit.clone();
@@ -469,6 +526,9 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
 }
 
 pub(crate) fn capability_cmd(a: CapabilityArgs) -> Result<()> {
+    if let Some(chart) = a.input.chart.and_then(ChartArg::attribute) {
+        return super::attribute::capability_cmd(&a, chart);
+    }
     let Some(spec) = spec_of(&a.spec)? else {
         bail!("capability needs --lsl and/or --usl");
     };

@@ -8,8 +8,9 @@ use serde::{Deserialize, Serialize};
 
 use super::RawConfig;
 use crate::diag::{Locator, Problem};
-use crate::limits_file::{StoredLimits, valid_id};
+use crate::limits_file::{ChartKind, StoredLimits, valid_id};
 use crate::rules::{RuleSet, RulesConfig};
+use crate::stats::attributes::AttributeChart;
 use crate::stats::capability::Spec;
 use crate::stats::variables::VariablesChart;
 
@@ -102,6 +103,64 @@ pub struct RawCharacteristic {
     /// Decimals for every figure of this characteristic people read (alerts, the log, status);
     /// without it, derived from the limits.
     pub decimals: Option<usize>,
+    /// An attribute characteristic: "p" (fraction nonconforming), "np" (number nonconforming
+    /// at a constant sample size), "c" (defects per inspection unit), "u" (defects per unit).
+    /// Without it, a measured (variables) characteristic.
+    pub chart: Option<String>,
+    /// p and np: the words a station sends for a good part ("OK", "PASS").
+    pub conforming: Option<Vec<String>>,
+    /// p and np: the words a station sends for a bad part ("NOK", "FAIL").
+    pub nonconforming: Option<Vec<String>>,
+    /// Attribute charts: the severity of a subgroup below the lower limit (an improvement, or
+    /// a tester that stopped finding); by default the beyond-limits rule's own.
+    pub below_limit_severity: Option<crate::rules::Severity>,
+}
+
+/// How an attribute characteristic reads its results.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AttributeSettings {
+    pub chart: AttributeChart,
+    /// Words for a conforming unit (0) and a nonconforming one (1), compared without regard
+    /// to case or surrounding spaces.
+    pub conforming: Vec<String>,
+    pub nonconforming: Vec<String>,
+    pub below_severity: Option<crate::rules::Severity>,
+}
+
+impl AttributeSettings {
+    /// What a word a station sent counts as: 0 conforming, 1 nonconforming; the error says
+    /// which words are known.
+    pub fn count_of(&self, word: &str) -> Result<f64, String> {
+        let w = word.trim();
+        let is = |list: &[String]| list.iter().any(|x| x.eq_ignore_ascii_case(w));
+        if is(&self.nonconforming) {
+            return Ok(1.0);
+        }
+        if is(&self.conforming) {
+            return Ok(0.0);
+        }
+        let clipped: String = w.chars().take(40).collect();
+        if matches!(self.chart, AttributeChart::C | AttributeChart::U) {
+            return Err(format!(
+                "\"{clipped}\" is not a count of defects (a whole number of zero or more)"
+            ));
+        }
+        let known = |l: &[String]| {
+            if l.is_empty() {
+                "none".to_string()
+            } else {
+                l.iter()
+                    .map(|x| format!("\"{x}\""))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            }
+        };
+        Err(format!(
+            "\"{clipped}\" is neither a conforming word ({}) nor a nonconforming one ({}), nor 0 or 1",
+            known(&self.conforming),
+            known(&self.nonconforming)
+        ))
+    }
 }
 
 /// How readings form subgroups.
@@ -122,7 +181,9 @@ pub struct Characteristic {
     pub grouping: Grouping,
     pub max_wait_ms: Option<i64>,
     pub on_timeout: OnTimeout,
-    pub chart: VariablesChart,
+    pub chart: ChartKind,
+    /// Set for an attribute characteristic (p, np, c, u).
+    pub attribute: Option<AttributeSettings>,
     pub valid: Option<(f64, f64)>,
     pub spec: Option<Spec>,
     /// Shared by the characteristics whose rules are the same.
@@ -149,6 +210,10 @@ pub struct Characteristic {
 fn limits_against_sigma(l: &StoredLimits) -> Vec<(&'static str, f64, f64)> {
     use crate::stats::variables::{dispersion_limits, location_limits};
     let mut out = Vec::new();
+    let (Some(_), Some(disp)) = (l.chart.variables(), &l.dispersion) else {
+        // An attribute chart's file is checked against its centre when it is read.
+        return out;
+    };
     let sigma = l.sigma.within;
     let n = l.subgroup_size;
     // Within a hundredth of a standard error agrees: rounding to the gauge's resolution or to
@@ -164,11 +229,11 @@ fn limits_against_sigma(l: &StoredLimits) -> Vec<(&'static str, f64, f64)> {
             out.push((what, found, expected));
         }
     }
-    if let Ok(d) = dispersion_limits(l.dispersion.kind, sigma, n) {
+    if let Ok(d) = dispersion_limits(disp.kind, sigma, n) {
         for (what, found, expected) in [
-            ("dispersion.center", l.dispersion.center, d.center),
-            ("dispersion.ucl", l.dispersion.ucl, d.ucl),
-            ("dispersion.lcl", l.dispersion.lcl, d.lcl),
+            ("dispersion.center", disp.center, d.center),
+            ("dispersion.ucl", disp.ucl, d.ucl),
+            ("dispersion.lcl", disp.lcl, d.lcl),
         ] {
             if (found - expected).abs() > 0.01 * sigma + 1e-8 * expected.abs() {
                 out.push((what, found, expected));
@@ -270,8 +335,11 @@ fn build_characteristic(
         Some(n) if n > 10 => VariablesChart::XbarS,
         _ => VariablesChart::XbarR,
     };
+    let attribute = attribute_settings(c, at, who, &grouping, loc, p);
     let chart = c.learning.chart.unwrap_or(default_chart);
-    if let Some(n) = nominal {
+    if let Some(n) = nominal
+        && attribute.is_none()
+    {
         if n == 1 && chart != VariablesChart::Individuals {
             p.push(loc.problem(
                 &format!("{at}.subgroup.size"),
@@ -285,7 +353,10 @@ fn build_characteristic(
             ));
         }
     }
-    if matches!(grouping, Some(Grouping::Window { .. })) && chart == VariablesChart::Individuals {
+    if matches!(grouping, Some(Grouping::Window { .. }))
+        && chart == VariablesChart::Individuals
+        && attribute.is_none()
+    {
         p.push(loc.problem(&format!("{at}.learning.chart"), format!("{who}: a time window forms subgroups of many readings; chart = \"individuals\" does not fit")));
     }
     if !(2..=1000).contains(&c.learning.subgroups) {
@@ -324,7 +395,14 @@ fn build_characteristic(
             Default::default()
         }
     };
-    for (j, r) in c.rules.rule.iter().enumerate() {
+    // An attribute characteristic's rules are checked by `attribute_settings`.
+    for (j, r) in c
+        .rules
+        .rule
+        .iter()
+        .enumerate()
+        .filter(|_| c.chart.is_none())
+    {
         let two_sided = c.spec.is_some_and(|s| s.lsl.is_some() && s.usl.is_some());
         match r.kind.as_str() {
             "outside-spec" if c.spec.is_none() => p.push(loc.problem(
@@ -368,18 +446,44 @@ fn build_characteristic(
                         ),
                     ));
                 }
-                if l.chart != chart && c.learning.chart.is_some() {
+                let wanted = match &attribute {
+                    Some(a) => Some(ChartKind::Attribute(a.chart)),
+                    None if c.learning.chart.is_some() => Some(ChartKind::Variables(chart)),
+                    None => None,
+                };
+                if let Some(w) = wanted
+                    && l.chart != w
+                {
                     p.push(loc.problem(
-                        &format!("{at}.learning.chart"),
+                        &format!(
+                            "{at}.{}",
+                            if attribute.is_some() {
+                                "chart"
+                            } else {
+                                "learning.chart"
+                            }
+                        ),
                         format!(
-                            "{who}: the stored limits are for chart \"{}\", not \"{}\"",
+                            "{who}: the stored limits in {} are for chart \"{}\", not \"{}\"",
+                            lp.display(),
                             l.chart.name(),
-                            chart.name()
+                            w.name()
+                        ),
+                    ));
+                } else if attribute.is_none() && l.chart.attribute().is_some() {
+                    p.push(loc.problem(
+                        &format!("{at}.limits"),
+                        format!(
+                            "{who}: {} holds limits for the attribute chart \"{}\"; say chart = \"{}\" to make it an attribute characteristic",
+                            lp.display(),
+                            l.chart.name(),
+                            l.chart.name()
                         ),
                     ));
                 }
                 if let Some(n) = nominal
                     && n != l.subgroup_size
+                    && attribute.is_none()
                 {
                     p.push(loc.problem(
                         &format!("{at}.subgroup.size"),
@@ -454,7 +558,11 @@ fn build_characteristic(
             format!("{who}: \"{other}\" is not a limits policy; use \"from-sigma\" (the default) or \"as-stored\""),
         )),
     }
-    let chart = limits.as_ref().map_or(chart, |l| l.chart);
+    let chart: ChartKind = match (&attribute, &limits) {
+        (Some(a), _) => ChartKind::Attribute(a.chart),
+        (None, Some(l)) => l.chart,
+        (None, None) => ChartKind::Variables(chart),
+    };
     if let Some(d) = c.decimals
         && d > 10
     {
@@ -474,6 +582,7 @@ fn build_characteristic(
         max_wait_ms,
         on_timeout: sg.on_timeout.unwrap_or_default(),
         chart,
+        attribute,
         valid,
         spec: c.spec,
         rules,
@@ -489,6 +598,228 @@ fn build_characteristic(
         reaction_plan: c.reaction_plan.clone(),
         decimals: c.decimals,
     })
+}
+
+/// The attribute settings of `c` when it names an attribute chart, with a problem for each
+/// key that does not apply to one (or, for a measured characteristic, each attribute key).
+fn attribute_settings(
+    c: &RawCharacteristic,
+    at: &str,
+    who: &str,
+    grouping: &Option<Grouping>,
+    loc: &Locator,
+    p: &mut Vec<Problem>,
+) -> Option<AttributeSettings> {
+    let Some(name) = &c.chart else {
+        for (key, set) in [
+            ("conforming", c.conforming.is_some()),
+            ("nonconforming", c.nonconforming.is_some()),
+            ("below_limit_severity", c.below_limit_severity.is_some()),
+        ] {
+            if set {
+                p.push(loc.problem(
+                    &format!("{at}.{key}"),
+                    format!("{who}: {key} applies only to an attribute characteristic (chart = \"p\", \"np\", \"c\" or \"u\")"),
+                ));
+            }
+        }
+        return None;
+    };
+    let chart = match name.as_str() {
+        "p" => AttributeChart::P,
+        "np" => AttributeChart::Np,
+        "c" => AttributeChart::C,
+        "u" => AttributeChart::U,
+        "xbar-r" | "xbar-s" | "individuals" => {
+            p.push(loc.problem(
+                &format!("{at}.chart"),
+                format!("{who}: chart = \"{name}\": this key names an attribute chart (\"p\", \"np\", \"c\" or \"u\"); a measured characteristic's chart is learning.chart"),
+            ));
+            return None;
+        }
+        other => {
+            p.push(loc.problem(
+                &format!("{at}.chart"),
+                format!("{who}: \"{other}\" is not an attribute chart; use \"p\", \"np\", \"c\" or \"u\""),
+            ));
+            return None;
+        }
+    };
+    let kind = format!("an attribute characteristic (chart = \"{name}\")");
+    let mut does_not_apply = |key: &str, why: &str| {
+        p.push(loc.problem(
+            &format!("{at}.{key}"),
+            format!("{who}: {key} does not apply to {kind}: {why}"),
+        ));
+    };
+    if c.spec.is_some() {
+        does_not_apply(
+            "spec",
+            "it judges counts, not measurements against specification limits",
+        );
+    }
+    if c.valid_min.is_some() || c.valid_max.is_some() {
+        does_not_apply(
+            if c.valid_min.is_some() {
+                "valid_min"
+            } else {
+                "valid_max"
+            },
+            "counts are checked as counts (whole, zero or more, no more nonconforming than inspected)",
+        );
+    }
+    if c.unit.is_some() {
+        does_not_apply(
+            "unit",
+            "its values are counts and fractions of the units inspected",
+        );
+    }
+    if c.learning.chart.is_some() {
+        does_not_apply(
+            "learning.chart",
+            "the chart is the characteristic's chart key",
+        );
+    }
+    if c.limits_policy.is_some() || c.limits_reason.is_some() {
+        does_not_apply(
+            if c.limits_policy.is_some() {
+                "limits_policy"
+            } else {
+                "limits_reason"
+            },
+            "its limits always follow from the stored centre, and the file is checked for that",
+        );
+    }
+    let counts = matches!(chart, AttributeChart::C | AttributeChart::U);
+    if counts {
+        for (key, set) in [
+            ("conforming", c.conforming.is_some()),
+            ("nonconforming", c.nonconforming.is_some()),
+        ] {
+            if set {
+                does_not_apply(
+                    key,
+                    "a c or u chart counts defects; its readings are counts, not pass/fail words",
+                );
+            }
+        }
+    }
+    if matches!(chart, AttributeChart::Np | AttributeChart::C)
+        && matches!(grouping, Some(Grouping::Window { .. }))
+    {
+        p.push(loc.problem(
+            &format!("{at}.subgroup.window_s"),
+            format!("{who}: the {name} chart needs the same number of units in every subgroup, which a time window does not give; use subgroup.size, or chart = \"{}\"", if chart == AttributeChart::Np { "p" } else { "u" }),
+        ));
+    }
+    for (j, r) in c.rules.rule.iter().enumerate() {
+        let here = format!("{at}.rules.rule[{j}]");
+        match r.kind.as_str() {
+            "outside-spec" | "stuck-gauge" | "impossible-reading" | "coarse-resolution" => {
+                p.push(loc.problem(
+                    &here,
+                    format!("{who}: kind = \"{}\" does not apply to {kind}: it judges single measured readings", r.kind),
+                ));
+            }
+            "beyond-limits" if r.chart == Some(crate::rules::config::ChartSide::Dispersion) => {
+                p.push(loc.problem(
+                    &format!("{here}.chart"),
+                    format!("{who}: chart = \"dispersion\" does not apply to {kind}: it has no dispersion chart"),
+                ));
+            }
+            _ => {}
+        }
+    }
+    let mut words = |key: &str, list: &Option<Vec<String>>| -> Vec<String> {
+        let list = list.clone().unwrap_or_default();
+        for (j, w) in list.iter().enumerate() {
+            let t = w.trim();
+            if t.is_empty() || t.len() > 40 || t.chars().any(char::is_control) {
+                p.push(loc.problem(
+                    &format!("{at}.{key}[{j}]"),
+                    format!("{who}: {w:?} is not a word a station sends; use 1 to 40 printable characters"),
+                ));
+            } else if t.parse::<f64>().is_ok() {
+                p.push(loc.problem(
+                    &format!("{at}.{key}[{j}]"),
+                    format!("{who}: \"{t}\" is a number; numbers are counts (1 nonconforming, 0 conforming) and cannot be remapped"),
+                ));
+            }
+        }
+        list.iter().map(|w| w.trim().to_string()).collect()
+    };
+    let conforming = words("conforming", &c.conforming);
+    let nonconforming = words("nonconforming", &c.nonconforming);
+    for (j, w) in nonconforming.iter().enumerate() {
+        if conforming.iter().any(|x| x.eq_ignore_ascii_case(w)) {
+            p.push(loc.problem(
+                &format!("{at}.nonconforming[{j}]"),
+                format!("{who}: \"{w}\" is both a conforming and a nonconforming word"),
+            ));
+        }
+    }
+    Some(AttributeSettings {
+        chart,
+        conforming,
+        nonconforming,
+        below_severity: c.below_limit_severity,
+    })
+}
+
+impl Characteristic {
+    /// What `check` should say about the configuration that is valid but doubtful: zone and
+    /// pattern rules on an attribute chart whose counts are too small for the normal
+    /// approximation they assume.
+    pub fn warnings(&self) -> Vec<String> {
+        let mut out = Vec::new();
+        let Some(a) = &self.attribute else {
+            return out;
+        };
+        let normal_rules: Vec<&str> = self
+            .rules
+            .rules
+            .iter()
+            .filter(|r| {
+                !matches!(
+                    r.kind,
+                    crate::rules::config::RuleKind::BeyondLimits { .. }
+                        | crate::rules::config::RuleKind::OneSideRun { .. }
+                        | crate::rules::config::RuleKind::SteadyTrend { .. }
+                        | crate::rules::config::RuleKind::StaleFeed { .. }
+                )
+            })
+            .map(|r| r.id.as_str())
+            .collect();
+        if normal_rules.is_empty() {
+            return out;
+        }
+        let expected = self.limits.as_ref().map(|l| match a.chart {
+            AttributeChart::P => l.location.center * l.subgroup_size as f64,
+            AttributeChart::U => l.location.center * l.subgroup_size as f64,
+            _ => l.location.center,
+        });
+        let what = match a.chart {
+            AttributeChart::P | AttributeChart::Np => "n·p̄",
+            _ => "the expected count per subgroup",
+        };
+        match expected {
+            Some(e) if e < 5.0 => out.push(format!(
+                "characteristic \"{}\": the rules {} read zones or patterns of the {} chart, which assume a nearly normal statistic; {what} is {} here, below about 5 (common practice), so their false-alarm rates are not what their names promise. Prefer beyond-limits, one-side-run and steady-trend, or larger subgroups",
+                self.id,
+                normal_rules.join(", "),
+                a.chart.name(),
+                crate::format::fixed(e, 2)
+            )),
+            Some(_) => {}
+            None => out.push(format!(
+                "characteristic \"{}\": the rules {} read zones or patterns of the {} chart, which assume a nearly normal statistic; with no limits yet it cannot be told whether {what} reaches about 5 (common practice). Run check again once the limits are learned",
+                self.id,
+                normal_rules.join(", "),
+                a.chart.name()
+            )),
+        }
+        out
+    }
 }
 
 /// Validates every `[[characteristic]]`; each problem goes to `p` with its path.

@@ -18,7 +18,8 @@ pub mod outputs;
 pub mod sources;
 pub mod web;
 pub use characteristics::{
-    Characteristic, Grouping, OnTimeout, RawCharacteristic, RawLearning, RawSubgroup,
+    AttributeSettings, Characteristic, Grouping, OnTimeout, RawCharacteristic, RawLearning,
+    RawSubgroup,
 };
 pub use outputs::{
     AlertsConfig, Control, EmailOutput, ModbusLink, Output, OutputKind, RawAlerts, RawControl,

@@ -85,6 +85,9 @@ pub struct RawSource {
     pub time_pointer: Option<String>,
     pub characteristic_pointer: Option<String>,
     pub part_pointer: Option<String>,
+    /// mqtt, json: a pointer to the units inspected, for stations that report a whole batch
+    /// (the value is then the count found in them: nonconforming parts, or defects).
+    pub inspected_pointer: Option<String>,
     /// mqtt: credentials. The password is read from a file or an environment variable, never
     /// written in the config.
     pub username: Option<String>,
@@ -197,6 +200,8 @@ pub enum Payload {
         time: Option<String>,
         characteristic: Option<String>,
         part: Option<String>,
+        /// Units inspected, for batch results.
+        inspected: Option<String>,
     },
 }
 
@@ -551,6 +556,7 @@ fn build_mqtt(
         ("time_pointer", &s.time_pointer),
         ("characteristic_pointer", &s.characteristic_pointer),
         ("part_pointer", &s.part_pointer),
+        ("inspected_pointer", &s.inspected_pointer),
     ];
     for (name, v) in json_keys {
         if let Some(v) = v
@@ -580,6 +586,7 @@ fn build_mqtt(
             time: s.time_pointer.clone(),
             characteristic: s.characteristic_pointer.clone(),
             part: s.part_pointer.clone(),
+            inspected: s.inspected_pointer.clone(),
         },
         other => {
             p.push(loc.problem(

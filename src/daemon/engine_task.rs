@@ -269,32 +269,33 @@ impl EngineTask {
         let mut accepted: Vec<Incoming> = Vec::new();
         let mut stop = None;
         for ev in batch {
-            let ev = match ev {
-                SourceEvent::Reading(inc) if self.engine.check(&inc).is_ok() => {
-                    accepted.push(inc);
-                    continue;
-                }
-                other => other,
+            // A word from a pass/fail station becomes its count here, under the
+            // characteristic's word lists; the record keeps the word too.
+            let (ev, refused) = match ev {
+                SourceEvent::Reading(mut inc) => match self.engine.admit(&mut inc) {
+                    Ok(()) => {
+                        accepted.push(inc);
+                        continue;
+                    }
+                    Err(reason) => (SourceEvent::Reading(inc), reason),
+                },
+                other => (other, String::new()),
             };
             self.take(&mut accepted).await?;
             match ev {
                 SourceEvent::Reading(inc) => {
-                    let reason = self.engine.check(&inc).err().unwrap_or_default();
+                    let reason = refused;
+                    let raw = inc.as_sent();
                     self.summary.rejected += 1;
                     if let Some(h) = self.health.get_mut(&inc.source) {
                         h.rejected += 1;
                     }
-                    reject(
-                        &mut self.rejected_logged,
-                        &inc.source,
-                        &inc.value.to_string(),
-                        &reason,
-                    );
+                    reject(&mut self.rejected_logged, &inc.source, &raw, &reason);
                     self.archive
                         .append(vec![Record::ReadingRejected {
                             source: inc.source.clone(),
                             characteristic: Some(inc.characteristic.clone()),
-                            raw: inc.value.to_string(),
+                            raw,
                             reason,
                             arrival_ms: inc.arrival_ms,
                             source_key: inc.source_key.clone(),

@@ -200,6 +200,7 @@ mod tests {
             value: seq as f64,
             time_ms: t,
             part: part.map(str::to_string),
+            inspected: None,
         }
     }
 

@@ -42,6 +42,15 @@ pub struct Incoming {
     pub arrival_ms: i64,
     pub part: Option<String>,
     pub source_key: Option<String>,
+    /// The word a pass/fail station sent, when it sent one instead of a number: the engine
+    /// maps it to 1 (nonconforming) or 0 under the characteristic's word lists
+    /// ([`Engine::admit`]); until then `value` is not a number.
+    pub word: Option<String>,
+    /// Units inspected, for a message reporting a whole batch (`value` the count found).
+    pub inspected: Option<f64>,
+    /// The message as received (topic and first bytes), for the record should the engine
+    /// reject what it carries; not archived with an accepted reading.
+    pub sent: Option<String>,
 }
 
 impl Incoming {
@@ -68,6 +77,8 @@ impl Incoming {
                 arrival_ms,
                 part,
                 source_key,
+                word,
+                inspected,
             } => Some(Incoming {
                 source,
                 characteristic,
@@ -78,8 +89,27 @@ impl Incoming {
                 arrival_ms,
                 part,
                 source_key,
+                word,
+                inspected,
+                sent: None,
             }),
             _ => None,
+        }
+    }
+
+    /// What the source sent, for the record of a rejected reading: the word, the number, or
+    /// a batch's count with its units inspected.
+    pub fn as_sent(&self) -> String {
+        if let Some(s) = &self.sent {
+            return s.clone();
+        }
+        let v = match &self.word {
+            Some(w) => w.chars().take(120).collect(),
+            None => self.value.to_string(),
+        };
+        match self.inspected {
+            Some(n) => format!("{v} of {n} inspected"),
+            None => v,
         }
     }
 
@@ -95,6 +125,8 @@ impl Incoming {
             arrival_ms: self.arrival_ms,
             part: self.part.clone(),
             source_key: self.source_key.clone(),
+            word: self.word.clone(),
+            inspected: self.inspected,
         }
     }
 }
@@ -368,6 +400,18 @@ impl Engine {
             .collect()
     }
 
+    /// Reads a word a pass/fail station sent into its count (1 nonconforming, 0 conforming)
+    /// under the characteristic's word lists, then [`Engine::check`]s the reading. The error
+    /// is the reason it is rejected.
+    pub fn admit(&self, inc: &mut Incoming) -> Result<(), String> {
+        if let (Some(w), Some(c)) = (&inc.word, self.chars.get(&inc.characteristic))
+            && let Some(a) = &c.cfg.attribute
+        {
+            inc.value = a.count_of(w)?;
+        }
+        self.check(inc)
+    }
+
     /// Checks a reading before it is accepted: a known characteristic, a finite value inside
     /// the physically possible range, a part id where subgroups go by part. The error is the
     /// reason it is rejected.
@@ -378,6 +422,21 @@ impl Engine {
                 inc.characteristic
             ));
         };
+        if let Some(a) = &c.cfg.attribute {
+            return check_attribute(&c.cfg.id, a.chart, inc);
+        }
+        if let Some(w) = &inc.word {
+            let clipped: String = w.chars().take(40).collect();
+            return Err(format!("\"{clipped}\" is not a number"));
+        }
+        if let Some(n) = inc.inspected {
+            return Err(format!(
+                "a count of {} in {} units inspected is a batch result, and {} is a measured characteristic",
+                num(inc.value),
+                num(n),
+                c.cfg.id
+            ));
+        }
         if !inc.value.is_finite() {
             return Err(format!("{} is not a finite reading", inc.value));
         }
@@ -838,6 +897,7 @@ impl CharEngine {
             value: inc.value,
             time_ms: inc.time_ms(),
             part: inc.part.clone(),
+            inspected: inc.inspected,
         };
         for a in self.asm.push(pending) {
             self.assembled(a, &mut out);
@@ -887,6 +947,9 @@ impl CharEngine {
                 return;
             }
         };
+        if let Some(a) = self.cfg.attribute.as_ref().map(|a| a.chart) {
+            return self.assembled_attribute(a, readings, partial, out);
+        }
         let values: Vec<f64> = readings.iter().map(|r| r.value).collect();
         let chart = self.chart();
         if chart != VariablesChart::Individuals && values.len() < 2 {
@@ -929,7 +992,79 @@ impl CharEngine {
             n: values.len(),
             mean: mean(&values),
             dispersion,
+            found: None,
+            inspected: None,
         };
+        self.judge(summary, values, &readings, partial, out);
+    }
+
+    /// A completed subgroup of an attribute characteristic: the count found in the units
+    /// inspected, plotted as p, np, c or u.
+    fn assembled_attribute(
+        &mut self,
+        a: crate::stats::attributes::AttributeChart,
+        readings: Vec<PendingReading>,
+        partial: bool,
+        out: &mut Vec<Output>,
+    ) {
+        use crate::stats::attributes::{AttributeChart, AttributeSample};
+        let found: f64 = readings.iter().map(|r| r.value).sum();
+        let inspected: f64 = readings.iter().map(|r| r.inspected.unwrap_or(1.0)).sum();
+        // np and c need the same number of units in every subgroup: the limits' (or the first
+        // baseline subgroup's).
+        if matches!(a, AttributeChart::Np | AttributeChart::C) {
+            let nominal = match &self.mode {
+                Mode::Monitoring { limits, .. } => Some(limits.subgroup_size as f64),
+                Mode::Learning { baseline } => baseline.first().and_then(|b| b.get(1).copied()),
+            };
+            if let Some(n) = nominal
+                && inspected != n
+            {
+                let reason = format!(
+                    "the {} chart needs {} units inspected in every subgroup; this one has {}{}",
+                    a.name(),
+                    num(n),
+                    num(inspected),
+                    if partial {
+                        " (cut short by its maximum wait)"
+                    } else {
+                        ""
+                    }
+                );
+                out.push(self.discard(&readings, reason));
+                return;
+            }
+        }
+        let time_ms = readings.last().map_or(0, |r| r.time_ms);
+        self.number += 1;
+        let summary = SubgroupSummary {
+            number: self.number,
+            time_ms,
+            n: readings.len(),
+            mean: a.plotted(&AttributeSample {
+                count: found,
+                size: inspected,
+            }),
+            dispersion: None,
+            found: Some(found),
+            inspected: Some(inspected),
+        };
+        self.judge(summary, vec![found, inspected], &readings, partial, out);
+    }
+
+    /// Checks a completed subgroup against the limits (or adds it to the baseline), and says
+    /// so. `baseline` is what the learning keeps of it: the readings, or for an attribute
+    /// chart the count found and the units inspected.
+    fn judge(
+        &mut self,
+        summary: SubgroupSummary,
+        baseline_entry: Vec<f64>,
+        readings: &[PendingReading],
+        partial: bool,
+        out: &mut Vec<Output>,
+    ) {
+        let time_ms = summary.time_ms;
+        let dispersion = summary.dispersion;
         let seqs: Vec<u64> = readings.iter().map(|r| r.seq).collect();
         self.remember(summary);
         let learning = matches!(self.mode, Mode::Learning { .. });
@@ -941,20 +1076,21 @@ impl CharEngine {
                     n: summary.n,
                     mean: summary.mean,
                     dispersion,
+                    attribute: summary.found.zip(summary.inspected),
                 });
                 if limits.is_provisional() {
                     let cap = self.cfg.provisional_severity;
                     v = v.into_iter().map(|v| v.provisional(cap)).collect();
                 }
                 let b = points.basis();
-                (
-                    Some(b.location_for(summary.n)),
-                    b.dispersion_for(summary.n),
-                    v,
-                )
+                let location = match (b.attribute(), summary.inspected) {
+                    (Some(a), Some(size)) => b.attribute_at(a, size).1,
+                    _ => b.location_for(summary.n),
+                };
+                (Some(location), b.dispersion_for(summary.n), v)
             }
             Mode::Learning { baseline } => {
-                baseline.push(values);
+                baseline.push(baseline_entry);
                 (None, None, Vec::new())
             }
         };
@@ -1020,11 +1156,13 @@ impl CharEngine {
         })
     }
 
+    /// The variables chart (only asked of measured characteristics).
     fn chart(&self) -> VariablesChart {
-        match &self.mode {
+        let kind = match &self.mode {
             Mode::Monitoring { limits, .. } => limits.chart,
             Mode::Learning { .. } => self.cfg.chart,
-        }
+        };
+        kind.variables().unwrap_or(VariablesChart::XbarR)
     }
 
     /// With a full baseline, runs the study (automatic exclusion) and installs provisional
@@ -1036,7 +1174,13 @@ impl CharEngine {
         if baseline.len() < self.cfg.baseline_subgroups {
             return;
         }
-        let opts = crate::stats::learning::POLICY.options(self.cfg.chart);
+        if let Some(a) = self.cfg.attribute.as_ref().map(|a| a.chart) {
+            return self.learn_attribute(a, time_ms, out);
+        }
+        let Some(chart) = self.cfg.chart.variables() else {
+            return;
+        };
+        let opts = crate::stats::learning::POLICY.options(chart);
         match study::run(baseline, &opts) {
             Ok(s) => {
                 let when = humantime::format_rfc3339_seconds(
@@ -1067,6 +1211,121 @@ impl CharEngine {
                     fixed(limits.location.lcl, d),
                     fixed(limits.location.ucl, d),
                     fixed(limits.sigma.within, d + 1),
+                    self.cfg.id,
+                    self.cfg.provisional_severity.name(),
+                );
+                for w in &s.warnings {
+                    message.push_str("; ");
+                    message.push_str(w);
+                }
+                out.push(Output::Log {
+                    level: Level::Warn,
+                    characteristic: self.cfg.id.clone(),
+                    message: message.clone(),
+                });
+                out.push(Output::Record(Record::LimitsInstalled {
+                    characteristic: self.cfg.id.clone(),
+                    old: None,
+                    new: Box::new(limits.clone()),
+                    reason: message,
+                    file: self
+                        .cfg
+                        .limits_path
+                        .as_ref()
+                        .map(|p| p.display().to_string()),
+                }));
+                self.install_learned(limits, out);
+            }
+            Err(e) => {
+                out.push(Output::Log {
+                    level: Level::Warn,
+                    characteristic: self.cfg.id.clone(),
+                    message: format!(
+                        "the baseline of {} subgroups gives no limits yet ({e}); learning goes on with the newest subgroups",
+                        baseline.len()
+                    ),
+                });
+                baseline.remove(0);
+            }
+        }
+    }
+
+    /// [`CharEngine::maybe_learn`] for an attribute chart: the attribute study with automatic
+    /// exclusion, at the baseline's most common sample size.
+    fn learn_attribute(
+        &mut self,
+        a: crate::stats::attributes::AttributeChart,
+        time_ms: i64,
+        out: &mut Vec<Output>,
+    ) {
+        use crate::stats::attributes::AttributeSample;
+        let Mode::Learning { baseline } = &mut self.mode else {
+            return;
+        };
+        let samples: Vec<AttributeSample> = baseline
+            .iter()
+            .map(|b| AttributeSample {
+                count: b.first().copied().unwrap_or(0.0),
+                size: b.get(1).copied().unwrap_or(1.0),
+            })
+            .collect();
+        // The nominal size: the one most subgroups have (all of them for np and c).
+        let mut sizes: Vec<u64> = samples.iter().map(|s| s.size.round() as u64).collect();
+        sizes.sort_unstable();
+        let nominal = sizes
+            .chunk_by(|x, y| x == y)
+            .max_by_key(|c| c.len())
+            .map_or(1, |c| c[0])
+            .max(1) as usize;
+        let policy = crate::stats::learning::POLICY;
+        // One round of exclusion beyond the 3-sigma trial limits (the attribute study's), at
+        // most a tenth of the baseline, as the policy says for variables.
+        let result = crate::stats::attributes::study(a, &samples, &[], true, policy.rounds)
+            .and_then(|s| {
+                let most = (policy.max_fraction * s.samples_total as f64).floor() as usize;
+                if s.excluded.len() > most {
+                    Err(crate::stats::StatsError::BadParameter {
+                        name: "subgroups beyond the trial limits",
+                        value: s.excluded.len() as f64,
+                        expected: "at most a tenth of the baseline (more means the baseline was not stable)",
+                    })
+                } else if s.parameter > 0.0 {
+                    Ok(s)
+                } else {
+                    Err(crate::stats::StatsError::BadParameter {
+                        name: "centre",
+                        value: 0.0,
+                        expected: "some nonconformities in the baseline (with none, the limits collapse to zero and every later find would signal)",
+                    })
+                }
+            });
+        match result {
+            Ok(s) => {
+                let when = crate::format::utc_ms(time_ms).replace(".000Z", "Z");
+                let mut limits = StoredLimits::from_attribute_study(
+                    &s,
+                    nominal,
+                    &self.cfg.id,
+                    "learning",
+                    &when,
+                );
+                limits.provenance.provisional = true;
+                let basis = basis_of(&limits, &self.cfg);
+                let clamped = if limits.location.lcl == 0.0 {
+                    " (the lower limit is below zero and is set to zero: a subgroup cannot fall below it)"
+                } else {
+                    ""
+                };
+                let (lcl, ucl) = (
+                    basis.with_unit_pub(limits.location.lcl),
+                    basis.with_unit_pub(limits.location.ucl),
+                );
+                let mut message = format!(
+                    "provisional limits learned from {} subgroups ({} excluded): {} chart, centre {}, limits {lcl} to {ucl} at {nominal} units inspected{clamped}. Until an engineer approves them (linewarden approve {} --by NAME) alerts on them are at most {}",
+                    s.samples_total,
+                    s.excluded.len(),
+                    a.name(),
+                    basis.with_unit_pub(limits.location.center),
                     self.cfg.id,
                     self.cfg.provisional_severity.name(),
                 );
@@ -1308,6 +1567,7 @@ impl CharEngine {
                     n: sg.n,
                     mean: sg.mean,
                     dispersion: sg.dispersion,
+                    attribute: sg.found.zip(sg.inspected),
                 });
             }
         }
@@ -1333,7 +1593,55 @@ fn basis_of(l: &StoredLimits, c: &Characteristic) -> ChartBasis {
         b.unit = c.unit.clone();
     }
     b.decimals = c.decimals;
+    b.below_severity = c.attribute.as_ref().and_then(|a| a.below_severity);
     b
+}
+
+/// Checks a reading of an attribute characteristic: a whole count of zero or more; on p and
+/// np one unit's result (0 or 1) or a batch's count no larger than the units inspected; a
+/// batch of at least one unit.
+fn check_attribute(
+    id: &str,
+    chart: crate::stats::attributes::AttributeChart,
+    inc: &Incoming,
+) -> Result<(), String> {
+    use crate::stats::attributes::AttributeChart;
+    let v = inc.value;
+    let per_unit = matches!(chart, AttributeChart::P | AttributeChart::Np);
+    let what = if per_unit {
+        "nonconforming count"
+    } else {
+        "defect count"
+    };
+    if !v.is_finite() {
+        return Err(format!("{v} is not a {what}"));
+    }
+    if v < 0.0 || v.fract() != 0.0 {
+        return Err(format!(
+            "{} is not a {what} of {id}: it must be a whole number of zero or more",
+            num(v)
+        ));
+    }
+    match inc.inspected {
+        Some(n) if !(n.is_finite() && n > 0.0) => Err(format!(
+            "{} units inspected is not a batch: it must be more than zero",
+            num(n)
+        )),
+        Some(n) if per_unit && n.fract() != 0.0 => Err(format!(
+            "{} units inspected is not a whole number of parts",
+            num(n)
+        )),
+        Some(n) if per_unit && v > n => Err(format!(
+            "{} nonconforming of {} inspected: a batch cannot have more nonconforming parts than it has parts",
+            num(v),
+            num(n)
+        )),
+        None if per_unit && v > 1.0 => Err(format!(
+            "{} is not one part's result for {id}: 1 is nonconforming, 0 conforming (a batch's count needs its units inspected)",
+            num(v)
+        )),
+        _ => Ok(()),
+    }
 }
 
 /// What the reading rules judge a reading against: the specification, and the decimals of a

@@ -17,8 +17,9 @@ use serde::{Deserialize, Serialize};
 use super::config::{ChartSide, Rule, RuleKind, RuleSet};
 use super::{PointRef, Side, Violation};
 use crate::format::num;
-use crate::limits_file::StoredLimits;
+use crate::limits_file::{ChartKind, StoredLimits};
 use crate::stats::Limits;
+use crate::stats::attributes::AttributeChart;
 use crate::stats::cusum::{CusumDesign, CusumState};
 use crate::stats::ewma::{EwmaDesign, EwmaState};
 use crate::stats::variables::{self, DispersionKind, VariablesChart};
@@ -26,7 +27,9 @@ use crate::stats::variables::{self, DispersionKind, VariablesChart};
 /// What the points are judged against: the centre, sigma and limits in force.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ChartBasis {
-    pub chart: VariablesChart,
+    /// A variables chart, or an attribute chart (whose `sigma` is that of the plotted value
+    /// at `nominal_n` units, and whose other sizes get their own limits from the centre).
+    pub chart: ChartKind,
     pub center: f64,
     /// Within-subgroup sigma of single readings.
     pub sigma: f64,
@@ -41,19 +44,41 @@ pub struct ChartBasis {
     /// Decimals of the figures in messages; derived from sigma when not set.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub decimals: Option<usize>,
+    /// Attribute charts: the severity of a point below the lower limit (fewer nonconforming
+    /// than the process makes: an improvement, or a tester that stopped finding them), when
+    /// it is not the rule's own.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub below_severity: Option<super::Severity>,
 }
 
 impl ChartBasis {
     /// Decimals of the figures in messages: as configured, or one past what the spread of a
-    /// plotted point resolves.
+    /// plotted point resolves (for a p chart, of the percentage).
     pub fn decimals(&self) -> usize {
-        self.decimals
-            .unwrap_or_else(|| crate::format::decimals_for(self.sigma_point(self.nominal_n)))
+        self.decimals.unwrap_or_else(|| {
+            if self.chart == ChartKind::Attribute(AttributeChart::P) {
+                // A percentage, to a tenth at least: "14.0%".
+                crate::format::decimals_for(100.0 * self.sigma_point(self.nominal_n)).max(1)
+            } else {
+                crate::format::decimals_for(self.sigma_point(self.nominal_n))
+            }
+        })
+    }
+
+    /// The attribute chart, when it is one.
+    pub fn attribute(&self) -> Option<AttributeChart> {
+        self.chart.attribute()
     }
 
     /// A value and the limit it is compared with, with the unit, never printing equal when
     /// they differ.
     fn pair_with_unit(&self, v: f64, limit: f64) -> (String, String) {
+        if let Some(a) = self.attribute() {
+            let scale = if a == AttributeChart::P { 100.0 } else { 1.0 };
+            let (x, y) = crate::format::fixed_pair(scale * v, scale * limit, self.decimals());
+            let unit = attribute_unit(a);
+            return (format!("{x}{unit}"), format!("{y}{unit}"));
+        }
         let (a, b) = crate::format::fixed_pair(v, limit, self.decimals());
         if self.unit.is_empty() {
             (a, b)
@@ -70,21 +95,51 @@ impl ChartBasis {
             sigma: l.sigma.within,
             nominal_n: l.subgroup_size,
             location: l.location,
-            dispersion: Limits {
-                center: l.dispersion.center,
-                ucl: l.dispersion.ucl,
-                lcl: l.dispersion.lcl,
-            },
+            // An attribute chart has none; `dispersion_for` says so.
+            dispersion: l.dispersion.as_ref().map_or(
+                Limits {
+                    center: 0.0,
+                    ucl: 0.0,
+                    lcl: 0.0,
+                },
+                |d| Limits {
+                    center: d.center,
+                    ucl: d.ucl,
+                    lcl: d.lcl,
+                },
+            ),
             unit: l.unit.clone().unwrap_or_default(),
             decimals: None,
+            below_severity: None,
         }
+    }
+
+    /// The centre parameter of an attribute chart: p̄, c̄ or ū.
+    fn parameter(&self, a: AttributeChart) -> f64 {
+        match a {
+            AttributeChart::Np => self.center / self.nominal_n.max(1) as f64,
+            _ => self.center,
+        }
+    }
+
+    /// Standard deviation of the plotted value of a subgroup of `size` units inspected, and
+    /// its limits (attribute charts, where the size need not be whole).
+    pub fn attribute_at(&self, a: AttributeChart, size: f64) -> (f64, Limits) {
+        if size == self.nominal_n as f64 {
+            return (self.sigma, self.location);
+        }
+        let p = self.parameter(a);
+        (
+            crate::limits_file::attribute_sigma(a, p, size),
+            a.limits(p, size),
+        )
     }
 
     /// A standardized basis: centre 0, sigma 1, 3-sigma limits, subgroups of one. Used for
     /// average run lengths and tests.
     pub fn standard() -> Self {
         ChartBasis {
-            chart: VariablesChart::Individuals,
+            chart: ChartKind::Variables(VariablesChart::Individuals),
             center: 0.0,
             sigma: 1.0,
             nominal_n: 1,
@@ -101,40 +156,62 @@ impl ChartBasis {
                 }),
             unit: String::new(),
             decimals: None,
+            below_severity: None,
         }
     }
 
-    /// Standard deviation of a plotted mean of `n` readings.
+    /// Standard deviation of a plotted point of `n` readings (of `n` units inspected on an
+    /// attribute chart).
     pub fn sigma_point(&self, n: usize) -> f64 {
-        self.sigma / (n.max(1) as f64).sqrt()
+        match self.attribute() {
+            Some(a) => self.attribute_at(a, n as f64).0,
+            None => self.sigma / (n.max(1) as f64).sqrt(),
+        }
     }
 
-    /// Location limits for a subgroup of `n`.
+    /// Location limits for a subgroup of `n` (units inspected on an attribute chart).
     pub fn location_for(&self, n: usize) -> Limits {
         if n == self.nominal_n {
-            self.location
-        } else {
-            variables::location_limits(self.center, self.sigma, n)
+            return self.location;
+        }
+        match self.attribute() {
+            Some(a) => self.attribute_at(a, n as f64).1,
+            None => variables::location_limits(self.center, self.sigma, n),
         }
     }
 
     /// Dispersion limits for a subgroup of `n`, when that size has a dispersion chart.
     pub fn dispersion_for(&self, n: usize) -> Option<Limits> {
+        let kind = self.chart.variables()?.dispersion_kind();
         if n == self.nominal_n {
             return Some(self.dispersion);
         }
-        let kind = self.chart.dispersion_kind();
         variables::dispersion_limits(kind, self.sigma, n).ok()
     }
 
     fn value_words(&self) -> (&'static str, &'static str) {
         match self.chart {
-            VariablesChart::Individuals => ("reading", "readings"),
-            _ => ("subgroup mean", "subgroup means"),
+            ChartKind::Variables(VariablesChart::Individuals) => ("reading", "readings"),
+            ChartKind::Variables(_) => ("subgroup mean", "subgroup means"),
+            ChartKind::Attribute(_) => ("subgroup", "subgroups"),
         }
     }
 
+    /// A value of the chart as people read it: with its unit, or as a percentage or count on
+    /// an attribute chart.
+    pub fn with_unit_pub(&self, v: f64) -> String {
+        self.with_unit(v)
+    }
+
     fn with_unit(&self, v: f64) -> String {
+        if let Some(a) = self.attribute() {
+            let scale = if a == AttributeChart::P { 100.0 } else { 1.0 };
+            return format!(
+                "{}{}",
+                crate::format::fixed(scale * v, self.decimals()),
+                attribute_unit(a)
+            );
+        }
         let v = crate::format::fixed(v, self.decimals());
         if self.unit.is_empty() {
             v
@@ -162,6 +239,20 @@ pub struct Plotted {
     pub mean: f64,
     /// The dispersion value (range, standard deviation or moving range), if there is one.
     pub dispersion: Option<f64>,
+    /// Attribute charts: the count found (nonconforming units or defects) and the units
+    /// inspected (`mean` is then the plotted p, np, c or u).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub attribute: Option<(f64, f64)>,
+}
+
+/// What follows a plotted attribute value: "%" for p, a noun for the counts.
+fn attribute_unit(a: AttributeChart) -> &'static str {
+    match a {
+        AttributeChart::P => "%",
+        AttributeChart::Np => " nonconforming",
+        AttributeChart::C => " defects",
+        AttributeChart::U => " defects per unit",
+    }
 }
 
 /// The running state of one rule.
@@ -220,6 +311,9 @@ pub struct PointEvaluator {
     basis: ChartBasis,
     keep: usize,
     state: PointState,
+    /// The count found and units inspected of the point being judged (attribute charts), for
+    /// its messages.
+    current: Option<(f64, f64)>,
 }
 
 /// Bit `i` set when rule `i` (of the point rules, in order) fired on the location chart.
@@ -242,6 +336,7 @@ impl PointEvaluator {
                 last_z: None,
                 rules: states,
             },
+            current: None,
         }
     }
 
@@ -310,11 +405,17 @@ impl PointEvaluator {
 
     /// Evaluates one plotted subgroup and returns every violation it completes.
     pub fn evaluate(&mut self, p: &Plotted) -> Vec<Violation> {
-        let sigma_point = self.basis.sigma_point(p.n);
-        let z = (p.mean - self.basis.center) / sigma_point;
-        let loc = self.basis.location_for(p.n);
-        let zu = (loc.ucl - self.basis.center) / sigma_point;
-        let zl = (loc.lcl - self.basis.center) / sigma_point;
+        // An attribute chart's point is judged at its own size (p and u: z on the limits for
+        // that many units, so the zone and run rules read the standardized value); a lower
+        // limit clamped at zero cannot be passed.
+        let (sigma_point, loc) = match (self.basis.attribute(), p.attribute) {
+            (Some(a), Some((_, size))) => self.basis.attribute_at(a, size),
+            _ => (self.basis.sigma_point(p.n), self.basis.location_for(p.n)),
+        };
+        self.current = p.attribute;
+        let z = (p.mean - loc.center) / sigma_point;
+        let zu = (loc.ucl - loc.center) / sigma_point;
+        let zl = (loc.lcl - loc.center) / sigma_point;
         let here = PointRef {
             number: p.number,
             time_ms: p.time_ms,
@@ -422,6 +523,58 @@ impl PointEvaluator {
             Violation::new(rule, message, points, statistic, limit, side)
         };
         match (&rule.kind, &self.state.rules[i]) {
+            (RuleKind::BeyondLimits { .. }, _) if b.attribute().is_some() => {
+                let a = b.attribute().expect("matched as an attribute chart");
+                let (limit, which) = match side {
+                    Side::Above => (loc.ucl, "upper"),
+                    Side::Below => (loc.lcl, "lower"),
+                };
+                let (value_text, limit_text) = b.pair_with_unit(current.value, limit);
+                let (found, size) = self.current.unwrap_or((current.value, b.nominal_n as f64));
+                let seen = match a {
+                    AttributeChart::P => format!(
+                        "{} of {} parts nonconforming ({value_text})",
+                        num(found),
+                        num(size)
+                    ),
+                    AttributeChart::Np => {
+                        format!("{} of {} parts nonconforming", num(found), num(size))
+                    }
+                    AttributeChart::C => format!(
+                        "{} defects in {} unit{}",
+                        num(found),
+                        num(size),
+                        if size == 1.0 { "" } else { "s" }
+                    ),
+                    AttributeChart::U => format!(
+                        "{} defects in {} units ({value_text})",
+                        num(found),
+                        num(size)
+                    ),
+                };
+                let meaning = match side {
+                    Side::Above => match a {
+                        AttributeChart::P | AttributeChart::Np => {
+                            "the process is making more nonconforming parts than it did"
+                        }
+                        _ => "the process is making more defects than it did",
+                    },
+                    Side::Below => {
+                        "fewer than the process makes: a real improvement, or a tester or inspection that stopped finding them (check it with a known bad part)"
+                    }
+                };
+                let mut v = mk(
+                    format!("{seen} is {words} the {which} limit {limit_text}; {meaning}"),
+                    vec![current],
+                    current.value,
+                    limit,
+                    Some(side),
+                );
+                if let (Side::Below, Some(s)) = (side, b.below_severity) {
+                    v.severity = s;
+                }
+                v
+            }
             (RuleKind::BeyondLimits { .. }, _) => {
                 let (limit, which) = match side {
                     Side::Above => (loc.ucl, "upper"),
@@ -602,7 +755,11 @@ impl PointEvaluator {
 
     fn dispersion_violation(&self, rule: &Rule, p: &Plotted, d: f64, lim: &Limits) -> Violation {
         let b = &self.basis;
-        let name = match b.chart.dispersion_kind() {
+        let kind = b
+            .chart
+            .variables()
+            .map_or(DispersionKind::Range, |c| c.dispersion_kind());
+        let name = match kind {
             DispersionKind::Range => "subgroup range",
             DispersionKind::StdDev => "subgroup standard deviation",
             DispersionKind::MovingRange => "moving range",

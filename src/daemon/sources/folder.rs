@@ -256,6 +256,9 @@ async fn process(
             arrival_ms: arrival,
             part,
             source_key: Some(source_key),
+            word: None,
+            inspected: None,
+            sent: None,
         });
         if tx.send(ev).await.is_err() {
             return false;

@@ -84,7 +84,12 @@ pub fn matches(filter: &str, topic: &str) -> bool {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Parsed {
     pub characteristic: String,
+    /// The number sent; not a number when a word was sent instead.
     pub value: f64,
+    /// The word sent instead of a number ("NOK", `true`), for the engine to map.
+    pub word: Option<String>,
+    /// Units inspected, for a batch result.
+    pub inspected: Option<f64>,
     pub time_ms: Option<i64>,
     pub part: Option<String>,
 }
@@ -118,15 +123,23 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                         "neither the topic nor the config names the characteristic".into(),
                     )
                 })?;
-            let value = text.trim().parse::<f64>().map_err(|_| {
-                fail(
-                    Some(characteristic.clone()),
-                    format!("{:?} is not a number", clip(text)),
-                )
-            })?;
+            let (value, word) = match text.trim().parse::<f64>() {
+                Ok(v) => (v, None),
+                // A short word may be a pass/fail station's result; the characteristic's word
+                // lists decide.
+                Err(_) if is_word(text.trim()) => (f64::NAN, Some(text.trim().to_string())),
+                Err(_) => {
+                    return Err(fail(
+                        Some(characteristic.clone()),
+                        format!("{:?} is not a number", clip(text)),
+                    ));
+                }
+            };
             Ok(Parsed {
                 characteristic,
                 value,
+                word,
+                inspected: None,
                 time_ms: None,
                 part: None,
             })
@@ -136,6 +149,7 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
             time,
             characteristic,
             part,
+            inspected,
         } => {
             let doc: serde_json::Value = serde_json::from_str(text).map_err(|e| {
                 fail(
@@ -169,12 +183,18 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                     )
                 })?;
             let c = Some(characteristic.clone());
-            let v = match doc.pointer(value) {
-                Some(serde_json::Value::Number(n)) => n.as_f64(),
-                Some(serde_json::Value::String(s)) => s.trim().parse::<f64>().ok(),
-                _ => None,
-            }
-            .ok_or_else(|| {
+            let (v, word) = match doc.pointer(value) {
+                Some(serde_json::Value::Number(n)) => (n.as_f64(), None),
+                Some(serde_json::Value::String(s)) => match s.trim().parse::<f64>() {
+                    Ok(v) => (Some(v), None),
+                    Err(_) if is_word(s.trim()) => (Some(f64::NAN), Some(s.trim().to_string())),
+                    Err(_) => (None, None),
+                },
+                // A pass/fail result; what true means is the characteristic's word lists'.
+                Some(serde_json::Value::Bool(b)) => (Some(f64::NAN), Some(b.to_string())),
+                _ => (None, None),
+            };
+            let v = v.ok_or_else(|| {
                 fail(
                     c.clone(),
                     match doc.pointer(value) {
@@ -215,14 +235,49 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                 Some(serde_json::Value::Number(n)) => Some(n.to_string()),
                 _ => None,
             };
+            let inspected = match inspected {
+                None => None,
+                Some(ptr) => match doc.pointer(ptr) {
+                    Some(serde_json::Value::Number(n)) => n.as_f64(),
+                    Some(serde_json::Value::String(s)) => match s.trim().parse::<f64>() {
+                        Ok(n) => Some(n),
+                        Err(_) => {
+                            return Err(fail(
+                                c,
+                                format!("{ptr} = {:?} is not a number of units inspected", clip(s)),
+                            ));
+                        }
+                    },
+                    None => {
+                        return Err(fail(
+                            c,
+                            format!("no units inspected at {ptr} in {:?}", clip(text)),
+                        ));
+                    }
+                    Some(other) => {
+                        return Err(fail(
+                            c,
+                            format!("{ptr} is {other}, not a number of units inspected"),
+                        ));
+                    }
+                },
+            };
             Ok(Parsed {
                 characteristic,
                 value: v,
+                word,
+                inspected,
                 time_ms,
                 part,
             })
         }
     }
+}
+
+/// Whether `s` may be a word a pass/fail station sends ("OK", "NOK", "PASS"): 1 to 40
+/// printable characters.
+fn is_word(s: &str) -> bool {
+    !s.is_empty() && s.chars().count() <= 40 && !s.chars().any(char::is_control)
 }
 
 fn clip(s: &str) -> String {
@@ -507,6 +562,15 @@ fn message_event(
                 arrival_ms: arrival,
                 part: r.part,
                 source_key: key,
+                sent: r.word.as_ref().map(|_| {
+                    format!(
+                        "{}: {}",
+                        p.topic,
+                        clip(&String::from_utf8_lossy(first_bytes(&p.payload)))
+                    )
+                }),
+                word: r.word,
+                inspected: r.inspected,
             })
         }
         Err(u) => rejected(u.characteristic, u.reason, key),
@@ -674,8 +738,16 @@ mod tests {
         let plain = source(Payload::Plain, "cell4/{characteristic}/raw", None);
         let r = parse(&plain, "cell4/bore/raw", b" 12.0031\n").unwrap();
         assert_eq!((r.characteristic.as_str(), r.value), ("bore", 12.0031));
-        let e = parse(&plain, "cell4/bore/raw", b"12.0O31").unwrap_err();
+        // A short word goes on to the engine, which maps it for a pass/fail characteristic and
+        // rejects it for a measured one; text that cannot be a word is refused here.
+        let r = parse(&plain, "cell4/bore/raw", b"12.0O31").unwrap();
+        assert_eq!(r.word.as_deref(), Some("12.0O31"));
+        assert!(r.value.is_nan());
+        let long = "x".repeat(41);
+        let e = parse(&plain, "cell4/bore/raw", long.as_bytes()).unwrap_err();
         assert_eq!(e.characteristic.as_deref(), Some("bore"));
+        assert!(e.reason.contains("is not a number"), "{}", e.reason);
+        let e = parse(&plain, "cell4/bore/raw", b"  \n").unwrap_err();
         assert!(e.reason.contains("is not a number"), "{}", e.reason);
         let json = source(
             Payload::Json {
@@ -683,6 +755,7 @@ mod tests {
                 time: Some("/t".into()),
                 characteristic: Some("/c".into()),
                 part: Some("/p".into()),
+                inspected: None,
             },
             "lab/#",
             None,
@@ -704,11 +777,50 @@ mod tests {
         )
         .unwrap();
         assert_eq!(r.time_ms, Some(1_796_198_400_250));
+        // A pass/fail result: true and a word go on as words, for the characteristic's lists.
+        let r = parse(&json, "lab/x", br#"{"m": {"v": true}, "c": "leak"}"#).unwrap();
+        assert_eq!(r.word.as_deref(), Some("true"));
+        let r = parse(&json, "lab/x", br#"{"m": {"v": " NOK "}, "c": "leak"}"#).unwrap();
+        assert_eq!(r.word.as_deref(), Some("NOK"));
+        // A batch: the count and the units inspected.
+        let batch = source(
+            Payload::Json {
+                value: "/bad".into(),
+                time: None,
+                characteristic: None,
+                part: None,
+                inspected: Some("/tested".into()),
+            },
+            "eol/{characteristic}",
+            None,
+        );
+        let r = parse(&batch, "eol/leak", br#"{"bad": 3, "tested": "50"}"#).unwrap();
+        assert_eq!((r.value, r.inspected), (3.0, Some(50.0)));
+        for (payload, why) in [
+            (&br#"{"bad": 3}"#[..], "no units inspected at /tested"),
+            (
+                br#"{"bad": 3, "tested": "many"}"#,
+                "is not a number of units inspected",
+            ),
+            (
+                br#"{"bad": 3, "tested": null}"#,
+                "/tested is null, not a number of units inspected",
+            ),
+        ] {
+            let e = parse(&batch, "eol/leak", payload).unwrap_err();
+            assert!(
+                e.reason.contains(why),
+                "{}: {}",
+                String::from_utf8_lossy(payload),
+                e.reason
+            );
+            assert_eq!(e.characteristic.as_deref(), Some("leak"));
+        }
         for (payload, why) in [
             (&br#"{"m": {}, "c": "face"}"#[..], "no value at /m/v"),
             (
-                br#"{"m": {"v": true}, "c": "face"}"#,
-                "/m/v is true, not a number",
+                br#"{"m": {"v": [1]}, "c": "face"}"#,
+                "/m/v is [1], not a number",
             ),
             (
                 br#"{"m": {"v": 1}, "c": "face", "t": "yesterday"}"#,
@@ -785,6 +897,7 @@ mod tests {
                 time: Some("/t".into()),
                 characteristic: None,
                 part: None,
+                inspected: None,
             },
             "cell4/{characteristic}/m",
             None,
@@ -833,6 +946,8 @@ mod tests {
                     arrival_ms: arrival,
                     part: None,
                     source_key: None,
+                    word: None,
+                    inspected: None,
                 }
             );
         }

@@ -2,8 +2,9 @@
 //! demo and the tests; its readings are stamped with the time they are replayed.
 //!
 //! Each line: `{"t_ms": 2000, "characteristic": "vb210-bore", "value": 12.0031, "part": "VB00001"}`,
-//! or `"raw": "..."` instead of `"value"` for output a gauge could not make sense of. `t_ms` is
-//! the time since the start of the recording.
+//! or `"raw": "..."` instead of `"value"` for output a gauge could not make sense of, or
+//! `"result": "NOK"` for the word a pass/fail station sent; `"inspected": 50` with a value makes
+//! it a batch's count. `t_ms` is the time since the start of the recording.
 
 use std::path::PathBuf;
 use std::time::Duration;
@@ -23,6 +24,8 @@ struct Line {
     characteristic: String,
     value: Option<f64>,
     raw: Option<String>,
+    result: Option<String>,
+    inspected: Option<f64>,
     part: Option<String>,
 }
 
@@ -91,7 +94,10 @@ pub async fn run(
             }
         }
         let arrival = now_ms();
-        let ev = match (parsed.value, parsed.raw) {
+        let ev = match (
+            parsed.value.or(parsed.result.as_ref().map(|_| f64::NAN)),
+            parsed.raw,
+        ) {
             (Some(value), None) => SourceEvent::Reading(Incoming {
                 source: name.clone(),
                 characteristic: parsed.characteristic,
@@ -102,6 +108,9 @@ pub async fn run(
                 arrival_ms: arrival,
                 part: parsed.part,
                 source_key: Some(format!("{}:{line_no}", file.display())),
+                word: parsed.result.map(|r| r.trim().to_string()),
+                inspected: parsed.inspected,
+                sent: None,
             }),
             (_, raw) => SourceEvent::Unreadable {
                 source: name.clone(),

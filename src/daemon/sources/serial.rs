@@ -322,5 +322,8 @@ pub fn frame_event(
         arrival_ms: now_ms(),
         part: None,
         source_key: None,
+        word: None,
+        inspected: None,
+        sent: None,
     }))
 }

@@ -1,0 +1,406 @@
+//! `limits --chart p|np|c|u` and `capability --chart p|np`: attribute charts at the desk, from a
+//! file of samples (a count column and a size column).
+
+use anyhow::{Context, Result, bail};
+use serde_json::json;
+
+use linewarden::format::{fixed, fixed_pair};
+use linewarden::input::{CountOptions, ParsedCounts};
+use linewarden::limits_file::StoredLimits;
+use linewarden::stats::attributes::{self, AttributeCapability, AttributeChart, AttributeStudy};
+
+use super::study::{CapabilityArgs, ExcludeArgs, InputArgs, LimitsArgs, delimiter_byte};
+
+/// Reads the samples of an attribute chart from the file `input` names.
+fn read_samples(input: &InputArgs, chart: AttributeChart) -> Result<ParsedCounts> {
+    let name = input.input.display().to_string();
+    let text = std::fs::read_to_string(&input.input)
+        .with_context(|| format!("cannot read input file {name}"))?;
+    let delimiter = delimiter_byte(&input.delimiter)?;
+    if input.decimal_comma && delimiter == b',' {
+        bail!(
+            "--decimal-comma with ',' between fields cannot tell a field from a decimal; such files use ';' (--delimiter ';')"
+        );
+    }
+    let size_column = match (&input.size_column, chart) {
+        (Some(c), _) => Some(c.clone()),
+        // A c chart's samples are inspection units of one size: a size column is optional.
+        (None, AttributeChart::C) => None,
+        (None, _) => Some("size".to_string()),
+    };
+    let opts = CountOptions {
+        count_column: input
+            .count_column
+            .clone()
+            .unwrap_or_else(|| "count".to_string()),
+        size_column,
+        proportion: matches!(chart, AttributeChart::P | AttributeChart::Np),
+        delimiter,
+        decimal_comma: input.decimal_comma,
+    };
+    Ok(linewarden::input::parse_counts(&text, &name, &opts)?)
+}
+
+/// The study of an attribute chart with the exclusions asked for.
+fn run(
+    chart: AttributeChart,
+    parsed: &ParsedCounts,
+    exclude: &ExcludeArgs,
+    name: &str,
+) -> Result<AttributeStudy> {
+    if exclude.sigma_estimator != "auto" {
+        bail!(
+            "--sigma-estimator applies to measured subgroups; an attribute chart's sigma follows from its centre"
+        );
+    }
+    attributes::study(
+        chart,
+        &parsed.samples,
+        &exclude.exclude,
+        exclude.auto_exclude,
+        exclude.max_iterations,
+    )
+    .with_context(|| format!("{name}: the study failed"))
+}
+
+/// The size most samples have (the limits file's nominal size).
+fn nominal_size(parsed: &ParsedCounts) -> usize {
+    let mut sizes: Vec<u64> = parsed
+        .samples
+        .iter()
+        .map(|s| s.size.round() as u64)
+        .collect();
+    sizes.sort_unstable();
+    sizes
+        .chunk_by(|a, b| a == b)
+        .max_by_key(|c| c.len())
+        .map_or(1, |c| c[0])
+        .max(1) as usize
+}
+
+/// Decimals for a chart's plotted values: fractions and rates to four, counts to two.
+fn decimals(chart: AttributeChart) -> usize {
+    match chart {
+        AttributeChart::P | AttributeChart::U => 4,
+        AttributeChart::Np | AttributeChart::C => 2,
+    }
+}
+
+fn chart_words(chart: AttributeChart) -> &'static str {
+    match chart {
+        AttributeChart::P => "p chart (fraction nonconforming)",
+        AttributeChart::Np => "np chart (number nonconforming)",
+        AttributeChart::C => "c chart (defects per inspection)",
+        AttributeChart::U => "u chart (defects per unit)",
+    }
+}
+
+/// The capability of the samples used, for p and np: the fraction nonconforming with its exact
+/// interval.
+fn capability(
+    chart: AttributeChart,
+    s: &AttributeStudy,
+    parsed: &ParsedCounts,
+) -> Result<Option<AttributeCapability>> {
+    if !matches!(chart, AttributeChart::P | AttributeChart::Np) {
+        return Ok(None);
+    }
+    let used = |i: &usize| !s.excluded.iter().any(|e| e.subgroup == i + 1);
+    let (x, n) = (0..parsed.samples.len())
+        .filter(used)
+        .fold((0u64, 0u64), |(x, n), i| {
+            let sm = &parsed.samples[i];
+            (x + sm.count as u64, n + sm.size as u64)
+        });
+    Ok(Some(attributes::attribute_capability(x, n, 0.95)?))
+}
+
+fn capability_text(c: &AttributeCapability) -> String {
+    let pct = |p: f64| format!("{}%", fixed(100.0 * p, 2));
+    let z = |v: f64| {
+        if v.is_infinite() {
+            "infinite".to_string()
+        } else {
+            fixed(v, 2)
+        }
+    };
+    format!(
+        "\nCapability (attribute data: the samples used)\n  fraction nonconforming  {} of {} = {} ({}), 95% exact interval (Clopper-Pearson) {} to {}\n  ppm                     {} (95%: {} to {})\n  equivalent normal Z     {} (95%: {} to {}); the Z a normal process would have with this fraction beyond one specification limit, Φ⁻¹(1 − p). Not a Cpk: no measurement stands behind it\n",
+        c.nonconforming,
+        c.inspected,
+        fixed(c.fraction, 4),
+        pct(c.fraction),
+        pct(c.fraction_low),
+        pct(c.fraction_high),
+        fixed(c.ppm, 0),
+        fixed(c.ppm_low, 0),
+        fixed(c.ppm_high, 0),
+        z(c.z),
+        z(c.z_low),
+        z(c.z_high),
+    )
+}
+
+fn capability_json(c: &AttributeCapability) -> serde_json::Value {
+    // JSON has no infinity: no nonconforming part gives a null Z.
+    let z = |v: f64| if v.is_finite() { json!(v) } else { json!(null) };
+    json!({
+        "nonconforming": c.nonconforming,
+        "inspected": c.inspected,
+        "confidence": c.confidence,
+        "fraction": c.fraction,
+        "fraction_low": c.fraction_low,
+        "fraction_high": c.fraction_high,
+        "ppm": c.ppm,
+        "ppm_low": c.ppm_low,
+        "ppm_high": c.ppm_high,
+        "equivalent_normal_z": z(c.z),
+        "equivalent_normal_z_low": z(c.z_low),
+        "equivalent_normal_z_high": z(c.z_high),
+    })
+}
+
+/// `limits --chart p|np|c|u`.
+pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
+    let Some(input) = &a.input else {
+        bail!(
+            "--chart {} at the desk reads a file of samples (--input FILE with count and size columns); the attribute characteristics' subgroups in the archive are listed by linewarden archive export",
+            chart.name()
+        );
+    };
+    if a.spec.lsl.is_some() || a.spec.usl.is_some() || a.spec.target.is_some() {
+        bail!(
+            "--lsl, --usl and --target do not apply to a {} chart: it counts nonconforming parts or defects; its capability is the fraction nonconforming",
+            chart.name()
+        );
+    }
+    if a.unit.is_some() {
+        bail!(
+            "--unit does not apply to a {} chart: its values are counts and fractions",
+            chart.name()
+        );
+    }
+    let name = input.input.display().to_string();
+    let parsed = read_samples(input, chart)?;
+    let s = run(chart, &parsed, &a.exclude, &name)?;
+    if s.parameter <= 0.0 {
+        bail!(
+            "{name}: no nonconformities at all in {} samples: the {} chart's limits collapse to zero and every later find would signal; take a longer baseline",
+            s.samples_total,
+            chart.name()
+        );
+    }
+    let nominal = nominal_size(&parsed);
+    let cap = capability(chart, &s, &parsed)?;
+    if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
+        let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
+        let mut stored = StoredLimits::from_attribute_study(&s, nominal, id, &name, &now);
+        if let Some(by) = &a.approved_by {
+            if by.trim().is_empty() {
+                bail!(
+                    "--approved-by is empty; give the name of the engineer who approves the limits"
+                );
+            }
+            stored.approved = Some(linewarden::limits_file::Approval {
+                by: by.trim().to_string(),
+                at: now.clone(),
+                note: a.approval_note.clone(),
+            });
+        }
+        stored.write(path)?;
+        eprintln!("wrote limits for {id} to {}", path.display());
+    }
+    let d = decimals(chart);
+    let plotted: Vec<f64> = parsed.samples.iter().map(|x| chart.plotted(x)).collect();
+    let included = |i: usize| !s.excluded.iter().any(|e| e.subgroup == i + 1);
+    // Included samples still beyond the final limits (kept on request or after the last round).
+    let beyond: Vec<usize> = (0..plotted.len())
+        .filter(|&i| included(i) && s.limits[i].beyond(plotted[i]))
+        .collect();
+    if a.json {
+        for w in &s.warnings {
+            eprintln!("warning: {w}");
+        }
+        let v = json!({
+            "chart": chart.name(),
+            "parameter": s.parameter,
+            "nominal_size": nominal,
+            "samples_total": s.samples_total,
+            "samples_used": s.samples_used,
+            "excluded": s.excluded.iter().map(|e| json!({
+                "sample": e.subgroup, "line": parsed.lines[e.subgroup - 1],
+                "reason": e.reason, "iteration": e.iteration,
+            })).collect::<Vec<_>>(),
+            "samples": (0..plotted.len()).map(|i| json!({
+                "sample": i + 1, "line": parsed.lines[i],
+                "count": parsed.samples[i].count, "size": parsed.samples[i].size,
+                "plotted": plotted[i], "center": s.limits[i].center,
+                "ucl": s.limits[i].ucl, "lcl": s.limits[i].lcl,
+                "included": included(i), "beyond": s.limits[i].beyond(plotted[i]),
+            })).collect::<Vec<_>>(),
+            "capability": cap.as_ref().map(capability_json),
+            "warnings": s.warnings,
+        });
+        println!("{}", serde_json::to_string_pretty(&v)?);
+        return Ok(());
+    }
+    let used = |i: &usize| included(*i);
+    let found: f64 = (0..plotted.len())
+        .filter(used)
+        .map(|i| parsed.samples[i].count)
+        .sum();
+    let units: f64 = (0..plotted.len())
+        .filter(used)
+        .map(|i| parsed.samples[i].size)
+        .sum();
+    let mut out = String::new();
+    out.push_str(&format!("Attribute study: {}\n", chart_words(chart)));
+    out.push_str(&format!("  source      {name}\n"));
+    out.push_str(&format!(
+        "  samples     {} ({} used, {} excluded)\n",
+        s.samples_total,
+        s.samples_used,
+        s.excluded.len()
+    ));
+    let centre = match chart {
+        AttributeChart::P | AttributeChart::Np => format!(
+            "p̄ = {} ({} nonconforming of {} inspected)",
+            fixed(s.parameter, 4),
+            linewarden::format::num(found),
+            linewarden::format::num(units)
+        ),
+        AttributeChart::C => format!(
+            "c̄ = {} ({} defects in {} samples)",
+            fixed(s.parameter, 4),
+            linewarden::format::num(found),
+            s.samples_used
+        ),
+        AttributeChart::U => format!(
+            "ū = {} defects per unit ({} defects in {} units)",
+            fixed(s.parameter, 4),
+            linewarden::format::num(found),
+            linewarden::format::num(units)
+        ),
+    };
+    out.push_str(&format!("  centre      {centre}\n"));
+    let at = chart.limits(s.parameter, nominal as f64);
+    let varies = parsed
+        .samples
+        .iter()
+        .any(|x| x.size != parsed.samples[0].size);
+    out.push_str(&format!(
+        "  limits      at {nominal} unit(s): centre {}, UCL {}, LCL {}{}\n",
+        fixed(at.center, d),
+        fixed(at.ucl, d),
+        fixed(at.lcl, d),
+        if varies {
+            "; each sample has the limits of its own size (below)"
+        } else {
+            ""
+        }
+    ));
+    let raw_lcl = 2.0 * at.center - at.ucl;
+    if at.lcl == 0.0 && raw_lcl < 0.0 {
+        out.push_str(&format!(
+            "              the lower limit by the formula, {}, is below zero and is set to zero: no sample can fall below it\n",
+            fixed(raw_lcl, d)
+        ));
+    }
+    for e in &s.excluded {
+        out.push_str(&format!(
+            "  excluded    sample {} (line {}): {}\n",
+            e.subgroup,
+            parsed.lines[e.subgroup - 1],
+            e.reason
+        ));
+    }
+    for &i in &beyond {
+        let lim = s.limits[i];
+        let (word, limit) = if plotted[i] > lim.ucl {
+            ("above the upper", lim.ucl)
+        } else {
+            ("below the lower", lim.lcl)
+        };
+        let (v, l) = fixed_pair(plotted[i], limit, d);
+        out.push_str(&format!(
+            "  beyond      sample {} (line {}): {} {v} is {word} limit {l}, and is kept in the limits\n",
+            i + 1,
+            parsed.lines[i],
+            chart.name()
+        ));
+    }
+    if varies {
+        out.push_str("\n  sample  line     count      size   plotted       LCL       UCL\n");
+        for i in 0..plotted.len() {
+            let lim = s.limits[i];
+            out.push_str(&format!(
+                "  {:>6}  {:>4}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}{}\n",
+                i + 1,
+                parsed.lines[i],
+                linewarden::format::num(parsed.samples[i].count),
+                linewarden::format::num(parsed.samples[i].size),
+                fixed(plotted[i], d),
+                fixed(lim.lcl, d),
+                fixed(lim.ucl, d),
+                if !included(i) {
+                    "  excluded"
+                } else if lim.beyond(plotted[i]) {
+                    "  beyond"
+                } else {
+                    ""
+                }
+            ));
+        }
+    }
+    if let Some(c) = &cap {
+        out.push_str(&capability_text(c));
+    }
+    if !s.warnings.is_empty() {
+        out.push_str("\nWarnings\n");
+        for w in &s.warnings {
+            out.push_str(&format!("  {w}\n"));
+        }
+    }
+    print!("{out}");
+    Ok(())
+}
+
+/// `capability --chart p|np`: the fraction nonconforming of the samples, with its interval.
+pub(crate) fn capability_cmd(a: &CapabilityArgs, chart: AttributeChart) -> Result<()> {
+    if !matches!(chart, AttributeChart::P | AttributeChart::Np) {
+        bail!(
+            "capability --chart {}: the fraction nonconforming is for pass/fail results (p or np); a {} chart counts defects, whose rate the limits study gives (limits --chart {})",
+            chart.name(),
+            chart.name(),
+            chart.name()
+        );
+    }
+    if a.spec.lsl.is_some() || a.spec.usl.is_some() || a.spec.target.is_some() {
+        bail!(
+            "--lsl, --usl and --target do not apply to a {} chart: a part's result is already pass or fail",
+            chart.name()
+        );
+    }
+    let name = a.input.input.display().to_string();
+    let parsed = read_samples(&a.input, chart)?;
+    let s = run(chart, &parsed, &a.exclude, &name)?;
+    let Some(cap) = capability(chart, &s, &parsed)? else {
+        bail!("no capability for the {} chart", chart.name());
+    };
+    if a.json {
+        let mut v = capability_json(&cap);
+        v["chart"] = json!(chart.name());
+        v["samples_used"] = json!(s.samples_used);
+        v["excluded"] = json!(s.excluded.iter().map(|e| e.subgroup).collect::<Vec<_>>());
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    } else {
+        print!(
+            "Capability of {name}: {}, {} of {} samples used\n{}",
+            chart_words(chart),
+            s.samples_used,
+            s.samples_total,
+            capability_text(&cap)
+        );
+    }
+    Ok(())
+}
