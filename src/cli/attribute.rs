@@ -331,20 +331,19 @@ pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
     }
     if varies {
         out.push_str("\n  sample  line     count      size   plotted       LCL       UCL\n");
-        for i in 0..plotted.len() {
-            let lim = s.limits[i];
+        for (i, (&value, lim)) in plotted.iter().zip(&s.limits).enumerate() {
             out.push_str(&format!(
                 "  {:>6}  {:>4}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}{}\n",
                 i + 1,
                 parsed.lines[i],
                 linewarden::format::num(parsed.samples[i].count),
                 linewarden::format::num(parsed.samples[i].size),
-                fixed(plotted[i], d),
+                fixed(value, d),
                 fixed(lim.lcl, d),
                 fixed(lim.ucl, d),
                 if !included(i) {
                     "  excluded"
-                } else if lim.beyond(plotted[i]) {
+                } else if lim.beyond(value) {
                     "  beyond"
                 } else {
                     ""
