@@ -345,13 +345,24 @@ fn hover_of(
     } else {
         s.location
     };
-    let mut text = format!(
-        "subgroup {}, {}: {what} {} (n = {})",
-        s.summary.number,
-        crate::format::local_ms(s.summary.time_ms, tz),
-        value_words(value, limits, d),
-        s.summary.n
-    );
+    let mut text = match (s.summary.found, s.summary.inspected) {
+        // An attribute chart's subgroup: what was found in how many.
+        (Some(found), Some(units)) => format!(
+            "subgroup {}, {}: {} found in {} inspected, plotted {}",
+            s.summary.number,
+            crate::format::local_ms(s.summary.time_ms, tz),
+            crate::format::num(found),
+            crate::format::num(units),
+            value_words(value, limits, d),
+        ),
+        _ => format!(
+            "subgroup {}, {}: {what} {} (n = {})",
+            s.summary.number,
+            crate::format::local_ms(s.summary.time_ms, tz),
+            value_words(value, limits, d),
+            s.summary.n
+        ),
+    };
     let parts: Vec<&str> = s.parts.iter().flatten().map(String::as_str).collect();
     if !parts.is_empty() {
         text.push_str(&format!("; parts {}", parts.join(", ")));
@@ -651,6 +662,71 @@ impl Picture {
         }
     }
 
+    /// The picture of an attribute study from a file: each sample's p, np, c or u against the
+    /// limits of its own size (they step where sizes differ), samples beyond marked, excluded
+    /// ones hollow; no dispersion chart.
+    pub fn of_attribute_study(
+        study: &crate::stats::attributes::AttributeStudy,
+        samples: &[crate::stats::attributes::AttributeSample],
+        title: &str,
+        zones: bool,
+    ) -> Picture {
+        let chart = study.chart;
+        let plotted: Vec<f64> = samples.iter().map(|s| chart.plotted(s)).collect();
+        let decimals = decimals_for(spread_of(plotted.iter().copied()));
+        let included = |i: usize| !study.excluded.iter().any(|e| e.subgroup == i + 1);
+        let location = Panel {
+            what: attribute_words(chart).to_string(),
+            points: plotted
+                .iter()
+                .zip(&study.limits)
+                .enumerate()
+                .map(|(i, (&value, lim))| {
+                    let out = lim.beyond(value);
+                    let s = &samples[i];
+                    Point {
+                        number: i as u64 + 1,
+                        time_ms: 0,
+                        value,
+                        limits: Some(*lim),
+                        sigma: Some((lim.ucl - lim.center) / 3.0),
+                        marked: out,
+                        label: out.then(|| "beyond limits".to_string()),
+                        excluded: !included(i),
+                        hover: Some(format!(
+                            "sample {}: {} found in {} inspected, {} {}{}",
+                            i + 1,
+                            crate::format::num(s.count),
+                            crate::format::num(s.size),
+                            chart.name(),
+                            value_words(value, Some(*lim), decimals),
+                            if included(i) { "" } else { " (excluded)" }
+                        )),
+                    }
+                })
+                .collect(),
+            zones,
+            lsl: None,
+            usl: None,
+            decimals,
+        };
+        let excluded = study.excluded.len();
+        let note = (excluded > 0).then(|| {
+            format!(
+                "{excluded} of {} samples excluded from the limits (drawn hollow)",
+                study.samples_total
+            )
+        });
+        Picture {
+            title: title.to_string(),
+            note,
+            panels: vec![location],
+            tz: jiff::tz::TimeZone::UTC,
+            histogram: None,
+            axis: Axis::Number,
+        }
+    }
+
     /// The picture of a window of the archive: every subgroup against the limits recorded in
     /// force when it was judged (stepped where they changed), each violation's points marked
     /// and the subgroup that completed it labelled with the rule; local times on the axis.
@@ -663,7 +739,8 @@ impl Picture {
     ) -> Picture {
         use crate::rules::Chart;
         use std::collections::{HashMap, HashSet};
-        let individuals = w.subgroups.iter().all(|s| s.summary.n == 1);
+        let attribute = w.limits.as_ref().and_then(|l| l.chart.attribute());
+        let individuals = attribute.is_none() && w.subgroups.iter().all(|s| s.summary.n == 1);
         let decimals = decimals_for(spread_of(w.subgroups.iter().map(|s| s.summary.mean)));
         let unit = if unit.is_empty() {
             String::new()
@@ -710,7 +787,10 @@ impl Picture {
             hover: Some(hover_of(s, chart, value, decimals, tz)),
         };
         let location = Panel {
-            what: location_words(individuals, &unit),
+            what: match attribute {
+                Some(a) => attribute_words(a).to_string(),
+                None => location_words(individuals, &unit),
+            },
             points: w
                 .subgroups
                 .iter()

@@ -216,6 +216,28 @@ fn learning_a_p_chart_from_montgomerys_samples_gives_his_revised_limits() {
     let text = std::fs::read_to_string(dir.path().join("learned/cans.toml")).unwrap();
     assert!(text.contains("PROVISIONAL"), "{text}");
     assert!(text.contains("binomial"), "{text}");
+    // The same study at the desk from the record: the daemon's subgroups, each the count found
+    // in the units inspected, give the same limits.
+    let archive = dir.path().join("archive");
+    let (ok, out, err) = cli(&[
+        "limits",
+        "--archive",
+        archive.to_str().unwrap(),
+        "--characteristic",
+        "cans",
+        "--exclude",
+        "15,23",
+        "--json",
+    ]);
+    assert!(ok, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).unwrap();
+    assert_eq!(v["chart"], "p");
+    assert_eq!(
+        v["parameter"].as_f64().unwrap(),
+        l.attribute_parameter().unwrap()
+    );
+    assert_eq!(v["samples"][20]["subgroup"], 21);
+    assert_eq!(v["samples"][20]["beyond"], true);
 }
 
 #[test]
@@ -787,17 +809,19 @@ fn a_bad_file_of_samples_is_refused_naming_the_place() {
     let csv = dir.path().join("x.csv");
     std::fs::write(&csv, "count,size\n3,50\n").unwrap();
     let (ok, _, err) = cli(&[
-        "chart",
+        "report",
         "--input",
         &s(&csv),
         "--chart",
         "p",
         "--output",
-        &s(&dir.path().join("c.svg")),
+        &s(&dir.path().join("r.html")),
     ]);
     assert!(!ok);
     assert!(
-        err.contains("for an attribute chart use linewarden limits --chart p"),
+        err.contains(
+            "for an attribute chart use linewarden limits, chart or capability with --chart p"
+        ),
         "{err}"
     );
     let (ok, _, err) = cli(&["capability", "--input", &s(&csv), "--chart", "c"]);
@@ -806,4 +830,59 @@ fn a_bad_file_of_samples_is_refused_naming_the_place() {
         err.contains("the fraction nonconforming is for pass/fail results"),
         "{err}"
     );
+}
+
+/// The live page's and the email's chart of an attribute characteristic: the plotted rate with
+/// each point's own limits (they step with the units inspected), no spread chart.
+#[test]
+fn the_live_chart_of_a_u_chart_steps_its_limits_with_the_units() {
+    use linewarden::engine::{Engine, Incoming};
+    let dir = tempfile::tempdir().unwrap();
+    let ubar: f64 = 2.0;
+    let ucl5 = ubar + 3.0 * (ubar / 5.0).sqrt();
+    let lcl5 = ubar - 3.0 * (ubar / 5.0).sqrt();
+    std::fs::write(
+        dir.path().join("cloth.toml"),
+        limits_file("cloth", "u", 5, (ubar / 5.0).sqrt(), ubar, ucl5, lcl5),
+    )
+    .unwrap();
+    let cfg = cell(
+        dir.path(),
+        "id = \"cloth\"\nchart = \"u\"\nlimits = \"cloth.toml\"\nsubgroup = { size = 1 }",
+        &[],
+    );
+    let mut e = Engine::new(&cfg, 0);
+    for (i, (c, n)) in [(10.0, 5.0), (9.0, 4.0), (12.0, 2.5)]
+        .into_iter()
+        .enumerate()
+    {
+        let mut inc = Incoming {
+            source: "test".into(),
+            characteristic: "cloth".into(),
+            value: c,
+            unit: None,
+            source_time_ms: None,
+            source_time_ignored: false,
+            arrival_ms: 1_000 * (i as i64 + 1),
+            part: None,
+            source_key: None,
+            word: None,
+            inspected: Some(n),
+            sent: None,
+        };
+        e.admit(&mut inc).unwrap();
+        e.accept(i as u64 + 1, &inc);
+    }
+    let view = e.view_of("cloth").unwrap();
+    let p = linewarden::chart::Picture::of_view(&view, &[], &jiff::tz::TimeZone::UTC).unwrap();
+    assert_eq!(p.panels.len(), 1, "no spread chart for counts");
+    assert_eq!(p.panels[0].what, "defects per unit (u)");
+    for (pt, n) in p.panels[0].points.iter().zip([5.0, 4.0, 2.5]) {
+        let ucl = pt.limits.unwrap().ucl;
+        assert!(
+            (ucl - (ubar + 3.0 * (ubar / n).sqrt())).abs() < 1e-9,
+            "n {n}: {ucl}"
+        );
+    }
+    assert!(p.svg(900, 520).unwrap().contains("defects per unit (u)"));
 }

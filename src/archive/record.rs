@@ -77,6 +77,20 @@ pub struct SubgroupSummary {
     pub inspected: Option<f64>,
 }
 
+impl SubgroupSummary {
+    /// What an attribute chart's subgroup found, in words ("3 found in 20 inspected, plotted
+    /// 0.150"), when it is one.
+    pub fn attribute_words(&self, decimals: usize) -> Option<String> {
+        let (found, inspected) = self.found.zip(self.inspected)?;
+        Some(format!(
+            "{} found in {} inspected, plotted {}",
+            crate::format::num(found),
+            crate::format::num(inspected),
+            crate::format::fixed(self.mean, decimals)
+        ))
+    }
+}
+
 /// A reading waiting to complete a subgroup.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PendingReading {

@@ -160,14 +160,86 @@ fn capability_json(c: &AttributeCapability) -> serde_json::Value {
     })
 }
 
-/// `limits --chart p|np|c|u`.
+/// The samples of `input` and their study, for the picture.
+pub(crate) fn study_of_file(
+    input: &InputArgs,
+    exclude: &ExcludeArgs,
+    chart: AttributeChart,
+) -> Result<(AttributeStudy, ParsedCounts)> {
+    let name = input.input.display().to_string();
+    let parsed = read_samples(input, chart)?;
+    let s = run(chart, &parsed, exclude, &name)?;
+    Ok((s, parsed))
+}
+
+/// `limits --chart p|np|c|u --input FILE`.
 pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
     let Some(input) = &a.input else {
         bail!(
-            "--chart {} at the desk reads a file of samples (--input FILE with count and size columns); the attribute characteristics' subgroups in the archive are listed by linewarden archive export",
+            "--chart {} reads a file of samples (--input FILE with count and size columns); for an attribute characteristic's subgroups in the archive give --archive DIR --characteristic ID without --chart",
             chart.name()
         );
     };
+    let name = input.input.display().to_string();
+    let parsed = read_samples(input, chart)?;
+    limits_of(a, chart, &name, &parsed, "line")
+}
+
+/// `limits --archive DIR --characteristic ID` of an attribute characteristic: the subgroups
+/// the daemon formed, each the count found in the units inspected.
+pub(crate) fn limits_of_window(
+    a: &LimitsArgs,
+    win: &linewarden::archive::window::CharacteristicWindow,
+) -> Result<()> {
+    let Some(chart) = win.limits.as_ref().and_then(|l| l.chart.attribute()) else {
+        bail!(
+            "archive {}: characteristic {} has no limits in force in this window (it was learning them), so the record does not say its chart",
+            win.archive.display(),
+            win.characteristic
+        );
+    };
+    let mut parsed = ParsedCounts {
+        samples: Vec::new(),
+        lines: Vec::new(),
+    };
+    for s in &win.subgroups {
+        let (Some(count), Some(size)) = (s.summary.found, s.summary.inspected) else {
+            bail!(
+                "archive {}: subgroup {} of {} (record {}) holds no count and units inspected",
+                win.archive.display(),
+                s.summary.number,
+                win.characteristic,
+                s.seq
+            );
+        };
+        parsed
+            .samples
+            .push(attributes::AttributeSample { count, size });
+        parsed.lines.push(s.summary.number);
+    }
+    let (first, last) = win.time_range();
+    let (x, y) = win.seq_range();
+    let name = format!(
+        "archive {}, characteristic {}, subgroups {} to {} completed {} to {} (records {x} to {y})",
+        win.archive.display(),
+        win.characteristic,
+        parsed.lines.first().copied().unwrap_or(0),
+        parsed.lines.last().copied().unwrap_or(0),
+        linewarden::format::utc_ms(first),
+        linewarden::format::utc_ms(last),
+    );
+    limits_of(a, chart, &name, &parsed, "subgroup")
+}
+
+/// The attribute study of `parsed` (read from `name`; `label` says what the numbers beside
+/// each sample are: its file line, or its subgroup number in the record).
+fn limits_of(
+    a: &LimitsArgs,
+    chart: AttributeChart,
+    name: &str,
+    parsed: &ParsedCounts,
+    label: &str,
+) -> Result<()> {
     if a.spec.lsl.is_some() || a.spec.usl.is_some() || a.spec.target.is_some() {
         bail!(
             "--lsl, --usl and --target do not apply to a {} chart: it counts nonconforming parts or defects; its capability is the fraction nonconforming",
@@ -180,9 +252,7 @@ pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
             chart.name()
         );
     }
-    let name = input.input.display().to_string();
-    let parsed = read_samples(input, chart)?;
-    let s = run(chart, &parsed, &a.exclude, &name)?;
+    let s = run(chart, parsed, &a.exclude, name)?;
     if s.parameter <= 0.0 {
         bail!(
             "{name}: no nonconformities at all in {} samples: the {} chart's limits collapse to zero and every later find would signal; take a longer baseline",
@@ -190,11 +260,11 @@ pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
             chart.name()
         );
     }
-    let nominal = nominal_size(&parsed);
-    let cap = capability(chart, &s, &parsed)?;
+    let nominal = nominal_size(parsed);
+    let cap = capability(chart, &s, parsed)?;
     if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
         let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
-        let mut stored = StoredLimits::from_attribute_study(&s, nominal, id, &name, &now);
+        let mut stored = StoredLimits::from_attribute_study(&s, nominal, id, name, &now);
         if let Some(by) = &a.approved_by {
             if by.trim().is_empty() {
                 bail!(
@@ -228,11 +298,11 @@ pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
             "samples_total": s.samples_total,
             "samples_used": s.samples_used,
             "excluded": s.excluded.iter().map(|e| json!({
-                "sample": e.subgroup, "line": parsed.lines[e.subgroup - 1],
+                "sample": e.subgroup, label: parsed.lines[e.subgroup - 1],
                 "reason": e.reason, "iteration": e.iteration,
             })).collect::<Vec<_>>(),
             "samples": (0..plotted.len()).map(|i| json!({
-                "sample": i + 1, "line": parsed.lines[i],
+                "sample": i + 1, label: parsed.lines[i],
                 "count": parsed.samples[i].count, "size": parsed.samples[i].size,
                 "plotted": plotted[i], "center": s.limits[i].center,
                 "ucl": s.limits[i].ucl, "lcl": s.limits[i].lcl,
@@ -308,7 +378,7 @@ pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
     }
     for e in &s.excluded {
         out.push_str(&format!(
-            "  excluded    sample {} (line {}): {}\n",
+            "  excluded    sample {} ({label} {}): {}\n",
             e.subgroup,
             parsed.lines[e.subgroup - 1],
             e.reason
@@ -323,17 +393,17 @@ pub(crate) fn limits(a: &LimitsArgs, chart: AttributeChart) -> Result<()> {
         };
         let (v, l) = fixed_pair(plotted[i], limit, d);
         out.push_str(&format!(
-            "  beyond      sample {} (line {}): {} {v} is {word} limit {l}, and is kept in the limits\n",
+            "  beyond      sample {} ({label} {}): {} {v} is {word} limit {l}, and is kept in the limits\n",
             i + 1,
             parsed.lines[i],
             chart.name()
         ));
     }
     if varies {
-        out.push_str("\n  sample  line     count      size   plotted       LCL       UCL\n");
+        out.push_str("\n  sample  {label:>8}     count      size   plotted       LCL       UCL\n");
         for (i, (&value, lim)) in plotted.iter().zip(&s.limits).enumerate() {
             out.push_str(&format!(
-                "  {:>6}  {:>4}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}{}\n",
+                "  {:>6}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}{}\n",
                 i + 1,
                 parsed.lines[i],
                 linewarden::format::num(parsed.samples[i].count),

@@ -120,7 +120,29 @@ pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
             bail!("{name} {v} is outside 300 to 8000 pixels");
         }
     }
-    let picture = if let Some(dir) = &a.window.archive {
+    let attribute = a
+        .input
+        .as_ref()
+        .and_then(|i| i.chart)
+        .and_then(super::study::ChartArg::attribute);
+    let picture = if let (Some(chart), Some(input)) = (attribute, &a.input) {
+        if a.histogram || a.lsl.is_some() || a.usl.is_some() || a.unit.is_some() {
+            bail!(
+                "--histogram, --lsl, --usl and --unit are for measured readings; a {} chart counts",
+                chart.name()
+            );
+        }
+        let (study, parsed) = super::attribute::study_of_file(input, &a.exclude, chart)?;
+        let title = a.title.clone().unwrap_or_else(|| {
+            format!(
+                "{} of {} ({} samples)",
+                chart_words(linewarden::limits_file::ChartKind::Attribute(chart)),
+                input.input.display(),
+                study.samples_total
+            )
+        });
+        Picture::of_attribute_study(&study, &parsed.samples, &title, a.zones)
+    } else if let Some(dir) = &a.window.archive {
         let id = a.characteristic.as_deref().unwrap_or_default();
         let win = read_window(&a.window, dir, a.characteristic.as_deref())?;
         let unit = a
@@ -139,6 +161,13 @@ pub(crate) fn chart_cmd(a: ChartArgs) -> Result<()> {
         });
         let tz = jiff::tz::TimeZone::system();
         let mut p = Picture::of_window(&win, &title, &unit, a.zones, &tz);
+        let counts = win.limits.as_ref().and_then(|l| l.chart.attribute());
+        if let (Some(c), true) = (counts, a.histogram) {
+            bail!(
+                "--histogram is for measured readings; {id} is a {} chart of counts",
+                c.name()
+            );
+        }
         if a.histogram {
             let spec = win.limits.as_ref().and_then(|l| l.spec);
             let readings: Vec<f64> = win

@@ -198,7 +198,7 @@ pub(crate) fn load_and_study(
     let name = input.input.display().to_string();
     if let Some(a) = input.chart.and_then(ChartArg::attribute) {
         bail!(
-            "--chart {}: this command reads measured subgroups; for an attribute chart use linewarden limits --chart {} (and capability --chart p or np)",
+            "--chart {}: this command reads measured subgroups; for an attribute chart use linewarden limits, chart or capability with --chart {}",
             a.name(),
             a.name()
         );
@@ -466,6 +466,14 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
         }
         (None, Some(dir)) => {
             let win = read_window(&a.window, dir, a.characteristic.as_deref())?;
+            if win
+                .limits
+                .as_ref()
+                .is_some_and(|l| l.chart.attribute().is_some())
+                || win.subgroups.iter().any(|s| s.summary.found.is_some())
+            {
+                return super::attribute::limits_of_window(&a, &win);
+            }
             if unit.is_none() {
                 unit = win.limits.as_ref().and_then(|l| l.unit.clone());
             }

@@ -550,16 +550,19 @@ async fn carry_out(
                     } else {
                         format!("fired{on}: {}", fired.join(", "))
                     };
-                    format!(
-                        "subgroup {}: mean {} (n = {}){}, {state}",
-                        subgroup.number,
-                        fixed(subgroup.mean),
-                        subgroup.n,
-                        subgroup
-                            .dispersion
-                            .map(|d| format!(", spread {}", fixed(d)))
-                            .unwrap_or_default()
-                    )
+                    match subgroup.attribute_words(decimals) {
+                        Some(words) => format!("subgroup {}: {words}, {state}", subgroup.number),
+                        None => format!(
+                            "subgroup {}: mean {} (n = {}){}, {state}",
+                            subgroup.number,
+                            fixed(subgroup.mean),
+                            subgroup.n,
+                            subgroup
+                                .dispersion
+                                .map(|d| format!(", spread {}", fixed(d)))
+                                .unwrap_or_default()
+                        ),
+                    }
                 };
                 // A subgroup that fired is worth a line in the journal; the quiet ones (one per
                 // subgroup per characteristic, all day) only at debug level.

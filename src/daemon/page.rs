@@ -265,6 +265,9 @@ fn latest_words(v: &CharView) -> String {
         return "no subgroup yet".to_string();
     };
     let d = v.decimals.unwrap_or(4);
+    if let Some(words) = s.attribute_words(d) {
+        return format!("subgroup {}: {}", s.number, esc(&words));
+    }
     format!(
         "subgroup {}: mean {} {} (n = {}){}",
         s.number,

@@ -757,7 +757,7 @@ impl Engine {
             spec: c.cfg.spec,
             readings: c.readings,
             decimals: match &c.mode {
-                Mode::Monitoring { points, .. } => Some(points.basis().decimals()),
+                Mode::Monitoring { points, .. } => Some(points.basis().value_decimals()),
                 Mode::Learning { .. } => c.cfg.decimals,
             },
             basis: match &c.mode {
@@ -1106,7 +1106,7 @@ impl CharEngine {
             });
         }
         let decimals = match &self.mode {
-            Mode::Monitoring { points, .. } => points.basis().decimals(),
+            Mode::Monitoring { points, .. } => points.basis().value_decimals(),
             // Before there are limits, four decimals unless the config says otherwise.
             Mode::Learning { .. } => self.cfg.decimals.unwrap_or(4),
         };

@@ -65,6 +65,17 @@ impl ChartBasis {
         })
     }
 
+    /// Decimals of the plotted value itself: as [`ChartBasis::decimals`], but a p chart's
+    /// fraction (0.150) rather than its percentage (15.0%).
+    pub fn value_decimals(&self) -> usize {
+        match self.chart {
+            ChartKind::Attribute(AttributeChart::P) if self.decimals.is_none() => {
+                self.decimals() + 2
+            }
+            _ => self.decimals(),
+        }
+    }
+
     /// The attribute chart, when it is one.
     pub fn attribute(&self) -> Option<AttributeChart> {
         self.chart.attribute()
