@@ -292,6 +292,30 @@ fn montgomerys_c_chart_signals_both_sides_each_with_its_own_severity() {
         "{}",
         below.message
     );
+    // The report of the record: the counts' study, the chart with no histogram, both alerts.
+    let html = dir.path().join("boards.html");
+    let (ok, _, err) = cli(&[
+        "report",
+        "--archive",
+        dir.path().join("archive").to_str().unwrap(),
+        "--characteristic",
+        "boards",
+        "--output",
+        html.to_str().unwrap(),
+    ]);
+    assert!(ok, "{err}");
+    let text = std::fs::read_to_string(&html).unwrap();
+    for want in [
+        "Attribute study: c chart (defects per inspection)",
+        "c̄ = 19.8462 (516 defects in 26 samples)",
+        "c (defects per inspection)",
+        "5 defects in 1 unit is below the lower limit 6.5 defects",
+        "39 defects in 1 unit is above the upper limit 33.2 defects",
+        "intact",
+    ] {
+        assert!(text.contains(want), "{want}");
+    }
+    assert!(!text.contains("histogram holds"));
     let above = &res[19].3[0];
     assert_eq!(above.severity, Severity::Stop);
     assert!(

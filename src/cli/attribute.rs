@@ -198,6 +198,15 @@ pub(crate) fn limits_of_window(
             win.characteristic
         );
     };
+    let (name, parsed) = window_samples(win)?;
+    limits_of(a, chart, &name, &parsed, "subgroup")
+}
+
+/// The subgroups of a window as samples (count found, units inspected), numbered by subgroup,
+/// and the words that say where they came from.
+fn window_samples(
+    win: &linewarden::archive::window::CharacteristicWindow,
+) -> Result<(String, ParsedCounts)> {
     let mut parsed = ParsedCounts {
         samples: Vec::new(),
         lines: Vec::new(),
@@ -228,7 +237,7 @@ pub(crate) fn limits_of_window(
         linewarden::format::utc_ms(first),
         linewarden::format::utc_ms(last),
     );
-    limits_of(a, chart, &name, &parsed, "subgroup")
+    Ok((name, parsed))
 }
 
 /// The attribute study of `parsed` (read from `name`; `label` says what the numbers beside
@@ -280,13 +289,8 @@ fn limits_of(
         stored.write(path)?;
         eprintln!("wrote limits for {id} to {}", path.display());
     }
-    let d = decimals(chart);
     let plotted: Vec<f64> = parsed.samples.iter().map(|x| chart.plotted(x)).collect();
     let included = |i: usize| !s.excluded.iter().any(|e| e.subgroup == i + 1);
-    // Included samples still beyond the final limits (kept on request or after the last round).
-    let beyond: Vec<usize> = (0..plotted.len())
-        .filter(|&i| included(i) && s.limits[i].beyond(plotted[i]))
-        .collect();
     if a.json {
         for w in &s.warnings {
             eprintln!("warning: {w}");
@@ -314,6 +318,32 @@ fn limits_of(
         println!("{}", serde_json::to_string_pretty(&v)?);
         return Ok(());
     }
+    print!(
+        "{}",
+        report_text(chart, name, parsed, &s, cap.as_ref(), label, nominal)
+    );
+    Ok(())
+}
+
+/// The study of an attribute chart in words: the samples, the centre, the limits (the lower
+/// clamped, said), the exclusions, the samples beyond, a table where sizes differ, the
+/// capability and the warnings.
+fn report_text(
+    chart: AttributeChart,
+    name: &str,
+    parsed: &ParsedCounts,
+    s: &AttributeStudy,
+    cap: Option<&AttributeCapability>,
+    label: &str,
+    nominal: usize,
+) -> String {
+    let d = decimals(chart);
+    let plotted: Vec<f64> = parsed.samples.iter().map(|x| chart.plotted(x)).collect();
+    let included = |i: usize| !s.excluded.iter().any(|e| e.subgroup == i + 1);
+    // Included samples still beyond the final limits (kept on request or after the last round).
+    let beyond: Vec<usize> = (0..plotted.len())
+        .filter(|&i| included(i) && s.limits[i].beyond(plotted[i]))
+        .collect();
     let used = |i: &usize| included(*i);
     let found: f64 = (0..plotted.len())
         .filter(used)
@@ -421,7 +451,7 @@ fn limits_of(
             ));
         }
     }
-    if let Some(c) = &cap {
+    if let Some(c) = cap {
         out.push_str(&capability_text(c));
     }
     if !s.warnings.is_empty() {
@@ -430,8 +460,27 @@ fn limits_of(
             out.push_str(&format!("  {w}\n"));
         }
     }
-    print!("{out}");
-    Ok(())
+    out
+}
+
+/// The study text of an attribute characteristic's window of the archive (for `report`).
+pub(crate) fn window_text(
+    win: &linewarden::archive::window::CharacteristicWindow,
+    chart: AttributeChart,
+    exclude: &ExcludeArgs,
+) -> Result<String> {
+    let (name, parsed) = window_samples(win)?;
+    let s = run(chart, &parsed, exclude, &name)?;
+    let cap = capability(chart, &s, &parsed)?;
+    Ok(report_text(
+        chart,
+        &name,
+        &parsed,
+        &s,
+        cap.as_ref(),
+        "subgroup",
+        nominal_size(&parsed),
+    ))
 }
 
 /// `capability --chart p|np`: the fraction nonconforming of the samples, with its interval.

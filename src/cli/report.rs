@@ -128,14 +128,6 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
             .and_then(|c| c.spec)
             .or_else(|| limits.as_ref().and_then(|l| l.spec)),
     };
-    let (study, subgroups, source) = study_of_window(&win, &a.exclude)?;
-    let cap = match &spec {
-        Some(s) => Some(capability_of(&study, &subgroups, s, &a.spec)?),
-        None => None,
-    };
-    let study_text = linewarden::report::study(&source, &study, spec.as_ref().zip(cap.as_ref()));
-
-    // The charts, with the histogram of the window's readings.
     let (first_ms, last_ms) = win.time_range();
     let mut picture = Picture::of_window(
         &win,
@@ -144,8 +136,49 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
         ch.as_ref().is_some_and(|c| c.rules.has_zone_rules()),
         &tz,
     );
-    let readings: Vec<f64> = subgroups.iter().flatten().copied().collect();
-    let svg = charts_svg(&mut picture, &readings, &unit, spec)?;
+    let attribute = limits.as_ref().and_then(|l| l.chart.attribute());
+    let (study_text, svg, d, caption) = match attribute {
+        // An attribute characteristic: the counts' study and the chart of its fraction (or
+        // count, or rate), no histogram, no specification.
+        Some(chart) => {
+            if super::study::spec_of(&a.spec)?.is_some() {
+                bail!(
+                    "--lsl, --usl and --target do not apply to {id}, a {} chart of counts",
+                    chart.name()
+                );
+            }
+            let text = super::attribute::window_text(&win, chart, &a.exclude)?;
+            let svg = charts_svg(&mut picture, &[], "", None)?;
+            (
+                text,
+                svg,
+                4,
+                "Points of every violation in red, each rule named where it starts to fire; each point has the limits of its own number of units inspected.".to_string(),
+            )
+        }
+        None => {
+            let (study, subgroups, source) = study_of_window(&win, &a.exclude)?;
+            let cap = match &spec {
+                Some(s) => Some(capability_of(&study, &subgroups, s, &a.spec)?),
+                None => None,
+            };
+            let text = linewarden::report::study(&source, &study, spec.as_ref().zip(cap.as_ref()));
+            // The charts, with the histogram of the window's readings.
+            let readings: Vec<f64> = subgroups.iter().flatten().copied().collect();
+            let svg = charts_svg(&mut picture, &readings, &unit, spec)?;
+            let d = linewarden::format::decimals_for(study.estimate.sigma_within / 6.0).max(3);
+            (
+                text,
+                svg,
+                d,
+                format!(
+                    "Points of every violation in red, each rule named where it starts to fire; the histogram holds the window's {} readings with the normal fitted to them.",
+                    readings.len()
+                ),
+            )
+        }
+    };
+    let spec = if attribute.is_some() { None } else { spec };
 
     // Alerts and rejected readings in the window, and the archive's own check.
     let reader = Reader::open(&dir)?;
@@ -243,7 +276,6 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
     ));
 
     // The characteristic and its specification.
-    let d = linewarden::format::decimals_for(study.estimate.sigma_within / 6.0).max(3);
     let f = |v: Option<f64>| v.map_or("—".to_string(), linewarden::format::num);
     let _ = writeln!(
         h,
@@ -279,10 +311,15 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
                 h,
                 "<table><tr><th>Chart</th><td>{chart}, subgroups of {n}</td></tr>\
                  <tr><th>Location</th><td>centre {c} · UCL {u} · LCL {lo}</td></tr>\
-                 <tr><th>Sigma within</th><td>{s} ({m})</td></tr>\
+                 <tr><th>{sigma_words}</th><td>{s} ({m})</td></tr>\
                  <tr><th>Computed</th><td>{at}, from {src}; {used} of {total} subgroups used ({which})</td></tr>\
                  <tr><th>Standing</th><td>{standing}</td></tr></table>",
                 chart = esc(super::chart::chart_words(l.chart)),
+                sigma_words = if l.chart.attribute().is_some() {
+                    "Sigma of a point"
+                } else {
+                    "Sigma within"
+                },
                 n = l.subgroup_size,
                 c = fixed(l.location.center, d),
                 u = fixed(l.location.ucl, d),
@@ -300,8 +337,8 @@ pub(crate) fn report_cmd(a: ReportArgs) -> Result<()> {
 
     let _ = write!(
         h,
-        "<h2>Control charts</h2><div class=\"charts\">{svg}</div>\n<p class=\"meta\">Points of every violation in red, each rule named where it starts to fire; the histogram holds the window's {} readings with the normal fitted to them.</p>\n",
-        readings.len()
+        "<h2>Control charts</h2><div class=\"charts\">{svg}</div>\n<p class=\"meta\">{}</p>\n",
+        esc(&caption)
     );
     let _ = write!(
         h,

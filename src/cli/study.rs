@@ -377,9 +377,13 @@ pub(crate) fn study_of_window(
     );
     let chart = match win.limits.as_ref().map(|l| l.chart) {
         Some(linewarden::limits_file::ChartKind::Attribute(a)) => bail!(
-            "characteristic {} is an attribute characteristic ({} chart); a study from the archive is for measured characteristics. Its learned limits and the record's subgroups are in the archive (linewarden archive export)",
+            "characteristic {} is an attribute characteristic ({} chart): its subgroups are counts, not measured readings",
             win.characteristic,
             a.name()
+        ),
+        _ if win.subgroups.iter().any(|s| s.summary.found.is_some()) => bail!(
+            "characteristic {} is an attribute characteristic with no limits in force in this window (it was learning them), so the record does not say its chart; take a window after its limits were learned",
+            win.characteristic
         ),
         Some(linewarden::limits_file::ChartKind::Variables(v)) => Some(v),
         None => None,
