@@ -100,7 +100,9 @@ pub fn mqtt_payload(data: &[u8]) {
                         assert!(!w.is_empty() && w.chars().count() <= 40);
                         assert!(!w.chars().any(char::is_control));
                         match words.count_of(w) {
-                            Ok(v) => assert!(v == 0.0 || v == 1.0),
+                            Ok(v) => {
+                                assert!(v == 0.0 || v == 1.0 || w.trim().parse::<f64>().is_ok())
+                            }
                             Err(why) => assert!(why.contains("is neither")),
                         }
                     }
@@ -157,6 +159,25 @@ pub fn study_input(data: &[u8]) {
             assert!(p.subgroups.iter().flatten().all(|v| v.is_finite()));
         }
     }
+    // An attribute chart's samples: whole counts of zero or more in more than zero units, no
+    // more nonconforming than inspected.
+    for proportion in [true, false] {
+        let o = crate::input::CountOptions {
+            count_column: "count".into(),
+            size_column: Some("size".into()),
+            proportion,
+            delimiter: b',',
+            decimal_comma: false,
+        };
+        if let Ok(p) = crate::input::parse_counts(&text, "fuzz.csv", &o) {
+            for s in &p.samples {
+                assert!(s.count >= 0.0 && s.count.fract() == 0.0 && s.count.is_finite());
+                assert!(s.size > 0.0 && s.size.is_finite());
+                assert!(!proportion || (s.count <= s.size && s.size.fract() == 0.0));
+            }
+            assert_eq!(p.samples.len(), p.lines.len());
+        }
+    }
 }
 
 /// A daemon config and a limits file: accepted, or rejected with located problems; never a
@@ -166,8 +187,20 @@ pub fn config_and_limits(data: &[u8]) {
     if let Err(problems) = crate::config::parse(&text, Path::new("/fuzz/cell.toml")) {
         assert!(!problems.to_string().is_empty());
     }
-    if let Err(problems) = crate::limits_file::StoredLimits::parse(&text, "fuzz.toml") {
-        assert!(!problems.to_string().is_empty());
+    match crate::limits_file::StoredLimits::parse(&text, "fuzz.toml") {
+        Err(problems) => assert!(!problems.to_string().is_empty()),
+        // Accepted attribute limits give every subgroup size a finite, ordered set of limits
+        // at or above zero.
+        Ok(l) => {
+            if let Some(a) = l.chart.attribute() {
+                let b = crate::rules::point::ChartBasis::from_stored(&l);
+                for size in [1.0, 2.5, l.subgroup_size as f64, 1000.0] {
+                    let (sigma, lim) = b.attribute_at(a, size);
+                    assert!(sigma.is_finite() && sigma >= 0.0, "{size}: {sigma}");
+                    assert!(lim.lcl >= 0.0 && lim.lcl <= lim.center && lim.center <= lim.ucl);
+                }
+            }
+        }
     }
 }
 

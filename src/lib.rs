@@ -11,8 +11,10 @@
 //!   tokio.
 //! * [`rules`] — run rules evaluated incrementally per subgroup and per reading, their TOML
 //!   config and presets, and average run lengths ([`rules::arl`]). Pure, like [`stats`].
-//! * [`engine`] — the pure engine of a cell: reading checks, subgroup assembly, learning,
-//!   rules and the outputs they call for; its state rebuilt from the archive's tail.
+//! * [`engine`] — the pure engine of a cell: reading checks (and a pass/fail station's words
+//!   mapped to counts), subgroup assembly, learning, rules and the outputs they call for, for
+//!   measured and attribute (p, np, c, u) characteristics; its state rebuilt from the
+//!   archive's tail.
 //! * [`alerts`] — the alert lifecycle (pure) and its event type, which the archive records.
 //! * [`config`] — the daemon's TOML configuration, parsed then validated with every problem
 //!   located, one module per section: the file and `[daemon]` in `config`,
@@ -29,8 +31,8 @@
 //!   their readings ([`archive::window`]) for the engineer's commands.
 //! * [`input`] — turns CSV text (wide, long or one reading per row) into subgroups, with errors
 //!   that name the file, line and column.
-//! * [`limits_file`] — the stored limits of one characteristic: a TOML format of our own,
-//!   parsed, validated and written atomically.
+//! * [`limits_file`] — the stored limits of one characteristic (a variables or an attribute
+//!   chart): a TOML format of our own, parsed, validated and written atomically.
 //! * [`report`] — the readable text of a study and of a capability analysis.
 //! * [`backtest`] — a candidate configuration's engine run on the archive's readings, its
 //!   signals matched with the record's subgroup by subgroup.
@@ -47,7 +49,7 @@
 //!
 //! The binary is a thin command-line shell over these modules: `src/main.rs` parses and
 //! dispatches, and `src/cli/` holds one module per command family (`study`: limits and
-//! capability, from a file or the archive; `chart`; `report`; `backtest`; `arl`; `archive`; `daemon`: run,
+//! capability, from a file or the archive; `attribute`: the same for p, np, c and u; `chart`; `report`; `backtest`; `arl`; `archive`; `daemon`: run,
 //! check, status, ack and approve).
 //!
 //! Dependencies run one way: `stats` ← `rules` ← `alerts` ← `archive` ← `engine` ← `daemon`,

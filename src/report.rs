@@ -432,7 +432,10 @@ pub fn status(r: &crate::daemon::hub::StatusReport) -> String {
             None => num(v),
         };
         let last = match &c.last_subgroup {
-            Some(g) => format!("subgroup {} mean {} {}", g.number, fmt(g.mean), c.unit),
+            Some(g) => match g.attribute_words(c.decimals.unwrap_or(4)) {
+                Some(words) => format!("subgroup {} {words}", g.number),
+                None => format!("subgroup {} mean {} {}", g.number, fmt(g.mean), c.unit),
+            },
             None => "no subgroup yet".into(),
         };
         let extra = match (c.baseline, c.limits) {

@@ -139,6 +139,10 @@ impl AttributeSettings {
         if is(&self.conforming) {
             return Ok(0.0);
         }
+        // A number sent as text ("1", "0", "3") counts as itself; the count's own checks follow.
+        if let Ok(v) = w.parse::<f64>() {
+            return Ok(v);
+        }
         let clipped: String = w.chars().take(40).collect();
         if matches!(self.chart, AttributeChart::C | AttributeChart::U) {
             return Err(format!(

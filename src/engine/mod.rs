@@ -422,6 +422,12 @@ impl Engine {
                 inc.characteristic
             ));
         };
+        if matches!(c.cfg.grouping, crate::config::Grouping::Part { .. }) && inc.part.is_none() {
+            return Err(format!(
+                "{} forms subgroups by part, and the reading names no part",
+                c.cfg.id
+            ));
+        }
         if let Some(a) = &c.cfg.attribute {
             return check_attribute(&c.cfg.id, a.chart, inc);
         }
