@@ -485,7 +485,7 @@ fn bad_results_from_a_station_are_archived_as_rejected_with_the_reason() {
         assert!(reason.contains(want), "{raw}: {reason} (wanted {want})");
     }
     assert_eq!(rejected[0].0, "MAYBE");
-    assert_eq!(rejected[5].0, "7 of 5 inspected");
+    assert_eq!(rejected[6].0, "7 of 5 inspected");
     // The words as sent are kept beside what they count as.
     assert_eq!(
         words[..3],
