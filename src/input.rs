@@ -183,12 +183,38 @@ struct Row {
 
 /// Parses `text` (named `file` in messages) into subgroups.
 pub fn parse(text: &str, file: &str, opts: &InputOptions) -> Result<Parsed, InputError> {
+    let (header, rows) = rows_of(text, file, opts.delimiter)?;
+    let cx = Context {
+        file,
+        header: header.as_deref(),
+        decimal_comma: opts.decimal_comma,
+    };
+    let parsed = match opts.layout {
+        Layout::Wide => wide(&cx, &rows, opts)?,
+        Layout::Long => long(&cx, &rows, opts)?,
+        Layout::Single => single(&cx, &rows, opts)?,
+    };
+    if parsed.subgroups.is_empty() {
+        return Err(InputError::Empty {
+            file: file.to_string(),
+        });
+    }
+    Ok(parsed)
+}
+
+/// The rows of CSV `text` with their line numbers, and the header: a first row none of whose
+/// fields is a number. Comment lines (`#`) are left out.
+fn rows_of(
+    text: &str,
+    file: &str,
+    delimiter: u8,
+) -> Result<(Option<Vec<String>>, Vec<Row>), InputError> {
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(false)
         .flexible(true)
         .comment(Some(b'#'))
         .trim(csv::Trim::All)
-        .delimiter(opts.delimiter)
+        .delimiter(delimiter)
         .from_reader(text.as_bytes());
     let mut rows = Vec::new();
     for record in reader.records() {
@@ -209,22 +235,7 @@ pub fn parse(text: &str, file: &str, opts: &InputOptions) -> Result<Parsed, Inpu
         }
         _ => None,
     };
-    let cx = Context {
-        file,
-        header: header.as_deref(),
-        decimal_comma: opts.decimal_comma,
-    };
-    let parsed = match opts.layout {
-        Layout::Wide => wide(&cx, &rows, opts)?,
-        Layout::Long => long(&cx, &rows, opts)?,
-        Layout::Single => single(&cx, &rows, opts)?,
-    };
-    if parsed.subgroups.is_empty() {
-        return Err(InputError::Empty {
-            file: file.to_string(),
-        });
-    }
-    Ok(parsed)
+    Ok((header, rows))
 }
 
 struct Context<'a> {
@@ -447,32 +458,7 @@ pub fn parse_counts(
     file: &str,
     opts: &CountOptions,
 ) -> Result<ParsedCounts, InputError> {
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .comment(Some(b'#'))
-        .trim(csv::Trim::All)
-        .delimiter(opts.delimiter)
-        .from_reader(text.as_bytes());
-    let mut rows = Vec::new();
-    for record in reader.records() {
-        let record = record.map_err(|e| InputError::Csv {
-            file: file.to_string(),
-            line: e.position().map(|p| p.line()).unwrap_or(0),
-            message: e.to_string(),
-        })?;
-        let line = record.position().map(|p| p.line()).unwrap_or(0);
-        rows.push(Row {
-            line,
-            fields: record.iter().map(str::to_string).collect(),
-        });
-    }
-    let header = match rows.first() {
-        Some(first) if first.fields.iter().all(|f| f.parse::<f64>().is_err()) => {
-            Some(rows.remove(0).fields)
-        }
-        _ => None,
-    };
+    let (header, rows) = rows_of(text, file, opts.delimiter)?;
     let cx = Context {
         file,
         header: header.as_deref(),

@@ -9,7 +9,9 @@ use linewarden::input::{CountOptions, ParsedCounts};
 use linewarden::limits_file::StoredLimits;
 use linewarden::stats::attributes::{self, AttributeCapability, AttributeChart, AttributeStudy};
 
-use super::study::{CapabilityArgs, ExcludeArgs, InputArgs, LimitsArgs, delimiter_byte};
+use super::study::{
+    CapabilityArgs, ExcludeArgs, InputArgs, LimitsArgs, delimiter_byte, write_limits,
+};
 
 /// Reads the samples of an attribute chart from the file `input` names.
 fn read_samples(input: &InputArgs, chart: AttributeChart) -> Result<ParsedCounts> {
@@ -271,24 +273,9 @@ fn limits_of(
     }
     let nominal = nominal_size(parsed);
     let cap = capability(chart, &s, parsed)?;
-    if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
-        let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
-        let mut stored = StoredLimits::from_attribute_study(&s, nominal, id, name, &now);
-        if let Some(by) = &a.approved_by {
-            if by.trim().is_empty() {
-                bail!(
-                    "--approved-by is empty; give the name of the engineer who approves the limits"
-                );
-            }
-            stored.approved = Some(linewarden::limits_file::Approval {
-                by: by.trim().to_string(),
-                at: now.clone(),
-                note: a.approval_note.clone(),
-            });
-        }
-        stored.write(path)?;
-        eprintln!("wrote limits for {id} to {}", path.display());
-    }
+    write_limits(a, |id, now| {
+        StoredLimits::from_attribute_study(&s, nominal, id, name, now)
+    })?;
     let plotted: Vec<f64> = parsed.samples.iter().map(|x| chart.plotted(x)).collect();
     let included = |i: usize| !s.excluded.iter().any(|e| e.subgroup == i + 1);
     if a.json {

@@ -444,6 +444,32 @@ pub(crate) fn capability_of(
     Ok(c)
 }
 
+/// With `--write FILE --characteristic ID`: the limits `make(id, now)` gives, with the approval
+/// `--approved-by` asks for, written to the file.
+pub(crate) fn write_limits(
+    a: &LimitsArgs,
+    make: impl FnOnce(&str, &str) -> StoredLimits,
+) -> Result<()> {
+    let (Some(path), Some(id)) = (&a.write, &a.characteristic) else {
+        return Ok(());
+    };
+    let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
+    let mut stored = make(id, &now);
+    if let Some(by) = &a.approved_by {
+        if by.trim().is_empty() {
+            bail!("--approved-by is empty; give the name of the engineer who approves the limits");
+        }
+        stored.approved = Some(linewarden::limits_file::Approval {
+            by: by.trim().to_string(),
+            at: now.clone(),
+            note: a.approval_note.clone(),
+        });
+    }
+    stored.write(path)?;
+    eprintln!("wrote limits for {id} to {}", path.display());
+    Ok(())
+}
+
 pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
     if let Some(id) = &a.characteristic
         && !valid_id(id)
@@ -492,24 +518,9 @@ pub(crate) fn limits(a: LimitsArgs) -> Result<()> {
         Some(spec) => Some(capability_of(&s, &subgroups, spec, &a.spec)?),
         None => None,
     };
-    if let (Some(path), Some(id)) = (&a.write, &a.characteristic) {
-        let now = humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
-        let mut stored = StoredLimits::from_study(&s, id, unit.clone(), spec, &source, &now);
-        if let Some(by) = &a.approved_by {
-            if by.trim().is_empty() {
-                bail!(
-                    "--approved-by is empty; give the name of the engineer who approves the limits"
-                );
-            }
-            stored.approved = Some(linewarden::limits_file::Approval {
-                by: by.trim().to_string(),
-                at: now.clone(),
-                note: a.approval_note.clone(),
-            });
-        }
-        stored.write(path)?;
-        eprintln!("wrote limits for {id} to {}", path.display());
-    }
+    write_limits(&a, |id, now| {
+        StoredLimits::from_study(&s, id, unit.clone(), spec, &source, now)
+    })?;
     warnings.extend(s.warnings.iter().cloned());
     if a.json {
         if let Some(c) = &cap {

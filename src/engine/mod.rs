@@ -1209,7 +1209,7 @@ impl CharEngine {
                 } else {
                     format!(" {}", self.cfg.unit)
                 };
-                let mut message = format!(
+                let message = format!(
                     "provisional limits learned from {} subgroups ({} excluded): centre {}{u}, limits {}{u} to {}{u}, sigma {}{u}. Until an engineer approves them (linewarden approve {} --by NAME) alerts on them are at most {}",
                     s.subgroups_total,
                     s.excluded.len(),
@@ -1220,40 +1220,59 @@ impl CharEngine {
                     self.cfg.id,
                     self.cfg.provisional_severity.name(),
                 );
-                for w in &s.warnings {
-                    message.push_str("; ");
-                    message.push_str(w);
-                }
-                out.push(Output::Log {
-                    level: Level::Warn,
-                    characteristic: self.cfg.id.clone(),
-                    message: message.clone(),
-                });
-                out.push(Output::Record(Record::LimitsInstalled {
-                    characteristic: self.cfg.id.clone(),
-                    old: None,
-                    new: Box::new(limits.clone()),
-                    reason: message,
-                    file: self
-                        .cfg
-                        .limits_path
-                        .as_ref()
-                        .map(|p| p.display().to_string()),
-                }));
-                self.install_learned(limits, out);
+                self.announce_learned(message, &s.warnings, limits, out);
             }
-            Err(e) => {
-                out.push(Output::Log {
-                    level: Level::Warn,
-                    characteristic: self.cfg.id.clone(),
-                    message: format!(
-                        "the baseline of {} subgroups gives no limits yet ({e}); learning goes on with the newest subgroups",
-                        baseline.len()
-                    ),
-                });
-                baseline.remove(0);
-            }
+            Err(e) => self.not_learned(&e, out),
         }
+    }
+
+    /// Says and records limits just learned (`message`, with the study's `warnings`), and
+    /// starts checking against them.
+    fn announce_learned(
+        &mut self,
+        mut message: String,
+        warnings: &[String],
+        limits: StoredLimits,
+        out: &mut Vec<Output>,
+    ) {
+        for w in warnings {
+            message.push_str("; ");
+            message.push_str(w);
+        }
+        out.push(Output::Log {
+            level: Level::Warn,
+            characteristic: self.cfg.id.clone(),
+            message: message.clone(),
+        });
+        out.push(Output::Record(Record::LimitsInstalled {
+            characteristic: self.cfg.id.clone(),
+            old: None,
+            new: Box::new(limits.clone()),
+            reason: message,
+            file: self
+                .cfg
+                .limits_path
+                .as_ref()
+                .map(|p| p.display().to_string()),
+        }));
+        self.install_learned(limits, out);
+    }
+
+    /// A full baseline that gives no limits yet: says why, and learning goes on with the
+    /// newest subgroups.
+    fn not_learned(&mut self, e: &dyn std::fmt::Display, out: &mut Vec<Output>) {
+        let Mode::Learning { baseline } = &mut self.mode else {
+            return;
+        };
+        out.push(Output::Log {
+            level: Level::Warn,
+            characteristic: self.cfg.id.clone(),
+            message: format!(
+                "the baseline of {} subgroups gives no limits yet ({e}); learning goes on with the newest subgroups",
+                baseline.len()
+            ),
+        });
+        baseline.remove(0);
     }
 
     /// [`CharEngine::maybe_learn`] for an attribute chart: the attribute study with automatic
@@ -1326,7 +1345,7 @@ impl CharEngine {
                     basis.with_unit_pub(limits.location.lcl),
                     basis.with_unit_pub(limits.location.ucl),
                 );
-                let mut message = format!(
+                let message = format!(
                     "provisional limits learned from {} subgroups ({} excluded): {} chart, centre {}, limits {lcl} to {ucl} at {nominal} units inspected{clamped}. Until an engineer approves them (linewarden approve {} --by NAME) alerts on them are at most {}",
                     s.samples_total,
                     s.excluded.len(),
@@ -1335,39 +1354,9 @@ impl CharEngine {
                     self.cfg.id,
                     self.cfg.provisional_severity.name(),
                 );
-                for w in &s.warnings {
-                    message.push_str("; ");
-                    message.push_str(w);
-                }
-                out.push(Output::Log {
-                    level: Level::Warn,
-                    characteristic: self.cfg.id.clone(),
-                    message: message.clone(),
-                });
-                out.push(Output::Record(Record::LimitsInstalled {
-                    characteristic: self.cfg.id.clone(),
-                    old: None,
-                    new: Box::new(limits.clone()),
-                    reason: message,
-                    file: self
-                        .cfg
-                        .limits_path
-                        .as_ref()
-                        .map(|p| p.display().to_string()),
-                }));
-                self.install_learned(limits, out);
+                self.announce_learned(message, &s.warnings, limits, out);
             }
-            Err(e) => {
-                out.push(Output::Log {
-                    level: Level::Warn,
-                    characteristic: self.cfg.id.clone(),
-                    message: format!(
-                        "the baseline of {} subgroups gives no limits yet ({e}); learning goes on with the newest subgroups",
-                        baseline.len()
-                    ),
-                });
-                baseline.remove(0);
-            }
+            Err(e) => self.not_learned(&e, out),
         }
     }
 
