@@ -762,9 +762,30 @@ fn limits_and_capability_of_an_attribute_chart_from_a_file() {
         assert!((sample["ucl"].as_f64().unwrap() - ucl).abs() < 1e-9);
         assert!(sample["lcl"].as_f64().unwrap() >= 0.0);
     }
+    // Its capability is the defects per unit with the exact Poisson interval: scipy 1.17.1,
+    // chi2.ppf(0.025, 2·51)/2/18.75 and chi2.ppf(0.975, 2·51 + 2)/2/18.75.
+    let c = &v["capability"];
+    assert_eq!(c["defects_per_unit"].as_f64().unwrap(), 51.0 / 18.75);
+    for (key, want) in [
+        ("defects_per_unit_low", 2.025218658042174),
+        ("defects_per_unit_high", 3.5762976734188685),
+    ] {
+        let got = c[key].as_f64().unwrap();
+        assert!((got - want).abs() < 1e-9 * want, "{key}: {got} vs {want}");
+    }
+    // Montgomery's circuit boards: 516 nonconformities in 26 inspection units, c̄ 19.85;
+    // scipy: chi2.ppf(0.025, 1032)/2/26 and chi2.ppf(0.975, 1034)/2/26.
+    let boards = dir.path().join("boards.csv");
+    let mut text = String::from("count\n");
+    for c in BOARDS {
+        text.push_str(&format!("{c}\n"));
+    }
+    std::fs::write(&boards, text).unwrap();
+    let (ok, out, err) = cli(&["capability", "--input", &s(&boards), "--chart", "c"]);
+    assert!(ok, "{err}");
     assert!(
-        v["capability"].is_null(),
-        "a u chart has no fraction nonconforming"
+        out.contains("defects per unit        516 in 26 units = 19.8462, 95% exact interval (Poisson) 18.1705 to 21.6348"),
+        "{out}"
     );
 }
 
@@ -872,10 +893,18 @@ fn a_bad_file_of_samples_is_refused_naming_the_place() {
         ),
         "{err}"
     );
-    let (ok, _, err) = cli(&["capability", "--input", &s(&csv), "--chart", "c"]);
+    let (ok, _, err) = cli(&[
+        "capability",
+        "--input",
+        &s(&csv),
+        "--chart",
+        "c",
+        "--usl",
+        "3",
+    ]);
     assert!(!ok);
     assert!(
-        err.contains("the fraction nonconforming is for pass/fail results"),
+        err.contains("--lsl, --usl and --target do not apply to a c chart"),
         "{err}"
     );
 }

@@ -1,4 +1,4 @@
-//! `limits --chart p|np|c|u` and `capability --chart p|np`: attribute charts at the desk, from a
+//! `limits --chart p|np|c|u` and `capability --chart p|np|c|u`: attribute charts at the desk, from a
 //! file of samples (a count column and a size column).
 
 use anyhow::{Context, Result, bail};
@@ -7,7 +7,9 @@ use serde_json::json;
 use linewarden::format::{fixed, fixed_pair};
 use linewarden::input::{CountOptions, ParsedCounts};
 use linewarden::limits_file::StoredLimits;
-use linewarden::stats::attributes::{self, AttributeCapability, AttributeChart, AttributeStudy};
+use linewarden::stats::attributes::{
+    self, AttributeCapability, AttributeChart, AttributeStudy, DefectRate,
+};
 
 use super::study::{
     CapabilityArgs, ExcludeArgs, InputArgs, LimitsArgs, delimiter_byte, write_limits,
@@ -97,27 +99,65 @@ fn chart_words(chart: AttributeChart) -> &'static str {
     }
 }
 
-/// The capability of the samples used, for p and np: the fraction nonconforming with its exact
-/// interval.
+/// What the process makes, from the samples used: the fraction nonconforming (p, np) or the
+/// defects per unit (c, u), each with its exact interval.
+enum Capability {
+    Fraction(AttributeCapability),
+    Rate(DefectRate),
+}
+
 fn capability(
     chart: AttributeChart,
     s: &AttributeStudy,
     parsed: &ParsedCounts,
-) -> Result<Option<AttributeCapability>> {
-    if !matches!(chart, AttributeChart::P | AttributeChart::Np) {
-        return Ok(None);
-    }
+) -> Result<Capability> {
     let used = |i: &usize| !s.excluded.iter().any(|e| e.subgroup == i + 1);
     let (x, n) = (0..parsed.samples.len())
         .filter(used)
-        .fold((0u64, 0u64), |(x, n), i| {
+        .fold((0.0, 0.0), |(x, n), i| {
             let sm = &parsed.samples[i];
-            (x + sm.count as u64, n + sm.size as u64)
+            (x + sm.count, n + sm.size)
         });
-    Ok(Some(attributes::attribute_capability(x, n, 0.95)?))
+    // Counts and (for parts) sizes are whole: checked when the file was read.
+    Ok(match chart {
+        AttributeChart::P | AttributeChart::Np => {
+            Capability::Fraction(attributes::attribute_capability(x as u64, n as u64, 0.95)?)
+        }
+        AttributeChart::C | AttributeChart::U => {
+            Capability::Rate(attributes::defect_rate(x as u64, n, 0.95)?)
+        }
+    })
 }
 
-fn capability_text(c: &AttributeCapability) -> String {
+fn capability_text(c: &Capability) -> String {
+    match c {
+        Capability::Fraction(f) => fraction_text(f),
+        Capability::Rate(r) => format!(
+            "\nCapability (attribute data: the samples used)\n  defects per unit        {} in {} units = {}, 95% exact interval (Poisson) {} to {}\n",
+            r.defects,
+            linewarden::format::num(r.units),
+            fixed(r.rate, 4),
+            fixed(r.rate_low, 4),
+            fixed(r.rate_high, 4),
+        ),
+    }
+}
+
+fn capability_json(c: &Capability) -> serde_json::Value {
+    match c {
+        Capability::Fraction(f) => fraction_json(f),
+        Capability::Rate(r) => json!({
+            "defects": r.defects,
+            "units": r.units,
+            "confidence": r.confidence,
+            "defects_per_unit": r.rate,
+            "defects_per_unit_low": r.rate_low,
+            "defects_per_unit_high": r.rate_high,
+        }),
+    }
+}
+
+fn fraction_text(c: &AttributeCapability) -> String {
     let pct = |p: f64| format!("{}%", fixed(100.0 * p, 2));
     let z = |v: f64| {
         if v.is_infinite() {
@@ -143,7 +183,7 @@ fn capability_text(c: &AttributeCapability) -> String {
     )
 }
 
-fn capability_json(c: &AttributeCapability) -> serde_json::Value {
+fn fraction_json(c: &AttributeCapability) -> serde_json::Value {
     // JSON has no infinity: no nonconforming part gives a null Z.
     let z = |v: f64| if v.is_finite() { json!(v) } else { json!(null) };
     json!({
@@ -299,7 +339,7 @@ fn limits_of(
                 "ucl": s.limits[i].ucl, "lcl": s.limits[i].lcl,
                 "included": included(i), "beyond": s.limits[i].beyond(plotted[i]),
             })).collect::<Vec<_>>(),
-            "capability": cap.as_ref().map(capability_json),
+            "capability": capability_json(&cap),
             "warnings": s.warnings,
         });
         println!("{}", serde_json::to_string_pretty(&v)?);
@@ -307,7 +347,7 @@ fn limits_of(
     }
     print!(
         "{}",
-        report_text(chart, name, parsed, &s, cap.as_ref(), label, nominal)
+        report_text(chart, name, parsed, &s, &cap, label, nominal)
     );
     Ok(())
 }
@@ -320,7 +360,7 @@ fn report_text(
     name: &str,
     parsed: &ParsedCounts,
     s: &AttributeStudy,
-    cap: Option<&AttributeCapability>,
+    cap: &Capability,
     label: &str,
     nominal: usize,
 ) -> String {
@@ -438,9 +478,7 @@ fn report_text(
             ));
         }
     }
-    if let Some(c) = cap {
-        out.push_str(&capability_text(c));
-    }
+    out.push_str(&capability_text(cap));
     if !s.warnings.is_empty() {
         out.push_str("\nWarnings\n");
         for w in &s.warnings {
@@ -464,34 +502,25 @@ pub(crate) fn window_text(
         &name,
         &parsed,
         &s,
-        cap.as_ref(),
+        &cap,
         "subgroup",
         nominal_size(&parsed),
     ))
 }
 
-/// `capability --chart p|np`: the fraction nonconforming of the samples, with its interval.
+/// `capability --chart p|np|c|u`: the fraction nonconforming (p, np) or the defects per unit
+/// (c, u) of the samples used, with its exact interval.
 pub(crate) fn capability_cmd(a: &CapabilityArgs, chart: AttributeChart) -> Result<()> {
-    if !matches!(chart, AttributeChart::P | AttributeChart::Np) {
-        bail!(
-            "capability --chart {}: the fraction nonconforming is for pass/fail results (p or np); a {} chart counts defects, whose rate the limits study gives (limits --chart {})",
-            chart.name(),
-            chart.name(),
-            chart.name()
-        );
-    }
     if a.spec.lsl.is_some() || a.spec.usl.is_some() || a.spec.target.is_some() {
         bail!(
-            "--lsl, --usl and --target do not apply to a {} chart: a part's result is already pass or fail",
+            "--lsl, --usl and --target do not apply to a {} chart: it counts nonconforming parts or defects",
             chart.name()
         );
     }
     let name = a.input.input.display().to_string();
     let parsed = read_samples(&a.input, chart)?;
     let s = run(chart, &parsed, &a.exclude, &name)?;
-    let Some(cap) = capability(chart, &s, &parsed)? else {
-        bail!("no capability for the {} chart", chart.name());
-    };
+    let cap = capability(chart, &s, &parsed)?;
     if a.json {
         let mut v = capability_json(&cap);
         v["chart"] = json!(chart.name());

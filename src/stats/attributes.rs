@@ -451,9 +451,93 @@ pub fn attribute_capability(
     })
 }
 
+/// Defects per unit with its exact interval: what a c or u chart's process makes.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct DefectRate {
+    pub defects: u64,
+    /// Units inspected (inspection units for a c chart).
+    pub units: f64,
+    pub confidence: f64,
+    /// Defects per unit.
+    pub rate: f64,
+    /// The exact two-sided interval of the rate (Poisson, from chi-square quantiles).
+    pub rate_low: f64,
+    pub rate_high: f64,
+}
+
+/// Defects per unit, `defects` found in `units`, with the exact Poisson interval at
+/// `confidence`: χ²(α/2; 2x)/2 and χ²(1−α/2; 2x+2)/2 over the units (0 below when none was
+/// found), through the gamma distribution those quantiles are.
+pub fn defect_rate(defects: u64, units: f64, confidence: f64) -> Result<DefectRate, StatsError> {
+    use statrs::distribution::{ContinuousCDF, Gamma};
+    let bad = |name, value, expected| StatsError::BadParameter {
+        name,
+        value,
+        expected,
+    };
+    if !(units > 0.0 && units.is_finite()) {
+        return Err(bad("units", units, "more than zero units inspected"));
+    }
+    if !(confidence > 0.0 && confidence < 1.0) {
+        return Err(bad(
+            "confidence",
+            confidence,
+            "a level between 0 and 1, such as 0.95",
+        ));
+    }
+    let alpha = 1.0 - confidence;
+    let x = defects as f64;
+    let quantile = |shape: f64, p: f64| {
+        Gamma::new(shape, 1.0)
+            .map(|g| g.inverse_cdf(p))
+            .unwrap_or(f64::NAN)
+    };
+    let low = if defects == 0 {
+        0.0
+    } else {
+        quantile(x, alpha / 2.0)
+    };
+    let high = quantile(x + 1.0, 1.0 - alpha / 2.0);
+    Ok(DefectRate {
+        defects,
+        units,
+        confidence,
+        rate: x / units,
+        rate_low: low / units,
+        rate_high: high / units,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    // Reference values: scipy 1.17.1, scipy.stats.chi2.ppf(0.025, 2x)/2/n and
+    // chi2.ppf(0.975, 2x + 2)/2/n (the exact Poisson interval).
+    #[test]
+    fn defect_rate_interval_matches_scipy() {
+        for (x, n, lo, hi) in [
+            (516, 26.0, 18.170490954366514, 21.63478480476706),
+            (51, 18.75, 2.025218658042174, 3.5762976734188685),
+            (0, 10.0, 0.0, 0.3688879454113935),
+            (3, 1.0, 0.6186721228956014, 8.767273069742323),
+        ] {
+            let r = defect_rate(x, n, 0.95).unwrap();
+            assert!(
+                close(r.rate_low, lo, 1e-9) || (lo == 0.0 && r.rate_low == 0.0),
+                "{x}/{n}: {} vs {lo}",
+                r.rate_low
+            );
+            assert!(
+                close(r.rate_high, hi, 1e-9),
+                "{x}/{n}: {} vs {hi}",
+                r.rate_high
+            );
+            assert_eq!(r.rate, x as f64 / n);
+        }
+        assert!(defect_rate(3, 0.0, 0.95).is_err());
+        assert!(defect_rate(3, 1.0, 1.0).is_err());
+    }
 
     fn close(a: f64, b: f64, rel: f64) -> bool {
         (a - b).abs() <= rel * b.abs()
