@@ -5,6 +5,8 @@ use linewarden::rules::arl::{self, ArlOptions, Method, cusum_arl, ewma_arl};
 use linewarden::rules::config::{ChartSide, Rule, RuleKind, RuleSet};
 use linewarden::rules::{Preset, Severity};
 
+mod common;
+
 fn single(kind: RuleKind) -> RuleSet {
     RuleSet::new(vec![Rule {
         id: kind.name().to_string(),
@@ -138,17 +140,7 @@ fn monte_carlo_agrees_with_the_exact_chain() {
 /// bad values are refused with the flag named.
 #[test]
 fn attribute_chart_arls_from_the_command_line_match_scipy() {
-    let run = |args: &[&str]| {
-        let o = std::process::Command::new(env!("CARGO_BIN_EXE_linewarden"))
-            .args(args)
-            .output()
-            .unwrap();
-        (
-            o.status.success(),
-            String::from_utf8_lossy(&o.stdout).into_owned(),
-            String::from_utf8_lossy(&o.stderr).into_owned(),
-        )
-    };
+    let run = common::peers::cli;
     let (ok, out, err) = run(&[
         "arl", "--chart", "np", "--p0", "0.1", "--n", "400", "--at", "0.1,0.15", "--json",
     ]);

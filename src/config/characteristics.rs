@@ -656,43 +656,51 @@ fn attribute_settings(
             format!("{who}: {key} does not apply to {kind}: {why}"),
         ));
     };
-    if c.spec.is_some() {
-        does_not_apply(
+    let either = |a: bool, b: bool, first: &'static str, second: &'static str| {
+        (if a { first } else { second }, a || b)
+    };
+    let (valid_key, valid_set) = either(
+        c.valid_min.is_some(),
+        c.valid_max.is_some(),
+        "valid_min",
+        "valid_max",
+    );
+    let (policy_key, policy_set) = either(
+        c.limits_policy.is_some(),
+        c.limits_reason.is_some(),
+        "limits_policy",
+        "limits_reason",
+    );
+    for (key, set, why) in [
+        (
             "spec",
+            c.spec.is_some(),
             "it judges counts, not measurements against specification limits",
-        );
-    }
-    if c.valid_min.is_some() || c.valid_max.is_some() {
-        does_not_apply(
-            if c.valid_min.is_some() {
-                "valid_min"
-            } else {
-                "valid_max"
-            },
+        ),
+        (
+            valid_key,
+            valid_set,
             "counts are checked as counts (whole, zero or more, no more nonconforming than inspected)",
-        );
-    }
-    if c.unit.is_some() {
-        does_not_apply(
+        ),
+        (
             "unit",
+            c.unit.is_some(),
             "its values are counts and fractions of the units inspected",
-        );
-    }
-    if c.learning.chart.is_some() {
-        does_not_apply(
+        ),
+        (
             "learning.chart",
+            c.learning.chart.is_some(),
             "the chart is the characteristic's chart key",
-        );
-    }
-    if c.limits_policy.is_some() || c.limits_reason.is_some() {
-        does_not_apply(
-            if c.limits_policy.is_some() {
-                "limits_policy"
-            } else {
-                "limits_reason"
-            },
+        ),
+        (
+            policy_key,
+            policy_set,
             "its limits always follow from the stored centre, and the file is checked for that",
-        );
+        ),
+    ] {
+        if set {
+            does_not_apply(key, why);
+        }
     }
     let counts = matches!(chart, AttributeChart::C | AttributeChart::U);
     if counts {

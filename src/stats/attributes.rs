@@ -265,7 +265,7 @@ pub fn beyond_limits_probability(
     size: f64,
     true_value: f64,
 ) -> Result<(f64, f64), StatsError> {
-    use statrs::distribution::{Binomial, DiscreteCDF, Poisson};
+    use statrs::distribution::{Binomial, Poisson};
     let bad = |name, value, expected| StatsError::BadParameter {
         name,
         value,
@@ -296,19 +296,7 @@ pub fn beyond_limits_probability(
                     true_value,
                     "a fraction from 0 to 1",
                 ))?;
-            let above = if within_up >= size {
-                0.0
-            } else if within_up < 0.0 {
-                1.0
-            } else {
-                b.sf(within_up as u64)
-            };
-            let below = if within_down <= 0.0 {
-                0.0
-            } else {
-                b.cdf(within_down as u64 - 1)
-            };
-            Ok((above, below))
+            Ok(tails(&b, within_up, within_down, Some(size)))
         }
         AttributeChart::C | AttributeChart::U => {
             let mean = if chart == AttributeChart::C {
@@ -320,19 +308,32 @@ pub fn beyond_limits_probability(
                 .ok()
                 .filter(|_| mean > 0.0 && mean.is_finite())
                 .ok_or(bad("defect rate", true_value, "a positive rate"))?;
-            let above = if within_up < 0.0 {
-                1.0
-            } else {
-                d.sf(within_up as u64)
-            };
-            let below = if within_down <= 0.0 {
-                0.0
-            } else {
-                d.cdf(within_down as u64 - 1)
-            };
-            Ok((above, below))
+            Ok(tails(&d, within_up, within_down, None))
         }
     }
+}
+
+/// P(count > `within_up`) and P(count < `within_down`) of a count distribution whose counts
+/// reach at most `max` (binomial) or have no end (Poisson).
+fn tails(
+    d: &impl statrs::distribution::DiscreteCDF<u64, f64>,
+    within_up: f64,
+    within_down: f64,
+    max: Option<f64>,
+) -> (f64, f64) {
+    let above = if max.is_some_and(|m| within_up >= m) {
+        0.0
+    } else if within_up < 0.0 {
+        1.0
+    } else {
+        d.sf(within_up as u64)
+    };
+    let below = if within_down <= 0.0 {
+        0.0
+    } else {
+        d.cdf(within_down as u64 - 1)
+    };
+    (above, below)
 }
 
 /// The average run length of the beyond-limits rule on an attribute chart (samples until the
