@@ -9,6 +9,17 @@ pub fn sig(v: f64, digits: usize) -> String {
     if v == 0.0 {
         return "0".to_string();
     }
+    if is_extreme(v) {
+        // 1e308 as 309 digits, or 5e-324 as "0", would read wrong: the power of ten instead.
+        let s = format!("{:.*e}", digits.max(1) - 1, v);
+        let (mantissa, exp) = s.split_once('e').unwrap_or((&s, "0"));
+        let mantissa = if mantissa.contains('.') {
+            mantissa.trim_end_matches('0').trim_end_matches('.')
+        } else {
+            mantissa
+        };
+        return format!("{mantissa}e{exp}");
+    }
     let magnitude = v.abs().log10().floor() as i64;
     let decimals = (digits as i64 - 1 - magnitude).clamp(0, 15) as usize;
     let mut s = format!("{v:.decimals$}");
@@ -23,6 +34,65 @@ pub fn sig(v: f64, digits: usize) -> String {
     if s == "-0" { "0".to_string() } else { s }
 }
 
+/// Whether `v` is too large or too small to print in plain decimals: from 1e16 (beyond every
+/// whole number a double holds exactly) and below 1e-10 (where fixed decimals run out).
+pub fn is_extreme(v: f64) -> bool {
+    v.is_finite() && v != 0.0 && !(1e-10..1e16).contains(&v.abs())
+}
+
+/// `v` as a person would write it back: the shortest decimals that read back as the same
+/// double, in powers of ten when it is extreme (`1e308`, not 309 digits).
+pub fn plain(v: f64) -> String {
+    if is_extreme(v) {
+        format!("{v:e}")
+    } else {
+        v.to_string()
+    }
+}
+
+/// The most bytes of a message kept as its raw text in a rejected reading's record.
+pub const RAW_BYTES: usize = 200;
+
+/// What arrived, as text for the record: the bytes as received, at most [`RAW_BYTES`] of
+/// them (a cut is said, with the full length), bytes that are not UTF-8 written `\xNN` and
+/// control characters `\u{..}`. Never the value parsed from them: `1e999` stays `1e999`.
+pub fn raw_text(bytes: &[u8]) -> String {
+    let cut = bytes.len() > RAW_BYTES;
+    let shown = &bytes[..bytes.len().min(RAW_BYTES)];
+    let mut out = String::with_capacity(shown.len() + 8);
+    for chunk in shown.utf8_chunks() {
+        for c in chunk.valid().chars() {
+            if c.is_control() {
+                out.push_str(&c.escape_unicode().to_string());
+            } else {
+                out.push(c);
+            }
+        }
+        for b in chunk.invalid() {
+            out.push_str(&format!("\\x{b:02x}"));
+        }
+    }
+    if cut {
+        out.push_str(&format!("… ({} bytes in all)", bytes.len()));
+    }
+    out
+}
+
+/// A number read from text, refused when the text is a number too large for a double
+/// (`1e999`, a 500-digit integer) or names a non-number (`inf`, `NaN`): the error quotes the
+/// text as it came. Rust's parser reads those as infinities or NaN without complaint.
+pub fn finite_number(text: &str) -> Result<f64, String> {
+    let t = text.trim();
+    match t.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(_) => Err(format!(
+            "\"{}\" is not a finite number (beyond ±1.8e308, or not a number at all)",
+            raw_text(t.as_bytes())
+        )),
+        Err(_) => Err(format!("\"{}\" is not a number", raw_text(t.as_bytes()))),
+    }
+}
+
 /// [`sig`] with six significant digits, the default for limits and statistics.
 pub fn num(v: f64) -> String {
     sig(v, 6)
@@ -33,6 +103,10 @@ pub fn num(v: f64) -> String {
 pub fn fixed(v: f64, decimals: usize) -> String {
     if !v.is_finite() {
         return v.to_string();
+    }
+    if v.abs() >= 1e16 {
+        // Fixed decimals of 1e308 are 309 digits that no one reads: the power of ten.
+        return sig(v, 6);
     }
     let s = format!("{v:.decimals$}");
     // "-0.000" is zero.
@@ -209,6 +283,64 @@ pub fn html(s: &str) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// What broke: a count of 1e308 was printed as 309 digits in a rejection's reason, and
+    /// 5e-324 as "0" (a non-zero figure printed as zero reads false).
+    #[test]
+    fn extreme_numbers_print_in_powers_of_ten() {
+        assert_eq!(sig(1e308, 6), "1e308");
+        assert_eq!(sig(-f64::MAX, 6), "-1.79769e308");
+        assert_eq!(sig(5e-324, 6), "4.94066e-324");
+        assert_eq!(sig(1.5e-11, 6), "1.5e-11");
+        assert_eq!(num(9_007_199_254_740_992.0), "9007199254740992");
+        assert_eq!(num(12.0043), "12.0043");
+        assert_eq!(num(0.000815), "0.000815");
+        assert_eq!(fixed(1e308, 4), "1e308");
+        assert_eq!(plain(1e308), "1e308");
+        assert_eq!(plain(12.5), "12.5");
+        assert_eq!(plain(12.0), "12");
+        for v in [1e16, 1e-11, f64::MAX, f64::MIN_POSITIVE, 5e-324, -3.3e200] {
+            assert_eq!(plain(v).parse::<f64>().unwrap(), v, "{v}");
+        }
+    }
+
+    /// What broke: `1e999` was archived as "inf", a 500-digit number likewise, `0x14` with the
+    /// topic before it. The text is what came, bounded and escaped.
+    #[test]
+    fn raw_text_is_what_arrived_bounded_and_escaped() {
+        assert_eq!(raw_text(b"1e999"), "1e999");
+        assert_eq!(raw_text(b"0x14"), "0x14");
+        assert_eq!(raw_text(b"12.5\x07"), "12.5\\u{7}");
+        assert_eq!(raw_text(b"\xff12"), "\\xff12");
+        let long = "9".repeat(500);
+        assert_eq!(
+            raw_text(long.as_bytes()),
+            format!("{}… (500 bytes in all)", "9".repeat(200))
+        );
+        // Cut inside a character: the partial bytes are written as bytes.
+        let s = format!("{}é", "a".repeat(199));
+        assert_eq!(
+            raw_text(s.as_bytes()),
+            format!("{}\\xc3… (201 bytes in all)", "a".repeat(199))
+        );
+        for t in [
+            "1e999",
+            "-1E400",
+            "inf",
+            "Infinity",
+            "NaN",
+            &"9".repeat(400),
+        ] {
+            let why = finite_number(t).unwrap_err();
+            assert!(why.contains("not a finite number"), "{t}: {why}");
+        }
+        assert_eq!(finite_number(" 12.5 "), Ok(12.5));
+        assert!(
+            finite_number("0x14")
+                .unwrap_err()
+                .contains("\"0x14\" is not a number")
+        );
+    }
 
     /// The regression: `subgroup mean 12.0047 mm is above the upper control limit 12.0047 mm`.
     #[test]

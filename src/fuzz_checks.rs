@@ -368,3 +368,120 @@ pub fn web_request(data: &[u8]) {
         }
     }
 }
+
+/// The cell the extreme-number target drives: a measured characteristic of each chart, with
+/// EWMA and CUSUM among their rules, and a u chart, all learning their limits from a few
+/// subgroups so that learned limits meet the numbers too.
+const EXTREME_CELL: &str = r#"[daemon]
+archive_dir = "a"
+[[characteristic]]
+id = "single"
+subgroup = { size = 1 }
+learning = { subgroups = 8 }
+[characteristic.rules]
+preset = "nelson"
+[[characteristic.rules.rule]]
+kind = "ewma"
+lambda = 0.2
+width = 2.962
+[[characteristic.rules.rule]]
+kind = "cusum"
+k = 0.5
+h = 4.77
+[[characteristic]]
+id = "group"
+subgroup = { size = 3 }
+learning = { subgroups = 8 }
+[characteristic.rules]
+preset = "western-electric"
+[[characteristic]]
+id = "defects"
+chart = "u"
+subgroup = { size = 2 }
+learning = { subgroups = 8 }
+[characteristic.rules]
+[[characteristic.rules.rule]]
+kind = "beyond-limits"
+"#;
+
+/// Arbitrary numbers (any bit pattern: huge, tiny, subnormal, infinite, NaN) as readings of
+/// measured and attribute characteristics through the pure engine, as the daemon drives it:
+/// whatever is accepted, every record the engine asks to archive reads back (no figure that
+/// JSON cannot hold), and every limits file it asks to write would load.
+pub fn extreme_numbers(data: &[u8]) {
+    use crate::engine::{Engine, Incoming, Output};
+    let Ok(cfg) = crate::config::parse(EXTREME_CELL, Path::new("/fuzz/cell.toml")) else {
+        panic!("the extreme-number cell does not validate");
+    };
+    let mut engine = Engine::new(&cfg, 0);
+    let ids = ["single", "group", "defects"];
+    let mut seq = 0u64;
+    let mut t = 1_000i64;
+    let check = |outputs: Vec<Output>| {
+        for o in outputs {
+            match o {
+                Output::Record(record) => {
+                    let env = crate::archive::Envelope {
+                        v: crate::archive::record::RECORD_VERSION,
+                        seq: 1,
+                        time_ms: 0,
+                        record,
+                    };
+                    let text = serde_json::to_vec(&env).expect("a record serializes");
+                    if let Err(e) = segment::envelope(&text) {
+                        panic!(
+                            "a {} record does not read back ({e}): {}",
+                            env.record.kind(),
+                            String::from_utf8_lossy(&text)
+                        );
+                    }
+                }
+                Output::WriteLimits { limits, .. } => {
+                    if let Err(e) = limits.check("learned") {
+                        panic!("learned limits would not load: {e}");
+                    }
+                }
+                _ => {}
+            }
+        }
+    };
+    for chunk in data.chunks_exact(17) {
+        let c = ids[usize::from(chunk[0]) % ids.len()];
+        let value = f64::from_le_bytes(chunk[1..9].try_into().expect("8 bytes"));
+        let units = f64::from_le_bytes(chunk[9..17].try_into().expect("8 bytes"));
+        // Small whole counts as well as any bit pattern, so the u chart forms subgroups.
+        let (value, inspected) = if c == "defects" {
+            if chunk[0] & 0x80 == 0 {
+                (f64::from(chunk[1] % 8), Some(units))
+            } else {
+                (value, Some(units))
+            }
+        } else {
+            (value, None)
+        };
+        t += 1000;
+        let mut inc = Incoming {
+            source: "fuzz".into(),
+            characteristic: c.to_string(),
+            value,
+            unit: None,
+            source_time_ms: None,
+            source_time_ignored: false,
+            arrival_ms: t,
+            part: None,
+            source_key: None,
+            word: None,
+            inspected,
+            sent: None,
+        };
+        if engine.admit(&mut inc).is_ok() {
+            seq += 1;
+            check(engine.accept(seq, &inc));
+        }
+        if chunk[0] & 0x40 != 0 {
+            check(engine.tick(t));
+        }
+    }
+    let snapshot = engine.snapshot().into_iter().map(Output::Record).collect();
+    check(snapshot);
+}

@@ -591,8 +591,17 @@ impl StoredLimits {
         self.common_problems(bad);
     }
 
-    /// Writes the file atomically (see [`crate::fsutil::write_atomic`]).
+    /// The problems these limits would have as a file (figures that are not finite numbers,
+    /// limits out of order, ...): limits that would not load are never written nor installed.
+    /// `what` names them in messages.
+    pub fn check(&self, what: &str) -> Result<(), Problems> {
+        Self::parse(&self.to_toml(), what).map(|_| ())
+    }
+
+    /// Writes the file atomically (see [`crate::fsutil::write_atomic`]), after checking that it
+    /// would load: a file that would block the next start is never written.
     pub fn write(&self, path: &Path) -> Result<(), LimitsFileError> {
+        self.check(&path.display().to_string())?;
         crate::fsutil::write_atomic(path, self.to_toml().as_bytes()).map_err(|source| {
             LimitsFileError::Write {
                 path: path.display().to_string(),

@@ -117,6 +117,19 @@ fn main() -> ExitCode {
         unsafe {
             libc::signal(libc::SIGPIPE, libc::SIG_DFL);
         }
+        // The library's warnings (an unreadable record skipped while reading an archive, ...)
+        // reach the person at the desk on standard error, plainly.
+        tracing_subscriber::fmt()
+            .with_writer(std::io::stderr)
+            .with_env_filter(
+                tracing_subscriber::EnvFilter::try_from_default_env()
+                    .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
+            )
+            .with_target(false)
+            .without_time()
+            .with_level(true)
+            .with_ansi(false)
+            .init();
     }
     let result = match cli.command {
         Command::Limits(a) => limits(a),

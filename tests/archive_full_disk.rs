@@ -61,7 +61,7 @@ fn the_writer_pauses_on_a_full_disk_and_resumes_without_loss() {
 
     let mut status = handle.status();
     let deadline = Instant::now() + Duration::from_secs(60);
-    while !matches!(status.borrow().state, WriterState::DiskFull { .. }) {
+    while !matches!(status.borrow().state, WriterState::Held { .. }) {
         assert!(Instant::now() < deadline, "the disk never filled");
         std::thread::sleep(Duration::from_millis(5));
     }
@@ -94,7 +94,7 @@ fn the_writer_pauses_on_a_full_disk_and_resumes_without_loss() {
     );
     assert!(matches!(
         status.borrow_and_update().state,
-        WriterState::DiskFull { .. }
+        WriterState::Held { .. }
     ));
 
     // Free space: the writer resumes by itself, and takes what waited in the queue.

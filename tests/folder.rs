@@ -322,3 +322,95 @@ fn bad_rows_are_archived_as_rejected_and_a_copied_report_is_archived_once() {
         "the two copies are on record: {reasons:?}"
     );
 }
+
+/// What broke: a `*.csv` symbolic link to a file outside the folder was followed, its cells
+/// archived as rejected readings, and for /etc/passwd the `.error` file written back into the
+/// share showed its first line. Every kind of entry that is not a regular file of its own (a
+/// link to a file, to a directory, dangling; a named pipe; a directory; a hard link) is moved
+/// aside with the reason, and nothing of what it points to reaches the archive or any file in
+/// the share. A regular report beside them is read as ever.
+#[test]
+fn a_link_or_other_entry_dropped_as_a_report_is_never_followed() {
+    use std::os::unix::fs::symlink;
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let cfg = cell(d);
+    let inbox = d.join("inbox");
+    // A secret outside the folder, shaped like a report so that reading it would show.
+    let secret = d.join("secret.txt");
+    std::fs::write(&secret, "Serial,Bore,Face\nSECRET-LINE,12.001,38.2\n").unwrap();
+    std::fs::create_dir_all(d.join("elsewhere")).unwrap();
+    symlink(&secret, inbox.join("to-secret.csv")).unwrap();
+    symlink("/etc/passwd", inbox.join("passwd.csv")).unwrap();
+    symlink(d.join("elsewhere"), inbox.join("to-dir.csv")).unwrap();
+    symlink(d.join("nowhere"), inbox.join("dangling.csv")).unwrap();
+    std::fs::create_dir(inbox.join("folder.csv")).unwrap();
+    let fifo = std::ffi::CString::new(inbox.join("pipe.csv").to_str().unwrap()).unwrap();
+    // SAFETY: mkfifo with a valid NUL-terminated path.
+    assert_eq!(unsafe { libc::mkfifo(fifo.as_ptr(), 0o644) }, 0);
+    std::fs::hard_link(&secret, inbox.join("hard.csv")).unwrap();
+    std::fs::write(inbox.join("good.csv"), report()).unwrap();
+    let refused = [
+        ("to-secret.csv", "a symbolic link"),
+        ("passwd.csv", "a symbolic link"),
+        ("to-dir.csv", "a symbolic link"),
+        ("dangling.csv", "a symbolic link"),
+        ("folder.csv", "a directory"),
+        ("pipe.csv", "a named pipe"),
+        ("hard.csv", "hard links"),
+    ];
+    let archive = d.join("archive");
+    run_until(&cfg, || {
+        inbox.join("done/good.csv").exists()
+            && refused
+                .iter()
+                .all(|(n, _)| inbox.join(format!("rejected/{n}.error")).exists())
+    });
+    assert!(inbox.join("done/good.csv").exists());
+    for (name, kind) in refused {
+        let why = std::fs::read_to_string(inbox.join(format!("rejected/{name}.error"))).unwrap();
+        assert!(why.contains(kind), "{name}: {why}");
+        assert!(
+            !why.contains("SECRET") && !why.contains("root:"),
+            "{name}: {why}"
+        );
+        // The link itself was moved, never what it points to.
+        assert!(
+            std::fs::symlink_metadata(inbox.join("rejected").join(name)).is_ok(),
+            "{name} not moved aside"
+        );
+    }
+    assert_eq!(
+        std::fs::read_to_string(&secret).unwrap(),
+        "Serial,Bore,Face\nSECRET-LINE,12.001,38.2\n",
+        "the file a link points to is untouched"
+    );
+    // Nothing of the secret or of /etc/passwd in the archive, the ledger or any file left in
+    // the share.
+    let (ok, out, err) = common::peers::cli(&["archive", "export", archive.to_str().unwrap()]);
+    assert!(ok, "{err}");
+    assert!(!out.contains("SECRET") && !out.contains("root:"), "{out}");
+    for e in walk(&inbox) {
+        if e.is_file() && std::fs::symlink_metadata(&e).unwrap().file_type().is_file() {
+            let text = String::from_utf8_lossy(&std::fs::read(&e).unwrap()).into_owned();
+            if e.file_name().unwrap() != "hard.csv" {
+                assert!(!text.contains("SECRET"), "{}: {text}", e.display());
+            }
+            assert!(!text.contains("root:"), "{}: {text}", e.display());
+        }
+    }
+    assert_eq!(readings(&archive).len(), 16, "the good report's readings");
+}
+
+fn walk(dir: &Path) -> Vec<std::path::PathBuf> {
+    let mut out = Vec::new();
+    for e in std::fs::read_dir(dir).unwrap().flatten() {
+        let p = e.path();
+        if e.file_type().unwrap().is_dir() {
+            out.extend(walk(&p));
+        } else {
+            out.push(p);
+        }
+    }
+    out
+}

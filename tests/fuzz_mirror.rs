@@ -51,6 +51,44 @@ mirror!(control_request, "control_request", checks::control_request);
 mirror!(archive_frames, "archive_frames", checks::archive_frames);
 mirror!(web_request, "web_request", checks::web_request);
 
+/// Numbers at the edges of a double, 17 bytes a reading (a selector, the value, the units), so
+/// that random input meets them often: what broke was 1e308 readings whose sum overflowed.
+fn extreme() -> impl Strategy<Value = Vec<u8>> {
+    let edge = prop_oneof![
+        Just(f64::MAX),
+        Just(-f64::MAX),
+        Just(1e308),
+        Just(1e300),
+        Just(1e-300),
+        Just(5e-324),
+        Just(f64::INFINITY),
+        Just(f64::NAN),
+        Just(0.0),
+        Just(1.0),
+        Just(9_007_199_254_740_993.0),
+        any::<f64>(),
+        -1e6..1e6f64,
+    ];
+    proptest::collection::vec((any::<u8>(), edge.clone(), edge), 0..120).prop_map(|v| {
+        v.into_iter()
+            .flat_map(|(s, a, b)| {
+                let mut c = vec![s];
+                c.extend_from_slice(&a.to_le_bytes());
+                c.extend_from_slice(&b.to_le_bytes());
+                c
+            })
+            .collect()
+    })
+}
+
+#[test]
+fn extreme_numbers() {
+    corpus("extreme_numbers", checks::extreme_numbers);
+    proptest!(ProptestConfig::with_cases(256), |(data in extreme())| {
+        checks::extreme_numbers(&data);
+    });
+}
+
 #[test]
 fn archive_recovery() {
     let dir = tempfile::tempdir().unwrap();

@@ -169,6 +169,22 @@ fn install_script_lays_out_owners_and_modes_and_is_idempotent() {
     }
     assert_eq!(mode_owner(&r.join("usr/local/bin/linewarden")).0, 0o755);
     assert!(r.join("etc/systemd/system/linewarden.service").is_file());
+    // What broke: the unit set no LimitNOFILE, so the soft limit was 1024 and 1100 idle page
+    // connections left the archive writer without a descriptor. The installed unit sets one
+    // under which page clients (a quarter at most, capped) leave the rest room.
+    let unit = std::fs::read_to_string(r.join("etc/systemd/system/linewarden.service")).unwrap();
+    let nofile: u64 = unit
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("LimitNOFILE="))
+        .expect("the unit sets LimitNOFILE")
+        .parse()
+        .unwrap();
+    let pages = linewarden::daemon::web::connection_cap(nofile) as u64;
+    assert_eq!(pages as usize, linewarden::daemon::web::MAX_CONNECTIONS);
+    assert!(
+        nofile - pages >= 4096,
+        "LimitNOFILE={nofile} leaves too little"
+    );
     let shipped =
         std::fs::read(Path::new(env!("CARGO_MANIFEST_DIR")).join("config/cell.toml")).unwrap();
     assert_eq!(

@@ -196,6 +196,12 @@ fn ingests_and_rejects(port: u16, dir: &Path, dedupe: &str) {
                 .await
                 .unwrap();
         }
+        // What broke: these were archived as "inf", "NaN" and "n/plain: 0x14", not as sent.
+        for v in hostile_numbers() {
+            c.publish("cell4/face/raw", rumqttc::QoS::AtLeastOnce, false, v)
+                .await
+                .unwrap();
+        }
         c.publish(
             "cell4/bore/measure",
             rumqttc::QoS::AtLeastOnce,
@@ -207,7 +213,8 @@ fn ingests_and_rejects(port: u16, dir: &Path, dedupe: &str) {
     });
     let archive = dir.join("archive");
     wait_until("40 bore readings", Duration::from_secs(20), || {
-        count_accepted(&archive, "mqtt:cell") == 40 && archived(&archive, "mqtt:plain").1.len() == 1
+        count_accepted(&archive, "mqtt:cell") == 40
+            && archived(&archive, "mqtt:plain").1.len() == 1 + hostile_numbers().len()
     });
     d.stop();
     let d = Daemon::start(&cfg, &dir.join("daemon.log"));
@@ -224,7 +231,17 @@ fn ingests_and_rejects(port: u16, dir: &Path, dedupe: &str) {
     assert!(rejected[0].contains("A99"), "{rejected:?}");
     let (face, rejected) = archived(&archive, "mqtt:plain");
     assert_eq!(face.values().map(Vec::len).sum::<usize>(), 2, "{face:?}");
-    assert_eq!(rejected, ["cell4/face/raw: 25.0O2"]);
+    // Each rejected payload is archived as it was sent (a long one cut, and said so).
+    let mut sent = vec!["25.0O2".to_string()];
+    for v in hostile_numbers() {
+        sent.push(if v.len() > 200 {
+            format!("{}… ({} bytes in all)", &v[..200], v.len())
+        } else {
+            // A control character is written escaped.
+            v.replace('\u{7}', "\\u{7}")
+        });
+    }
+    assert_eq!(rejected, sent);
     // The source's time is kept.
     let r = Reader::open(&archive).unwrap();
     let t = r
@@ -242,6 +259,22 @@ fn ingests_and_rejects(port: u16, dir: &Path, dedupe: &str) {
     let log = std::fs::read_to_string(dir.join("daemon.log")).unwrap();
     assert!(log.contains("is not a number"), "{log}");
     assert!(log.contains("no value at /v"), "{log}");
+}
+
+/// Payloads a double cannot hold or that name no number, and a control character.
+fn hostile_numbers() -> Vec<String> {
+    vec![
+        "1e999".into(),
+        "-1E400".into(),
+        "Infinity".into(),
+        "inf".into(),
+        "nan".into(),
+        "NaN".into(),
+        "0x14".into(),
+        "9".repeat(500),
+        format!("{}0.0008", "9".repeat(320)),
+        "12.5\u{7}".into(),
+    ]
 }
 
 /// SIGKILL three times while readings stream in at QoS 1: every reading is archived exactly
@@ -440,9 +473,11 @@ fn oversized_messages_do_not_stall_the_source(port: u16, dir: &Path, dedupe: &st
                 raw,
                 ..
             } if source == "mqtt:cell" => {
+                // The payload as it came (its first bytes); the topic is in the reason.
+                assert!(raw.starts_with("{\"v\": 12.0, \"part\": \"BIG"), "{raw}");
                 assert!(
-                    raw.starts_with("cell4/bore/measure: {\"v\": 12.0, \"part\": \"BIG"),
-                    "{raw}"
+                    reason.starts_with("on topic cell4/bore/measure: "),
+                    "{reason}"
                 );
                 assert!(raw.len() < 400, "only the first bytes are kept");
                 Some(reason)
@@ -633,14 +668,17 @@ inspected_pointer = "/tested"
     wait_until("the station's results", Duration::from_secs(20), || {
         count_accepted(&archive, "mqtt:station") == 10
             && archived(&archive, "mqtt:station").1.len() == 1
-            && archived(&archive, "mqtt:tester").1.len() == 4
+            && archived(&archive, "mqtt:tester").1.len() == 3
+            && count_accepted(&archive, "mqtt:tester") == 2
     });
     d.stop();
     let (_, rejected) = archived(&archive, "mqtt:station");
-    assert_eq!(rejected, ["cell4/leak/result: BROKEN"]);
+    assert_eq!(rejected, ["BROKEN"]);
+    // What broke: a message without units on a source with inspected_pointer was rejected;
+    // it is one unit's result.
     let (batches, rejected) = archived(&archive, "mqtt:tester");
-    assert_eq!(batches.values().map(Vec::len).sum::<usize>(), 1);
-    assert_eq!(rejected.len(), 4, "{rejected:?}");
+    assert_eq!(batches.values().map(Vec::len).sum::<usize>(), 2);
+    assert_eq!(rejected.len(), 3, "{rejected:?}");
     let r = Reader::open(&archive).unwrap();
     let mut reasons = Vec::new();
     let mut points = Vec::new();
@@ -667,7 +705,6 @@ inspected_pointer = "/tested"
     for want in [
         "\"BROKEN\" is neither a conforming word (\"OK\") nor a nonconforming one (\"NOK\")",
         "60 nonconforming of 50 inspected",
-        "no units inspected at /tested",
         "0 units inspected is not a batch",
         "\"NOK\" is neither a conforming word (none) nor a nonconforming one (none)",
     ] {
@@ -690,6 +727,7 @@ inspected_pointer = "/tested"
     assert!(leak[1].3.is_empty());
     let eol: Vec<_> = points.iter().filter(|p| p.0 == "eol").collect();
     assert_eq!((eol[0].1, eol[0].2), (Some(2.0), Some(50.0)));
+    assert_eq!((eol[1].1, eol[1].2), (Some(1.0), Some(1.0)));
 }
 
 #[test]

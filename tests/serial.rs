@@ -79,7 +79,11 @@ characteristic = "bore"
             }
         };
         tokio::time::sleep(Duration::from_millis(500)).await;
-        first.write("12.001\r\n12.002 mm\r\nERR 7\r\n0.4725 in\r\n");
+        // A number too large for a double: what broke was its record saying "inf".
+        first.write(&format!(
+            "12.001\r\n12.002 mm\r\nERR 7\r\n{}20.0008\r\n0.4725 in\r\n",
+            "9".repeat(320)
+        ));
         wait_for(3).await;
         // Unplug, and plug a new adapter in at the same name.
         first.unplug();
@@ -119,5 +123,11 @@ characteristic = "bore"
             _ => None,
         })
         .collect();
-    assert_eq!(rejected, ["ERR 7"]);
+    assert_eq!(
+        rejected,
+        [
+            "ERR 7".to_string(),
+            format!("{}… (327 bytes in all)", "9".repeat(200))
+        ]
+    );
 }

@@ -389,3 +389,135 @@ fn after_a_reload_the_page_shows_the_characteristics_configured_now() {
     assert_eq!(get(port, "/c/port").0, 200);
     daemon.stop();
 }
+
+/// What broke: nothing timed out a half-sent request header and nothing capped connections;
+/// 1100 idle connections used up the daemon's descriptors, the archive writer failed with
+/// "Too many open files", took it as permanent, and monitoring stopped (at a limit of 256 the
+/// daemon exited with no `daemon-stopped` record). Here, under a limit of 256, 400 clients open
+/// connections and send half a header while readings stream in: every reading is archived,
+/// the daemon runs on, the idle connections are closed within the header timeout, the page
+/// still answers, and SIGTERM ends it with `daemon-stopped` as the last record, its reason
+/// true, and the log's last durable sequence equal to the archive's last record.
+#[test]
+fn idle_page_connections_never_starve_the_archive() {
+    use linewarden::archive::Record;
+    use linewarden::archive::reader::{Filter, Reader};
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let port = free_port();
+    // 200 readings over about four seconds.
+    let feed: Vec<String> = (0..200)
+        .map(|i| {
+            format!(
+                r#"{{"t_ms": {}, "characteristic": "bore", "value": {}}}"#,
+                1000 + 20 * i,
+                12.0 + 0.001 * (i % 3) as f64
+            )
+        })
+        .collect();
+    std::fs::write(d.join("feed.jsonl"), feed.join("\n") + "\n").unwrap();
+    std::fs::write(d.join("bore.toml"), common::BORE_LIMITS).unwrap();
+    std::fs::create_dir_all(d.join("inbox")).unwrap();
+    let cfg = d.join("cell.toml");
+    std::fs::write(
+        &cfg,
+        format!(
+            r#"[daemon]
+archive_dir = "archive"
+flush_interval_ms = 2
+
+[[characteristic]]
+id = "bore"
+limits = "bore.toml"
+subgroup = {{ size = 4 }}
+
+[[source]]
+id = "feed"
+kind = "replay"
+file = "feed.jsonl"
+speed = 1
+
+# A source that never ends, so the daemon runs until it is told to stop.
+[[source]]
+id = "cmm"
+kind = "folder"
+path = "inbox"
+rows = "per-part"
+columns = {{ "Bore" = "bore" }}
+part_column = "Serial"
+
+[web]
+listen = "127.0.0.1:{port}"
+"#
+        ),
+    )
+    .unwrap();
+    let log = d.join("daemon.log");
+    let mut daemon = common::peers::Daemon::start_limited(&cfg, &log, Some(256));
+    wait_for_port(port);
+    let mut idle = Vec::new();
+    for _ in 0..400 {
+        if let Ok(mut s) = TcpStream::connect(("127.0.0.1", port)) {
+            let _ = s.write_all(b"GET / HTTP/1.1\r\nHost: 127.0.0.1\r\nX-Slow: ");
+            idle.push(s);
+        }
+    }
+    let archive = d.join("archive");
+    let accepted = || {
+        Reader::open(&archive)
+            .map(|r| {
+                r.iter(&Filter::default())
+                    .flatten()
+                    .filter(|e| matches!(e.record, Record::ReadingAccepted { .. }))
+                    .count()
+            })
+            .unwrap_or(0)
+    };
+    common::wait("every reading archived", Duration::from_secs(30), || {
+        accepted() == 200
+    });
+    assert!(daemon.is_running(), "{}", daemon.log_text());
+    // Past the header timeout every idle connection has been closed by the daemon.
+    std::thread::sleep(linewarden::daemon::web::HEADER_TIMEOUT + Duration::from_secs(2));
+    for s in &mut idle {
+        s.set_read_timeout(Some(Duration::from_secs(5))).unwrap();
+        let mut buf = [0u8; 512];
+        match s.read(&mut buf) {
+            // Closed, with or without a 408 first.
+            Ok(0) | Err(_) => {}
+            Ok(n) => {
+                let text = String::from_utf8_lossy(&buf[..n]);
+                assert!(text.starts_with("HTTP/1.1 408"), "{text}");
+            }
+        }
+    }
+    drop(idle);
+    assert_eq!(get(port, "/healthz").0, 200);
+    assert!(!daemon.log_text().contains("Too many open files"));
+    daemon.stop();
+
+    let records: Vec<_> = Reader::open(&archive)
+        .unwrap()
+        .iter(&Filter::default())
+        .map(|e| e.unwrap())
+        .collect();
+    let last = records.last().unwrap();
+    assert_eq!(
+        last.record,
+        Record::DaemonStopped {
+            reason: "stopped by SIGTERM".into()
+        }
+    );
+    let text = std::fs::read_to_string(&log).unwrap();
+    let said = text
+        .lines()
+        .rev()
+        .find_map(|l| l.split("archive durable to sequence ").nth(1))
+        .unwrap()
+        .split_whitespace()
+        .next()
+        .unwrap()
+        .parse::<u64>()
+        .unwrap();
+    assert_eq!(said, last.seq, "{text}");
+}

@@ -395,6 +395,75 @@ fn guessed_passwords_are_limited_per_address_and_a_removed_user_can_do_nothing_m
     assert!(archived_acks(d).is_empty());
 }
 
+/// What broke: the limit was checked before the password and a failure counted after it, so
+/// 100 guesses sent at once were all checked, none refused, and the right one logged in. Each
+/// attempt is now counted before its check: of 100 at once, at most the limit are checked.
+#[test]
+fn concurrent_password_guesses_are_counted_before_they_are_checked() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let port = free_port();
+    let cfg = cell(d, &format!("127.0.0.1:{port}"), "");
+    let daemon = common::InProcess::start(&cfg);
+    wait_for_port(port);
+    let host = format!("127.0.0.1:{port}");
+    let origin = format!("http://{host}");
+    // Each guesser takes its login form first, then all post at once; the 80th has the
+    // right password.
+    let forms: Vec<(String, String)> = (0..100)
+        .map(|_| {
+            let form = plain(port, &request("GET", "/login", &host, "", None));
+            (form.cookie("linewarden_login").unwrap().0, form.csrf())
+        })
+        .collect();
+    let start = std::sync::Barrier::new(forms.len());
+    let answers: Vec<(usize, u16)> = std::thread::scope(|s| {
+        let handles: Vec<_> = forms
+            .iter()
+            .enumerate()
+            .map(|(i, (pre, csrf))| {
+                let (start, host, origin) = (&start, &host, &origin);
+                s.spawn(move || {
+                    let password = if i == 79 {
+                        PASSWORD.to_string()
+                    } else {
+                        format!("guess-{i}")
+                    };
+                    let req = request(
+                        "POST",
+                        "/login",
+                        host,
+                        &format!("Origin: {origin}\r\nCookie: linewarden_login={pre}\r\n"),
+                        Some(&format!(
+                            "csrf={csrf}&next=%2F&user=dana&password={}",
+                            enc(&password)
+                        )),
+                    );
+                    let s = TcpStream::connect(("127.0.0.1", port)).unwrap();
+                    s.set_read_timeout(Some(Duration::from_secs(60))).unwrap();
+                    start.wait();
+                    (i, exchange(s, &req).status)
+                })
+            })
+            .collect();
+        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    });
+    let checked = answers.iter().filter(|(_, c)| *c != 429).count();
+    assert!(checked <= 5, "{checked} of 100 were checked: {answers:?}");
+    assert!(
+        answers.iter().all(|(_, c)| [401, 429, 303].contains(c)),
+        "{answers:?}"
+    );
+    // The right password got through only if it was among the few checked; otherwise the
+    // limit is reached and even the right password waits now.
+    let right = answers.iter().find(|(i, _)| *i == 79).unwrap().1;
+    if right != 303 {
+        let a = login(&|r: &str| plain(port, r), &host, &origin, PASSWORD).unwrap_err();
+        assert_eq!(a.status, 429, "{}", a.body);
+    }
+    daemon.stop();
+}
+
 #[test]
 fn acknowledging_is_refused_over_plain_http_beyond_loopback_and_check_says_so() {
     let dir = tempfile::tempdir().unwrap();

@@ -55,6 +55,30 @@ pub enum ArchiveError {
     Sequence { path: PathBuf, problem: String },
     #[error("archive: the writer has stopped after an earlier error: {0}")]
     Stopped(String),
+    /// Found at start by the same checks as `archive verify`: a sealed segment missing,
+    /// reordered, edited or damaged. Nothing is written to such an archive.
+    #[error(
+        "archive {}: {}; linewarden will not write to this archive until it is dealt with: run `linewarden archive verify {}` for the whole report, and see \"A damaged archive\" in the README",
+        dir.display(),
+        problems.join("; "),
+        dir.display()
+    )]
+    Damaged { dir: PathBuf, problems: Vec<String> },
+    /// A record that would not read back (a figure that is not a finite number): it is not
+    /// written, and the writer goes on with the next.
+    #[error(
+        "archive: a {kind} record was not written, because it would not read back ({reason}); the records around it are kept"
+    )]
+    Unwritable { kind: &'static str, reason: String },
+    /// The process has no file descriptors left: writing waits and tries again, as on a full
+    /// disk, until a descriptor is free.
+    #[error(
+        "archive {path}: no file descriptor is free ({source}); writing waits and tries again until one is"
+    )]
+    NoDescriptors {
+        path: PathBuf,
+        source: std::io::Error,
+    },
 }
 
 impl ArchiveError {
@@ -62,10 +86,29 @@ impl ArchiveError {
         let path = path.into();
         if is_disk_full(&source) {
             ArchiveError::DiskFull { path, source }
+        } else if is_out_of_descriptors(&source) {
+            ArchiveError::NoDescriptors { path, source }
         } else {
             ArchiveError::Io { path, source }
         }
     }
+}
+
+impl ArchiveError {
+    /// Whether writing should wait and try again (a full disk, no free descriptor) rather than
+    /// stop: nothing was lost, and the condition passes by itself.
+    pub fn is_transient(&self) -> bool {
+        matches!(
+            self,
+            ArchiveError::DiskFull { .. } | ArchiveError::NoDescriptors { .. }
+        )
+    }
+}
+
+/// EMFILE or ENFILE: the process's (or the system's) table of open files is full, which a
+/// crowd of network clients can cause; it passes when they go.
+pub fn is_out_of_descriptors(e: &std::io::Error) -> bool {
+    matches!(e.raw_os_error(), Some(libc::EMFILE) | Some(libc::ENFILE))
 }
 
 /// ENOSPC or EDQUOT.

@@ -54,13 +54,17 @@ impl Filter {
 pub struct Reader {
     dir: PathBuf,
     segments: Vec<SegmentInfo>,
+    /// The sequence numbers of unreadable records met so far (see [`segment::Unreadable`]):
+    /// skipped, and counted as present by the continuity checks.
+    unreadable: std::cell::RefCell<std::collections::BTreeSet<u64>>,
 }
 
 impl Reader {
     /// Lists the segments and reads their seals (not their contents).
     pub fn open(dir: &Path) -> Result<Reader, ArchiveError> {
         let mut segments = Vec::new();
-        for (index, first_seq, path) in segment::list(dir).map_err(|e| ArchiveError::io(dir, e))? {
+        let (listed, _) = live_segments(dir)?;
+        for (index, first_seq, path) in listed {
             let bytes = std::fs::metadata(&path)
                 .map_err(|e| ArchiveError::io(&path, e))?
                 .len();
@@ -78,11 +82,18 @@ impl Reader {
         Ok(Reader {
             dir: dir.to_path_buf(),
             segments,
+            unreadable: Default::default(),
         })
     }
 
     pub fn dir(&self) -> &Path {
         &self.dir
+    }
+
+    /// The sequence numbers of the unreadable records read past so far, which every reader
+    /// skips (each is logged as a warning when met).
+    pub fn unreadable(&self) -> Vec<u64> {
+        self.unreadable.borrow().iter().copied().collect()
     }
 
     pub fn segments(&self) -> &[SegmentInfo] {
@@ -109,9 +120,19 @@ impl Reader {
         while offset < buf.len() {
             match segment::decode(&buf, offset) {
                 Ok(f) if f.kind == TYPE_RECORD => {
-                    let env = segment::envelope(f.payload)
-                        .map_err(|e| corrupt(offset, format!("a record does not parse: {e}")))?;
-                    out.push(env);
+                    match segment::parse_record(f.payload)
+                        .map_err(|e| corrupt(offset, format!("a record does not parse: {e}")))?
+                    {
+                        segment::Parsed::Record(env) => out.push(env),
+                        segment::Parsed::Unreadable(u) => {
+                            tracing::warn!(
+                                component = "archive",
+                                "{} at byte {offset}: {u}",
+                                file_name(&info.path)
+                            );
+                            self.unreadable.borrow_mut().insert(u.seq);
+                        }
+                    }
                     offset = f.end;
                 }
                 Ok(f) if f.kind == TYPE_SEAL => break,
@@ -224,6 +245,35 @@ impl Reader {
         }
         Ok(tail)
     }
+}
+
+/// The segments of an archive (`(index, first_seq, path)`), and the newest one left out with
+/// why.
+pub type LiveSegments = (Vec<(u64, u64, PathBuf)>, Option<(PathBuf, String)>);
+
+/// The segments of `dir` that can hold records, and the newest one left out when it cannot:
+/// a newest segment with no intact header and nothing intact after it (empty, or cut short
+/// while being created at a crash) holds no record. `verify` notes it, the writer sets it
+/// aside on its next start, and every reader passes over it alike.
+pub fn live_segments(dir: &Path) -> Result<LiveSegments, ArchiveError> {
+    let mut listed = segment::list(dir).map_err(|e| ArchiveError::io(dir, e))?;
+    if let Some((_, _, path)) = listed.last()
+        && segment::read_header(path).ok().flatten().is_none()
+    {
+        let buf = std::fs::read(path).map_err(|e| ArchiveError::io(path, e))?;
+        if let Err(b) = segment::decode(&buf, 0)
+            && segment::intact_frame_after(&buf, 0).is_none()
+        {
+            let words = if buf.is_empty() {
+                "it is empty".to_string()
+            } else {
+                b.words().to_string()
+            };
+            let (_, _, path) = listed.pop().expect("looked at above");
+            return Ok((listed, Some((path, words))));
+        }
+    }
+    Ok((listed, None))
 }
 
 /// The records of an archive in order, with continuity checks: see [`Reader::iter`].
@@ -349,6 +399,13 @@ impl Iterator for Records<'_> {
                 };
                 return Some(Err(err));
             }
+            // An unreadable record was read past: its number is there, only its content is
+            // skipped.
+            while seq > self.expected_seq
+                && self.reader.unreadable.borrow().contains(&self.expected_seq)
+            {
+                self.expected_seq += 1;
+            }
             if seq > self.expected_seq {
                 let err = self.gap(
                     &self.current_path.clone(),
@@ -404,16 +461,108 @@ pub struct VerifyReport {
     pub problems: Vec<String>,
     /// Remarks that are not problems (a torn tail the writer will cut, quarantine files).
     pub notes: Vec<String>,
+    /// Intact records this build cannot read (see [`segment::Unreadable`]): not damage, since
+    /// their bytes are those written and the chain holds, but every reader skips them.
+    pub unreadable: Vec<String>,
 }
 
 /// Checks every frame's CRC, the sequence numbers, every seal's hash and the chain between
 /// segments.
 pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
-    let segs = segment::list(dir).map_err(|e| ArchiveError::io(dir, e))?;
+    verify_with(dir, None)
+}
+
+/// The file beside the segments that lists the sealed segments already verified whole, with
+/// their size and modification time: `name bytes mtime_ns sha256`, a line each.
+pub const VERIFIED: &str = ".verified";
+
+/// Sealed segments verified whole before (see [`VERIFIED`]). A sealed segment is never written
+/// again, so one whose size and modification time are unchanged need not be hashed again at
+/// every start; `verify` itself always reads everything.
+#[derive(Debug, Default)]
+pub struct Verified {
+    known: BTreeMap<String, (u64, i128, String)>,
+    changed: bool,
+}
+
+fn stamp(path: &Path) -> Option<(u64, i128)> {
+    use std::os::unix::fs::MetadataExt;
+    let m = std::fs::metadata(path).ok()?;
+    Some((
+        m.len(),
+        i128::from(m.mtime()) * 1_000_000_000 + i128::from(m.mtime_nsec()),
+    ))
+}
+
+impl Verified {
+    /// Reads the list in `dir` (empty when there is none or it does not read).
+    pub fn load(dir: &Path) -> Verified {
+        let text = std::fs::read_to_string(dir.join(VERIFIED)).unwrap_or_default();
+        let known = text
+            .lines()
+            .filter_map(|l| {
+                let mut it = l.split(' ');
+                let (name, len, mtime, sha) = (it.next()?, it.next()?, it.next()?, it.next()?);
+                Some((
+                    name.to_string(),
+                    (len.parse().ok()?, mtime.parse().ok()?, sha.to_string()),
+                ))
+            })
+            .collect();
+        Verified {
+            known,
+            changed: false,
+        }
+    }
+
+    /// The SHA-256 a sealed segment had when verified, if it is unchanged since.
+    fn fresh(&self, name: &str, path: &Path) -> Option<&str> {
+        let (len, mtime, sha) = self.known.get(name)?;
+        (stamp(path)? == (*len, *mtime)).then_some(sha.as_str())
+    }
+
+    fn remember(&mut self, name: &str, path: &Path, sha: &str) {
+        if let Some((len, mtime)) = stamp(path) {
+            self.known
+                .insert(name.to_string(), (len, mtime, sha.to_string()));
+            self.changed = true;
+        }
+    }
+
+    /// Writes the list back (atomically) when it changed; forgets segments no longer there.
+    pub fn save(&mut self, dir: &Path) -> std::io::Result<()> {
+        self.known.retain(|name, _| dir.join(name).exists());
+        if !self.changed {
+            return Ok(());
+        }
+        let mut text = String::new();
+        for (name, (len, mtime, sha)) in &self.known {
+            text.push_str(&format!("{name} {len} {mtime} {sha}\n"));
+        }
+        crate::fsutil::write_atomic(&dir.join(VERIFIED), text.as_bytes())?;
+        self.changed = false;
+        Ok(())
+    }
+}
+
+/// [`verify`], reading only the header and seal of sealed segments that `verified` lists as
+/// verified whole and unchanged since (their chain, sequence numbers and seal are still
+/// checked); the segments it hashes whole and finds right are added to it.
+pub fn verify_with(
+    dir: &Path,
+    mut verified: Option<&mut Verified>,
+) -> Result<VerifyReport, ArchiveError> {
+    let (segs, unborn) = live_segments(dir)?;
     let mut r = VerifyReport {
         segments: segs.len(),
         ..VerifyReport::default()
     };
+    if let Some((path, words)) = unborn {
+        r.notes.push(format!(
+            "{}: the newest segment has no intact header ({words}): it was being created at a crash and holds no record; readers pass over it, and the writer sets it aside on its next start",
+            file_name(&path)
+        ));
+    }
     let mut expected_index = 0u64;
     let mut expected_seq = 1u64;
     let mut prev_chain: Option<String> = Some(String::new());
@@ -434,8 +583,69 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
             ));
         }
         expected_index = index + 1;
-        let buf = std::fs::read(path).map_err(|e| ArchiveError::io(path, e))?;
         let newest = pos + 1 == count;
+        if let Some(v) = verified.as_deref()
+            && let Some(sha) = v.fresh(&name, path)
+            && let (Ok(Some(h)), Ok(Some((seal, _)))) =
+                (segment::read_header(path), segment::read_seal(path))
+        {
+            // Verified whole before and unchanged: the links only.
+            if h.segment != *index || h.first_seq != *first_seq {
+                r.problems.push(format!(
+                    "{name}: the header says segment {} from sequence {}, unlike its name",
+                    h.segment, h.first_seq
+                ));
+            }
+            if let Some(pc) = &prev_chain
+                && &h.prev_chain != pc
+            {
+                r.problems.push(format!(
+                    "{name}: its header does not chain to the segment before it: a segment was altered, replaced or deleted"
+                ));
+            }
+            if *first_seq != expected_seq {
+                r.problems.push(format!(
+                    "{name}: starts at sequence {first_seq} where {expected_seq} was expected ({} records missing or duplicated)",
+                    (*first_seq as i64 - expected_seq as i64).abs()
+                ));
+            }
+            if seal.sha256 != sha
+                || seal.prev_chain != h.prev_chain
+                || segment::chain(&seal.prev_chain, &seal.sha256) != seal.chain
+            {
+                r.problems
+                    .push(format!("{name}: the seal's chain hash is wrong"));
+            }
+            r.sealed += 1;
+            r.records += seal.records;
+            r.last_seq = seal.last_seq;
+            expected_seq = seal.last_seq + 1;
+            prev_chain = Some(seal.chain);
+            continue;
+        }
+        if verified.is_some()
+            && newest
+            && let (Ok(Some(h)), Ok(None)) = (segment::read_header(path), segment::read_seal(path))
+        {
+            // At a start, the open segment was just read back by the writer's recovery: only
+            // its links to the sealed ones are checked here.
+            if let Some(pc) = &prev_chain
+                && &h.prev_chain != pc
+            {
+                r.problems.push(format!(
+                    "{name}: its header does not chain to the segment before it: a segment was altered, replaced or deleted"
+                ));
+            }
+            if h.segment != *index || h.first_seq != *first_seq || *first_seq != expected_seq {
+                r.problems.push(format!(
+                    "{name}: starts at sequence {first_seq} (header: segment {}, sequence {}) where segment {index} from sequence {expected_seq} was expected",
+                    h.segment, h.first_seq
+                ));
+            }
+            continue;
+        }
+        let buf = std::fs::read(path).map_err(|e| ArchiveError::io(path, e))?;
+        let problems_before = r.problems.len();
         let header = match segment::decode(&buf, 0) {
             Ok(f) if f.kind == TYPE_HEADER => match serde_json::from_slice::<Header>(f.payload) {
                 Ok(h) => Some((h, f.end)),
@@ -494,15 +704,21 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
         while offset < buf.len() {
             match segment::decode(&buf, offset) {
                 Ok(f) if f.kind == TYPE_RECORD => {
-                    match segment::envelope(f.payload) {
-                        Ok(e) => {
-                            if e.seq != seq + 1 {
+                    let parsed = segment::parse_record(f.payload).map(|p| match p {
+                        segment::Parsed::Record(e) => e.seq,
+                        segment::Parsed::Unreadable(u) => {
+                            r.unreadable.push(format!("{name} at byte {offset}: {u}"));
+                            u.seq
+                        }
+                    });
+                    match parsed {
+                        Ok(s) => {
+                            if s != seq + 1 {
                                 r.problems.push(format!(
-                                    "{name} at byte {offset}: sequence {} follows {seq}",
-                                    e.seq
+                                    "{name} at byte {offset}: sequence {s} follows {seq}"
                                 ));
                             }
-                            seq = e.seq;
+                            seq = s;
                             r.records += 1;
                         }
                         Err(e) => {
@@ -588,6 +804,11 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
                         "{name}: the trailer after the seal is missing or damaged"
                     ));
                 }
+                if r.problems.len() == problems_before
+                    && let Some(v) = verified.as_deref_mut()
+                {
+                    v.remember(&name, path, &s.sha256);
+                }
                 prev_chain = Some(s.chain);
             }
             None => {
@@ -609,6 +830,9 @@ pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
                 "quarantine file {n}: bytes cut from a damaged tail during recovery"
             ));
         }
+    }
+    if r.records == 0 && r.problems.is_empty() {
+        r.notes.push("the archive holds no records yet".to_string());
     }
     r.notes.sort();
     Ok(r)

@@ -259,6 +259,67 @@ pub fn seal_of(buf: &[u8]) -> Option<(Seal, usize)> {
     serde_json::from_slice(f.payload).ok().map(|s| (s, start))
 }
 
+/// A record whose frame is intact (its CRC passed, so these are the bytes that were written)
+/// but whose content this build cannot read: an older build wrote `null` for a figure that
+/// overflowed, say. It is kept as written (a sealed segment is never changed, and the hash
+/// chain covers it); every reader skips it the same way, naming it, and counts its sequence
+/// number as present.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Unreadable {
+    pub seq: u64,
+    /// The record's `kind`, when it has one.
+    pub kind: Option<String>,
+    /// Why it does not read.
+    pub error: String,
+}
+
+impl std::fmt::Display for Unreadable {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "record {} ({}) cannot be read: {}; it is kept as written and skipped",
+            self.seq,
+            self.kind.as_deref().unwrap_or("no kind"),
+            self.error
+        )
+    }
+}
+
+/// A record frame's payload, parsed.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Parsed {
+    Record(Envelope),
+    Unreadable(Unreadable),
+}
+
+/// Parses a record frame's payload. A payload of this record version with its sequence number
+/// that does not parse as a record is [`Parsed::Unreadable`]; anything else that does not parse
+/// (not JSON, no sequence number, a version this build does not know) is an error, as damage
+/// or a newer writer is.
+pub fn parse_record(payload: &[u8]) -> Result<Parsed, serde_json::Error> {
+    let error = match envelope(payload) {
+        Ok(e) => return Ok(Parsed::Record(e)),
+        Err(e) => e,
+    };
+    #[derive(serde::Deserialize)]
+    struct Head {
+        v: u32,
+        seq: u64,
+        #[serde(default)]
+        kind: Option<String>,
+    }
+    match serde_json::from_slice::<Head>(payload) {
+        Ok(h) if h.v == crate::archive::record::RECORD_VERSION => {
+            Ok(Parsed::Unreadable(Unreadable {
+                seq: h.seq,
+                kind: h.kind,
+                error: error.to_string(),
+            }))
+        }
+        _ => Err(error),
+    }
+}
+
 /// Parses a record frame's payload: the same as `serde_json::from_slice::<Envelope>`, faster.
 /// Serde's flatten and tagged enums buffer the whole record as a generic tree before reading
 /// its fields; readings (most records) are read straight into their fields, the rest in two

@@ -189,6 +189,24 @@ impl Writer {
                 }
             }
         }
+        // The older segments, as `verify` checks them (sealed segments verified whole at an
+        // earlier start and unchanged since are not hashed again): an archive with a segment
+        // missing, reordered or damaged is refused before anything is added to it.
+        let mut verified = super::reader::Verified::load(&dir);
+        let check = super::reader::verify_with(&dir, Some(&mut verified))?;
+        if !check.problems.is_empty() {
+            return Err(ArchiveError::Damaged {
+                dir,
+                problems: check.problems,
+            });
+        }
+        if let Err(e) = verified.save(&dir) {
+            tracing::warn!(
+                component = "archive",
+                "cannot note the verified segments in {}: {e}; the next start hashes them again",
+                dir.display()
+            );
+        }
         w.durable_seq = w.next_seq - 1;
         w.written_seq = w.durable_seq;
         let report = OpenReport {
@@ -257,12 +275,35 @@ impl Writer {
         while offset < buf.len() {
             match segment::decode(buf, offset) {
                 Ok(f) if f.kind == TYPE_RECORD => {
-                    let env = segment::envelope(f.payload).map_err(|e| {
+                    let parsed = segment::parse_record(f.payload).map_err(|e| {
                         corrupt(
                             offset,
                             format!("a record with a good CRC does not parse: {e}"),
                         )
                     })?;
+                    let env = match parsed {
+                        segment::Parsed::Record(env) => env,
+                        segment::Parsed::Unreadable(u) if u.seq == last_seq + 1 => {
+                            // Its bytes are those written: keep them, and go on past them
+                            // (see segment::Unreadable).
+                            tracing::warn!(
+                                component = "archive",
+                                "{} at byte {offset}: {u}",
+                                path.display()
+                            );
+                            last_seq = u.seq;
+                            records += 1;
+                            hasher.update(&buf[offset..f.end]);
+                            offset = f.end;
+                            continue;
+                        }
+                        segment::Parsed::Unreadable(u) => {
+                            return Err(corrupt(
+                                offset,
+                                format!("the sequence jumps from {last_seq} to {}", u.seq),
+                            ));
+                        }
+                    };
                     if env.seq != last_seq + 1 {
                         return Err(corrupt(
                             offset,
@@ -435,6 +476,7 @@ impl Writer {
         };
         let seq = self.next_seq;
         let mut payload = encode(seq)?;
+        readable(record, &payload)?;
         self.prepare(now_ms, payload.len() as u64)?;
         if seq != self.next_seq {
             // Rotation wrote a checkpoint record, which took the number.
@@ -470,7 +512,7 @@ impl Writer {
                     Ok(()) => {}
                     // No room to finish this segment: keep adding to it, and rotate once the
                     // disk has room again (the next record tries).
-                    Err(ArchiveError::DiskFull { .. }) if self.open.is_some() => {}
+                    Err(e) if e.is_transient() && self.open.is_some() => {}
                     Err(e) => return Err(e),
                 }
             }
@@ -676,6 +718,39 @@ impl Writer {
 /// What to do when the writer refuses a damaged archive.
 const REFUSE: &str = "linewarden will not write to this archive until it is dealt with: run `linewarden archive verify` on it and see \"A damaged archive\" in the README";
 
+/// Refuses a record that would not read back. JSON has no infinity or NaN: a figure that is
+/// not finite serializes as `null`, and a record holding one would pass its CRC and then fail
+/// every reader. Readings (the bulk) are checked by their two numbers; every other kind is
+/// read back whole, which also catches any other way of writing what cannot be read.
+fn readable(record: &Record, payload: &[u8]) -> Result<(), ArchiveError> {
+    let unwritable = |reason: String| ArchiveError::Unwritable {
+        kind: record.kind(),
+        reason,
+    };
+    match record {
+        Record::ReadingAccepted {
+            value, inspected, ..
+        } => {
+            for (what, v) in [("value", Some(*value)), ("units inspected", *inspected)] {
+                if let Some(v) = v.filter(|v| !v.is_finite()) {
+                    return Err(unwritable(format!("its {what} {v} is not a finite number")));
+                }
+            }
+            Ok(())
+        }
+        Record::ReadingRejected { .. } => Ok(()),
+        // Read back and compared: an optional figure that is not finite reads back as absent
+        // rather than failing, which only the comparison sees.
+        _ => match segment::envelope(payload) {
+            Ok(e) if e.record == *record => Ok(()),
+            Ok(_) => Err(unwritable(
+                "it reads back as something else: a figure in it is not a finite number".into(),
+            )),
+            Err(e) => Err(unwritable(e.to_string())),
+        },
+    }
+}
+
 fn trailer_bytes(seal_frame_len: usize) -> Vec<u8> {
     let mut t = (seal_frame_len as u32).to_le_bytes().to_vec();
     t.extend_from_slice(TRAILER_MAGIC);
@@ -718,8 +793,10 @@ fn quarantine(
 #[derive(Debug, Clone, PartialEq)]
 pub enum WriterState {
     Running,
-    /// Writing is paused: the disk is full. Appends wait; nothing is lost.
-    DiskFull {
+    /// Writing is paused: the disk is full, or no file descriptor is free. Appends wait;
+    /// nothing is lost; writing resumes by itself.
+    Held {
+        cause: HeldCause,
         message: String,
     },
     /// The writer stopped for good (an fsync or I/O error).
@@ -728,6 +805,23 @@ pub enum WriterState {
     },
     /// The input closed and everything was flushed.
     Stopped,
+}
+
+/// Why writing is held.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum HeldCause {
+    DiskFull,
+    NoDescriptors,
+}
+
+impl HeldCause {
+    /// The word `status` shows.
+    pub fn word(self) -> &'static str {
+        match self {
+            HeldCause::DiskFull => "disk-full",
+            HeldCause::NoDescriptors => "no-descriptors",
+        }
+    }
 }
 
 /// What the writer reports after every change.
@@ -943,10 +1037,19 @@ async fn run(
                         let _ = r.send(Ok(seq));
                     }
                 }
-                Err(e @ ArchiveError::DiskFull { .. }) => {
+                Err(e) if e.is_transient() => {
                     full.report(&w, &e, &publish);
                     stalled.push_front((record, reply, last));
                     append_retry = Some(now + retry);
+                }
+                Err(e @ ArchiveError::Unwritable { .. }) => {
+                    // The rest of the batch is written; the log says why this record is
+                    // not. The sender is answered with the last record that was, so a bug
+                    // in one figure never stops the recording of readings.
+                    tracing::error!(component = "archive", "{e}");
+                    if last && let Some(r) = reply {
+                        let _ = r.send(Ok(w.next_seq() - 1));
+                    }
                 }
                 Err(e) => {
                     if let Some(r) = reply {
@@ -969,7 +1072,7 @@ async fn run(
                     }
                     deadline = None;
                 }
-                Err(e @ ArchiveError::DiskFull { .. }) => {
+                Err(e) if e.is_transient() => {
                     full.report(&w, &e, &publish);
                     write_retry = Some(now + retry);
                 }
@@ -996,7 +1099,7 @@ async fn run(
                     deadline = None;
                 }
                 Ok(None) => deadline = None,
-                Err(e @ ArchiveError::DiskFull { .. }) => {
+                Err(e) if e.is_transient() => {
                     full.report(&w, &e, &publish);
                     write_retry = Some(now + retry);
                 }
@@ -1099,14 +1202,19 @@ impl DiskFullLog {
             } else {
                 tracing::error!(
                     component = "archive",
-                    "{e} (full for {:.0} s now)",
+                    "{e} (held for {:.0} s now)",
                     now.duration_since(since).as_secs_f64()
                 );
             }
         }
         publish(
             w,
-            WriterState::DiskFull {
+            WriterState::Held {
+                cause: if matches!(e, ArchiveError::NoDescriptors { .. }) {
+                    HeldCause::NoDescriptors
+                } else {
+                    HeldCause::DiskFull
+                },
                 message: e.to_string(),
             },
         );
@@ -1117,7 +1225,7 @@ impl DiskFullLog {
             self.last_logged = None;
             tracing::warn!(
                 component = "archive",
-                "the disk has room again after {:.0} s; writing resumes",
+                "the archive can be written again after {:.0} s; writing resumes",
                 since.elapsed().as_secs_f64()
             );
             publish(w, WriterState::Running);

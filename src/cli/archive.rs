@@ -143,6 +143,15 @@ pub(crate) fn archive_cmd(a: ArchiveCommand) -> Result<()> {
             for n in &r.notes {
                 println!("  note: {n}");
             }
+            for u in &r.unreadable {
+                println!("  UNREADABLE: {u}");
+            }
+            if !r.unreadable.is_empty() {
+                println!(
+                    "  {} intact record(s) cannot be read by this build: their bytes are those written (CRC and chain hold), and every reader skips them (docs: the archive, unreadable records)",
+                    r.unreadable.len()
+                );
+            }
             for p in &r.problems {
                 println!("  PROBLEM: {p}");
             }
@@ -229,6 +238,16 @@ pub(crate) fn archive_cmd(a: ArchiveCommand) -> Result<()> {
                     }
                     w.flush()?;
                 }
+            }
+            let unreadable = r.unreadable();
+            if !unreadable.is_empty() {
+                eprintln!(
+                    "linewarden: {} intact record(s) this build cannot read were skipped (sequence {}); `archive verify` names them",
+                    unreadable.len(),
+                    linewarden::limits_file::ranges(
+                        &unreadable.iter().map(|s| *s as usize).collect::<Vec<_>>()
+                    )
+                );
             }
             if left_out.get() > 0 {
                 eprintln!(

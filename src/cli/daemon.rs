@@ -350,6 +350,7 @@ pub(crate) fn run_cmd(path: &std::path::Path) -> Result<()> {
                 }
             };
             tracing::info!(component = "daemon", "{which} received; stopping the sources");
+            let _ = linewarden::daemon::STOP_CAUSE.set(which);
             let _ = stop_tx.send(true);
         });
         let s = linewarden::daemon::run(cfg, stop_rx, reload_rx).await?;

@@ -84,6 +84,15 @@ fn prune<K: std::hash::Hash + Eq + Clone>(m: &mut HashMap<K, VecDeque<i64>>, now
     }
 }
 
+/// Takes back one attempt counted at `at` (a login that succeeded).
+fn forget_one(q: Option<&mut VecDeque<i64>>, at: i64) {
+    if let Some(q) = q
+        && let Some(i) = q.iter().rposition(|t| *t == at)
+    {
+        q.remove(i);
+    }
+}
+
 /// Why a login was refused.
 #[derive(Debug, PartialEq)]
 pub enum LoginRefused {
@@ -229,8 +238,24 @@ impl Access {
             {
                 return Err(LoginRefused::TooMany { retry_after_s: s });
             }
+            // Counted as a failure now, under the same lock as the check, and given back only
+            // if the password turns out right: guesses sent at once cannot all pass the check
+            // before any of them is counted.
+            f.by_address.entry(peer).or_default().push_back(now);
+            // Names that are not users are counted too, but cannot fill the table for good:
+            // the oldest are forgotten first.
+            f.by_user
+                .entry(user.to_string())
+                .or_default()
+                .push_back(now);
         }
-        let users = self.users().map_err(LoginRefused::Unavailable)?;
+        let users = self.users().map_err(|e| {
+            // Not a guess: the attempt is given back.
+            let mut f = self.failures.lock().unwrap();
+            forget_one(f.by_address.get_mut(&peer), now);
+            forget_one(f.by_user.get_mut(user), now);
+            LoginRefused::Unavailable(e)
+        })?;
         let hash = users
             .iter()
             .find(|u| u.name == user)
@@ -249,18 +274,15 @@ impl Access {
             .await
             .unwrap_or(false)
         } && known;
-        let now = now_ms();
         if !ok {
-            let mut f = self.failures.lock().unwrap();
-            f.by_address.entry(peer).or_default().push_back(now);
-            // Names that are not users are counted too, but cannot fill the table for good:
-            // the oldest are forgotten first.
-            f.by_user
-                .entry(user.to_string())
-                .or_default()
-                .push_back(now);
             return Err(LoginRefused::Wrong);
         }
+        {
+            let mut f = self.failures.lock().unwrap();
+            forget_one(f.by_address.get_mut(&peer), now);
+            forget_one(f.by_user.get_mut(user), now);
+        }
+        let now = now_ms();
         let t = token();
         let s = Session {
             user: user.to_string(),

@@ -200,7 +200,7 @@ impl EngineTask {
             // go on. The 1 s tick notices when there is room again.
             let archive_full = matches!(
                 archive_watch.borrow_and_update().state,
-                WriterState::DiskFull { .. }
+                WriterState::Held { .. }
             );
             if archive_full != was_full {
                 was_full = archive_full;
@@ -482,7 +482,7 @@ impl EngineTask {
                 durable_seq: st.durable_seq,
                 state: match &st.state {
                     WriterState::Running => "running".into(),
-                    WriterState::DiskFull { message } => format!("disk-full: {message}"),
+                    WriterState::Held { cause, message } => format!("{}: {message}", cause.word()),
                     WriterState::Failed { message } => format!("failed: {message}"),
                     WriterState::Stopped => "stopped".into(),
                 },
@@ -633,9 +633,9 @@ impl EngineTask {
         Ok(())
     }
 
-    /// The journal's last word on what is still open, the light off, the last retained states
-    /// and the engine's state archived with the reason for stopping.
-    pub async fn stop(&mut self, reason: String) -> Result<(), DaemonError> {
+    /// The journal's last word on what is still open, the light off and the last retained
+    /// states, for the outputs to send as they wind down.
+    pub fn closing(&mut self) {
         for a in self.engine.alerts().active() {
             tracing::warn!(
                 component = "alerts",
@@ -650,6 +650,11 @@ impl EngineTask {
         }
         self.publish.light.send_replace(hub::Light::Off);
         self.publish_states();
+    }
+
+    /// The engine's state and the `daemon-stopped` record with its reason: the archive's last
+    /// records, once the outputs have wound down and their deliveries are archived.
+    pub async fn record_stop(&mut self, reason: String) -> Result<(), DaemonError> {
         let mut last = self.engine.snapshot();
         last.push(Record::DaemonStopped { reason });
         self.summary.last_seq = self.archive.append_seq(last).await?;

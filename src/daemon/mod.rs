@@ -93,6 +93,10 @@ struct Journal {
     gone: bool,
 }
 
+/// What asked the daemon to stop ("SIGTERM"), set once by the command line before it turns the
+/// shutdown signal on; the `daemon-stopped` record says it.
+pub static STOP_CAUSE: std::sync::OnceLock<&'static str> = std::sync::OnceLock::new();
+
 /// Runs the daemon until `shutdown` turns true or every source has ended. Each message on
 /// `reload` rereads the config file: a valid file is swapped in (characteristics whose
 /// configuration did not change keep their state), an invalid one is rejected whole and the
@@ -135,12 +139,25 @@ pub async fn run(
     );
 
     let mut task = EngineTask::new(cfg, engine, archive, summary, health, publish, started_ms);
-    let reason = task.serve(rx, &mut inbox, &progress).await?;
+    let reason = match task.serve(rx, &mut inbox, &progress).await {
+        // The sources end when asked to stop, too: the reason is the request, not their end.
+        Ok(_) if *shutdown.borrow() => match STOP_CAUSE.get() {
+            Some(cause) => format!("stopped by {cause}"),
+            None => "asked to stop".to_string(),
+        },
+        Ok(reason) => reason,
+        Err(e) => {
+            // Said in the archive if it can still take a record (it cannot when it failed).
+            let _ = task.record_stop(format!("stopped by an error: {e}")).await;
+            return Err(e);
+        }
+    };
 
     tracing::info!(component = "daemon", "stopping: {reason}");
     notifier.send(&format!("STOPPING=1\nSTATUS=stopping: {reason}"));
-    task.stop(reason).await?;
+    task.closing();
     outputs.wind_down(&mut task, &mut inbox.delivered).await;
+    task.record_stop(reason).await?;
     let EngineTask {
         archive, summary, ..
     } = task;
@@ -394,7 +411,7 @@ fn start_watchdog(
                 < interval.as_millis() as i64;
             let disk_full = matches!(
                 status.borrow().state,
-                crate::archive::writer::WriterState::DiskFull { .. }
+                crate::archive::writer::WriterState::Held { .. }
             );
             if fresh || disk_full {
                 n.send("WATCHDOG=1");

@@ -12,7 +12,7 @@ use std::sync::atomic::{AtomicI64, AtomicU64, Ordering};
 
 use axum::Router;
 use axum::extract::State;
-use axum::http::{StatusCode, header};
+use axum::http::{Request, StatusCode, header};
 use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use prometheus_client::encoding::text::encode;
@@ -26,7 +26,7 @@ use tokio::sync::watch;
 use super::clock::now_ms;
 use super::hub::{AlertsView, Counts};
 use crate::alerts::Status;
-use crate::archive::writer::{Status as ArchiveStatus, WriterState};
+use crate::archive::writer::{HeldCause, Status as ArchiveStatus, WriterState};
 use crate::rules::Severity;
 
 /// The engine loop turns at least once a second (its tick); this long without a turn is a
@@ -115,33 +115,128 @@ async fn host_guard(
 /// The client's address, for the login limits and the log.
 pub type Peer = axum::extract::ConnectInfo<std::net::SocketAddr>;
 
+/// A client that has not sent a whole request header this long after connecting, or after
+/// its last response on a kept-alive connection, is disconnected. The page's own event stream
+/// is a response in progress, never waiting for a header, so it is not cut.
+pub const HEADER_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(10);
+
+/// Connections served at once at most. More are accepted and closed at once (shed), so that
+/// page clients can never take the descriptors the archive and the sources need.
+pub const MAX_CONNECTIONS: usize = 256;
+
+/// How long open connections (event streams among them) get to finish at shutdown.
+const SHUTDOWN_GRACE: std::time::Duration = std::time::Duration::from_secs(2);
+
+/// The connections served at once under a soft limit of `nofile` descriptors: at most
+/// [`MAX_CONNECTIONS`], and never more than a quarter of the limit, which leaves three
+/// quarters to the archive, the sources and the outputs.
+pub fn connection_cap(nofile: u64) -> usize {
+    ((nofile / 4) as usize).clamp(8, MAX_CONNECTIONS)
+}
+
+/// The soft limit on open files, raised to the hard limit first (the service manager's
+/// default soft limit of 1024 is kept for old programs' sake; the unit sets LimitNOFILE).
+pub fn raise_nofile() -> u64 {
+    let mut r = libc::rlimit {
+        rlim_cur: 0,
+        rlim_max: 0,
+    };
+    // SAFETY: getrlimit and setrlimit read and write the struct passed; nothing else.
+    unsafe {
+        if libc::getrlimit(libc::RLIMIT_NOFILE, &mut r) != 0 {
+            return 1024;
+        }
+        if r.rlim_cur < r.rlim_max {
+            let want = libc::rlimit {
+                rlim_cur: r.rlim_max,
+                rlim_max: r.rlim_max,
+            };
+            if libc::setrlimit(libc::RLIMIT_NOFILE, &want) == 0 {
+                r.rlim_cur = r.rlim_max;
+            }
+        }
+    }
+    r.rlim_cur
+}
+
 /// Serves until `shutdown` turns true; over TLS when the config has a certificate.
 pub async fn serve(
     listener: tokio::net::TcpListener,
     tls: Option<Arc<rustls::ServerConfig>>,
     state: WebState,
-    mut shutdown: watch::Receiver<bool>,
+    shutdown: watch::Receiver<bool>,
 ) {
-    use axum::serve::ListenerExt;
-    let done = async move {
-        let _ = shutdown.wait_for(|s| *s).await;
-    };
-    let app = router(state).into_make_service_with_connect_info::<std::net::SocketAddr>();
-    let r = match tls {
-        None => {
-            axum::serve(listener.tap_io(|_| {}), app)
-                .with_graceful_shutdown(done)
-                .await
-        }
-        Some(cfg) => {
-            axum::serve(TlsListener::new(listener, cfg).tap_io(|_| {}), app)
-                .with_graceful_shutdown(done)
-                .await
-        }
-    };
-    if let Err(e) = r {
-        tracing::error!(component = "web", "the web endpoint stopped: {e}");
+    let cap = connection_cap(raise_nofile());
+    let app = router(state);
+    match tls {
+        None => serve_on(listener, app, cap, shutdown).await,
+        Some(cfg) => serve_on(TlsListener::new(listener, cfg), app, cap, shutdown).await,
     }
+}
+
+/// The connection loop: each connection served by HTTP/1 with [`HEADER_TIMEOUT`], at most
+/// `cap` at once (the rest shed), all told to finish at shutdown.
+async fn serve_on<L>(
+    mut listener: L,
+    app: Router<()>,
+    cap: usize,
+    mut shutdown: watch::Receiver<bool>,
+) where
+    L: axum::serve::Listener<Addr = std::net::SocketAddr>,
+{
+    let slots = Arc::new(tokio::sync::Semaphore::new(cap));
+    let mut shed = 0u64;
+    loop {
+        let (io, peer) = tokio::select! {
+            c = listener.accept() => c,
+            _ = async { let _ = shutdown.wait_for(|s| *s).await; } => break,
+        };
+        let Ok(permit) = slots.clone().try_acquire_owned() else {
+            shed += 1;
+            if shed <= 3 || shed.is_power_of_two() {
+                tracing::warn!(
+                    component = "web",
+                    "{cap} page connections are open; a connection from {peer} was closed at once ({shed} so far)"
+                );
+            }
+            drop(io);
+            continue;
+        };
+        let app = app.clone();
+        let mut stop = shutdown.clone();
+        tokio::spawn(async move {
+            let _permit = permit;
+            let svc = hyper::service::service_fn(move |mut req: Request<hyper::body::Incoming>| {
+                req.extensions_mut()
+                    .insert(axum::extract::ConnectInfo(peer));
+                let mut app = app.clone();
+                tower_service::Service::call(&mut app, req.map(axum::body::Body::new))
+            });
+            let mut builder = hyper::server::conn::http1::Builder::new();
+            builder
+                .timer(hyper_util::rt::TokioTimer::new())
+                .header_read_timeout(HEADER_TIMEOUT);
+            let conn = builder.serve_connection(hyper_util::rt::TokioIo::new(io), svc);
+            tokio::pin!(conn);
+            tokio::select! {
+                r = conn.as_mut() => {
+                    if let Err(e) = r {
+                        tracing::debug!(component = "web", "connection from {peer} ended: {e}");
+                    }
+                }
+                _ = async { let _ = stop.wait_for(|s| *s).await; } => {
+                    conn.as_mut().graceful_shutdown();
+                    let _ = tokio::time::timeout(SHUTDOWN_GRACE, conn).await;
+                }
+            }
+        });
+    }
+    // Open connections see the same signal and finish within the grace time.
+    let _ = tokio::time::timeout(
+        SHUTDOWN_GRACE + std::time::Duration::from_millis(200),
+        slots.acquire_many(cap as u32),
+    )
+    .await;
 }
 
 /// Handshakes at once at most; more wait for their turn to be accepted.
@@ -484,9 +579,13 @@ async fn readyz(State(state): State<WebState>) -> Response {
     let mut problems = Vec::new();
     match &state.archive.borrow().state {
         WriterState::Running => {}
-        WriterState::DiskFull { .. } => {
-            problems.push("the archive's disk is full: readings are held back".to_string())
-        }
+        WriterState::Held { cause, .. } => problems.push(match cause {
+            HeldCause::DiskFull => "the archive's disk is full: readings are held back".to_string(),
+            HeldCause::NoDescriptors => {
+                "the daemon has no file descriptor free for the archive: readings are held back"
+                    .to_string()
+            }
+        }),
         WriterState::Failed { message } => {
             problems.push(format!("the archive has failed: {message}"))
         }
@@ -586,7 +685,8 @@ mod tests {
             (StatusCode::OK, "ready\n".into())
         );
         let (code, body) = ready(state(
-            WriterState::DiskFull {
+            WriterState::Held {
+                cause: HeldCause::DiskFull,
                 message: "no space left on device".into(),
             },
             "down",

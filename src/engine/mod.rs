@@ -105,10 +105,10 @@ impl Incoming {
         }
         let v = match &self.word {
             Some(w) => w.chars().take(120).collect(),
-            None => self.value.to_string(),
+            None => crate::format::plain(self.value),
         };
         match self.inspected {
-            Some(n) => format!("{v} of {n} inspected"),
+            Some(n) => format!("{v} of {} inspected", crate::format::plain(n)),
             None => v,
         }
     }
@@ -981,7 +981,6 @@ impl CharEngine {
             }
             return;
         }
-        self.number += 1;
         let time_ms = readings.last().map_or(0, |r| r.time_ms);
         let dispersion = match chart {
             VariablesChart::XbarR => Some(range(&values)),
@@ -993,7 +992,7 @@ impl CharEngine {
             }
         };
         let summary = SubgroupSummary {
-            number: self.number,
+            number: 0,
             time_ms,
             n: values.len(),
             mean: mean(&values),
@@ -1042,9 +1041,8 @@ impl CharEngine {
             }
         }
         let time_ms = readings.last().map_or(0, |r| r.time_ms);
-        self.number += 1;
         let summary = SubgroupSummary {
-            number: self.number,
+            number: 0,
             time_ms,
             n: readings.len(),
             mean: a.plotted(&AttributeSample {
@@ -1061,14 +1059,30 @@ impl CharEngine {
     /// Checks a completed subgroup against the limits (or adds it to the baseline), and says
     /// so. `baseline` is what the learning keeps of it: the readings, or for an attribute
     /// chart the count found and the units inspected.
+    ///
+    /// A subgroup whose figures overflow (readings so large that their sum, spread or ratio is
+    /// not a finite number) is discarded with the reason before it is numbered: its readings
+    /// stay in the archive as they were accepted, and no figure that cannot be written reaches
+    /// a record, the rules' state or a baseline.
     fn judge(
         &mut self,
-        summary: SubgroupSummary,
+        mut summary: SubgroupSummary,
         baseline_entry: Vec<f64>,
         readings: &[PendingReading],
         partial: bool,
         out: &mut Vec<Output>,
     ) {
+        if let Some(reason) = overflow_reason(&summary, readings) {
+            out.push(Output::Log {
+                level: Level::Warn,
+                characteristic: self.cfg.id.clone(),
+                message: format!("a subgroup was discarded: {reason}"),
+            });
+            out.push(self.discard(readings, reason));
+            return;
+        }
+        self.number += 1;
+        summary.number = self.number;
         let time_ms = summary.time_ms;
         let dispersion = summary.dispersion;
         let seqs: Vec<u64> = readings.iter().map(|r| r.seq).collect();
@@ -1235,6 +1249,9 @@ impl CharEngine {
         limits: StoredLimits,
         out: &mut Vec<Output>,
     ) {
+        if let Err(problems) = limits.check("the learned limits") {
+            return self.not_learned(&problems, out);
+        }
         for w in warnings {
             message.push_str("; ");
             message.push_str(w);
@@ -1592,6 +1609,39 @@ fn basis_of(l: &StoredLimits, c: &Characteristic) -> ChartBasis {
     b
 }
 
+/// Why a subgroup's figures cannot be used, when one of them is not a finite number: the
+/// figure, and the readings it came from (the first few, as numbers).
+fn overflow_reason(s: &SubgroupSummary, readings: &[PendingReading]) -> Option<String> {
+    let figures = [
+        ("its mean", Some(s.mean)),
+        ("its spread", s.dispersion),
+        ("its count found", s.found),
+        ("its units inspected", s.inspected),
+    ];
+    let (what, value) = figures
+        .into_iter()
+        .find_map(|(w, v)| v.filter(|v| !v.is_finite()).map(|v| (w, v)))?;
+    let mut shown: Vec<String> = readings
+        .iter()
+        .take(5)
+        .map(|r| match r.inspected {
+            Some(n) => format!("{} in {}", num(r.value), num(n)),
+            None => num(r.value),
+        })
+        .collect();
+    if readings.len() > 5 {
+        shown.push(format!("and {} more", readings.len() - 5));
+    }
+    Some(format!(
+        "{what} is {value}, not a finite number: the readings ({}) are too large to compute with; they stay in the archive as received",
+        shown.join(", ")
+    ))
+}
+
+/// The largest count or number of units taken exactly (2^53): a double holds every whole
+/// number up to it, and sums of counts beyond it are no longer counts.
+pub const MAX_COUNT: f64 = 9_007_199_254_740_992.0;
+
 /// Checks a reading of an attribute characteristic: a whole count of zero or more; on p and
 /// np one unit's result (0 or 1) or a batch's count no larger than the units inspected; a
 /// batch of at least one unit.
@@ -1615,6 +1665,22 @@ fn check_attribute(
         return Err(format!(
             "{} is not a {what} of {id}: it must be a whole number of zero or more",
             num(v)
+        ));
+    }
+    if v > MAX_COUNT {
+        return Err(format!(
+            "{} is not a {what} of {id}: it is beyond {}, the largest count kept exactly",
+            num(v),
+            num(MAX_COUNT)
+        ));
+    }
+    if let Some(n) = inc.inspected
+        && n > MAX_COUNT
+    {
+        return Err(format!(
+            "{} units inspected is beyond {}, the largest number of units kept exactly",
+            num(n),
+            num(MAX_COUNT)
         ));
     }
     match inc.inspected {

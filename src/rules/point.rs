@@ -24,6 +24,9 @@ use crate::stats::cusum::{CusumDesign, CusumState};
 use crate::stats::ewma::{EwmaDesign, EwmaState};
 use crate::stats::variables::{self, DispersionKind, VariablesChart};
 
+/// The largest standardized distance from the centre the rules are stepped with.
+pub const Z_SATURATED: f64 = 1e9;
+
 /// What the points are judged against: the centre, sigma and limits in force.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ChartBasis {
@@ -424,7 +427,10 @@ impl PointEvaluator {
             _ => (self.basis.sigma_point(p.n), self.basis.location_for(p.n)),
         };
         self.current = p.attribute;
-        let z = (p.mean - loc.center) / sigma_point;
+        // A point a billion sigmas out is beyond every limit and zone; saturating there keeps
+        // an absurd reading (1e308 against limits a hundredth apart) from putting an infinity
+        // into the EWMA or CUSUM sums, where it would stay for good.
+        let z = ((p.mean - loc.center) / sigma_point).clamp(-Z_SATURATED, Z_SATURATED);
         let zu = (loc.ucl - loc.center) / sigma_point;
         let zl = (loc.lcl - loc.center) / sigma_point;
         let here = PointRef {

@@ -204,22 +204,43 @@ pub struct Daemon {
 
 impl Daemon {
     pub fn start(cfg: &Path, log: &Path) -> Daemon {
+        Daemon::start_limited(cfg, log, None)
+    }
+
+    /// [`Daemon::start`] with its open-file limit (soft and hard) set to `nofile`, as a unit's
+    /// LimitNOFILE would.
+    pub fn start_limited(cfg: &Path, log: &Path, nofile: Option<u64>) -> Daemon {
+        use std::os::unix::process::CommandExt;
         let f = std::fs::OpenOptions::new()
             .create(true)
             .append(true)
             .open(log)
             .unwrap();
-        let child = Command::new(env!("CARGO_BIN_EXE_linewarden"))
-            .args(["run", "--config"])
+        let mut cmd = Command::new(env!("CARGO_BIN_EXE_linewarden"));
+        cmd.args(["run", "--config"])
             .arg(cfg)
             .env(
                 "RUST_LOG",
                 std::env::var("TEST_DAEMON_LOG").unwrap_or("info".into()),
             )
             .stdout(Stdio::null())
-            .stderr(f)
-            .spawn()
-            .unwrap();
+            .stderr(f);
+        if let Some(n) = nofile {
+            // SAFETY: setrlimit is async-signal-safe; nothing else runs between fork and exec.
+            unsafe {
+                cmd.pre_exec(move || {
+                    let r = libc::rlimit {
+                        rlim_cur: n,
+                        rlim_max: n,
+                    };
+                    if libc::setrlimit(libc::RLIMIT_NOFILE, &r) != 0 {
+                        return Err(std::io::Error::last_os_error());
+                    }
+                    Ok(())
+                });
+            }
+        }
+        let child = cmd.spawn().unwrap();
         Daemon {
             child,
             log: log.to_path_buf(),
@@ -263,6 +284,10 @@ impl Daemon {
     pub fn kill9(&mut self) {
         self.child.kill().unwrap();
         self.child.wait().unwrap();
+    }
+
+    pub fn is_running(&mut self) -> bool {
+        matches!(self.child.try_wait(), Ok(None))
     }
 
     pub fn stop(mut self) {

@@ -60,7 +60,7 @@ pub async fn run(
     // Files cut short by a crash first.
     let mut ledger = read_ledger(&src.path);
     let leftovers = list_csv(&processing_dir(&src.path));
-    for f in leftovers {
+    for (f, _) in leftovers {
         if !process(&src, &name, &f, &tx, &mut ledger, true).await {
             return;
         }
@@ -74,8 +74,18 @@ pub async fn run(
             _ = tick.tick() => {}
             _ = shutdown.changed() => break,
         }
-        for f in list_csv(&src.path) {
-            let Ok(meta) = std::fs::metadata(&f) else {
+        for (f, kind) in list_csv(&src.path) {
+            if let Some(kind) = kind {
+                // Moved aside at once (the link itself, never what it points to), with the
+                // reason, so that it is said once and not met again.
+                let report = f
+                    .file_name()
+                    .map(|n| n.to_string_lossy().into_owned())
+                    .unwrap_or_default();
+                reject_file(&src, &f, &report, &refusal(kind));
+                continue;
+            }
+            let Ok(meta) = std::fs::symlink_metadata(&f) else {
                 continue;
             };
             let stamp = (meta.len(), meta.modified().unwrap_or(std::time::UNIX_EPOCH));
@@ -107,22 +117,82 @@ pub async fn run(
     let _ = tx.send(SourceEvent::Ended { source: name }).await;
 }
 
-fn list_csv(dir: &Path) -> Vec<PathBuf> {
-    let mut v: Vec<PathBuf> = std::fs::read_dir(dir)
+/// The `.csv` entries of `dir`, sorted, with what kind of entry each is. The kind comes from
+/// the directory entry itself: a symbolic link is never followed.
+fn list_csv(dir: &Path) -> Vec<(PathBuf, Option<&'static str>)> {
+    let mut v: Vec<(PathBuf, Option<&'static str>)> = std::fs::read_dir(dir)
         .map(|rd| {
             rd.flatten()
-                .map(|e| e.path())
-                .filter(|p| {
-                    p.is_file()
-                        && p.extension()
-                            .and_then(|e| e.to_str())
-                            .is_some_and(|e| e.eq_ignore_ascii_case("csv"))
+                .filter(|e| {
+                    Path::new(&e.file_name())
+                        .extension()
+                        .and_then(|x| x.to_str())
+                        .is_some_and(|x| x.eq_ignore_ascii_case("csv"))
                 })
+                .filter_map(|e| Some((e.path(), not_regular(&e.file_type().ok()?))))
                 .collect()
         })
         .unwrap_or_default();
     v.sort();
     v
+}
+
+/// What an entry is when it is not a regular file (None for a regular file).
+fn not_regular(t: &std::fs::FileType) -> Option<&'static str> {
+    use std::os::unix::fs::FileTypeExt;
+    if t.is_file() {
+        None
+    } else if t.is_symlink() {
+        Some("a symbolic link")
+    } else if t.is_dir() {
+        Some("a directory")
+    } else if t.is_fifo() {
+        Some("a named pipe")
+    } else if t.is_socket() {
+        Some("a socket")
+    } else {
+        Some("a device file")
+    }
+}
+
+/// Why an entry in the folder is not read as a report: it is not a regular file of its own.
+fn refusal(kind: &str) -> String {
+    format!(
+        "it is {kind}, not a regular file; only regular files dropped into the folder itself are read (links are never followed), and nothing of what it points to was read"
+    )
+}
+
+/// Reads a report that must be a regular file of its own in the folder: opened without
+/// following a symbolic link and without waiting on a pipe, then checked on the open file, so
+/// that swapping the file for a link after it was listed changes nothing. The error is the
+/// reason it is refused (for the `.error` file), or an I/O error.
+fn read_report(file: &Path) -> Result<Vec<u8>, Result<String, std::io::Error>> {
+    use std::io::Read;
+    use std::os::unix::fs::{MetadataExt, OpenOptionsExt};
+    let mut f = match std::fs::OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NOFOLLOW | libc::O_NONBLOCK)
+        .open(file)
+    {
+        Ok(f) => f,
+        Err(e) if e.raw_os_error() == Some(libc::ELOOP) => {
+            return Err(Ok(refusal("a symbolic link")));
+        }
+        Err(e) => return Err(Err(e)),
+    };
+    let meta = f.metadata().map_err(Err)?;
+    if let Some(kind) = not_regular(&meta.file_type()) {
+        return Err(Ok(refusal(kind)));
+    }
+    if meta.nlink() > 1 {
+        return Err(Ok(format!(
+            "it has {} hard links, so it is also a file elsewhere; a report must be a file of its own, and nothing of it was read",
+            meta.nlink()
+        )));
+    }
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    f.read_to_end(&mut bytes).map_err(Err)?;
+    Ok(bytes)
 }
 
 /// The ledger of reports read: one line per report, `sha256 file-name time`, appended once the
@@ -194,9 +264,13 @@ async fn process(
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let bytes = match std::fs::read(file) {
+    let bytes = match read_report(file) {
         Ok(b) => b,
-        Err(e) => {
+        Err(Ok(reason)) => {
+            reject_file(src, file, &report, &reason);
+            return true;
+        }
+        Err(Err(e)) => {
             tracing::error!("cannot read {}: {e}", file.display());
             return true;
         }
@@ -241,7 +315,7 @@ async fn process(
     };
     let arrival = now_ms();
     let mut sent = 0;
-    for (key, characteristic, value, part) in readings {
+    for (key, characteristic, value, part, cell) in readings {
         let source_key = format!("{sha}:{key}");
         if src.already.contains(&source_key) {
             continue;
@@ -258,7 +332,7 @@ async fn process(
             source_key: Some(source_key),
             word: None,
             inspected: None,
-            sent: None,
+            sent: Some(crate::format::raw_text(cell.as_bytes())),
         });
         if tx.send(ev).await.is_err() {
             return false;
@@ -308,8 +382,9 @@ async fn process(
     true
 }
 
-/// A reading found in a report: (row:column key, characteristic, value, part).
-pub type Found = (String, String, f64, Option<String>);
+/// A reading found in a report: (row:column key, characteristic, value, part, the cell's text
+/// as written).
+pub type Found = (String, String, f64, Option<String>, String);
 
 /// A row or cell that is not a reading: (key, raw text, reason with file:line[:column]).
 pub type Bad = (String, String, String);
@@ -446,7 +521,13 @@ pub fn parse(
                     continue;
                 }
                 match number(v, line, vi) {
-                    Ok(x) => readings.push((format!("{line}:{}", vi + 1), c.to_string(), x, part)),
+                    Ok(x) => readings.push((
+                        format!("{line}:{}", vi + 1),
+                        c.to_string(),
+                        x,
+                        part,
+                        v.to_string(),
+                    )),
                     Err(b) => bad.push(b),
                 }
             }
@@ -461,6 +542,7 @@ pub fn parse(
                                 id.clone(),
                                 x,
                                 part.clone(),
+                                v.to_string(),
                             )),
                             Err(b) => bad.push(b),
                         },

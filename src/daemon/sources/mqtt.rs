@@ -124,7 +124,13 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                     )
                 })?;
             let (value, word) = match text.trim().parse::<f64>() {
-                Ok(v) => (v, None),
+                Ok(v) if v.is_finite() => (v, None),
+                Ok(_) => {
+                    return Err(fail(
+                        Some(characteristic.clone()),
+                        crate::format::finite_number(text).unwrap_err(),
+                    ));
+                }
                 // A short word may be a pass/fail station's result; the characteristic's word
                 // lists decide.
                 Err(_) if is_word(text.trim()) => (f64::NAN, Some(text.trim().to_string())),
@@ -186,7 +192,16 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
             let (v, word) = match doc.pointer(value) {
                 Some(serde_json::Value::Number(n)) => (n.as_f64(), None),
                 Some(serde_json::Value::String(s)) => match s.trim().parse::<f64>() {
-                    Ok(v) => (Some(v), None),
+                    Ok(v) if v.is_finite() => (Some(v), None),
+                    Ok(_) => {
+                        return Err(fail(
+                            c.clone(),
+                            format!(
+                                "{value} is {}",
+                                crate::format::finite_number(s).unwrap_err()
+                            ),
+                        ));
+                    }
                     Err(_) if is_word(s.trim()) => (Some(f64::NAN), Some(s.trim().to_string())),
                     Err(_) => (None, None),
                 },
@@ -235,25 +250,22 @@ pub fn parse(src: &MqttSource, topic: &str, payload: &[u8]) -> Result<Parsed, Un
                 Some(serde_json::Value::Number(n)) => Some(n.to_string()),
                 _ => None,
             };
+            // The pointer reads a batch's units where a message carries them; a message
+            // without them is one unit's result (or a measurement), read as such.
             let inspected = match inspected {
                 None => None,
                 Some(ptr) => match doc.pointer(ptr) {
                     Some(serde_json::Value::Number(n)) => n.as_f64(),
                     Some(serde_json::Value::String(s)) => match s.trim().parse::<f64>() {
-                        Ok(n) => Some(n),
-                        Err(_) => {
+                        Ok(n) if n.is_finite() => Some(n),
+                        _ => {
                             return Err(fail(
                                 c,
                                 format!("{ptr} = {:?} is not a number of units inspected", clip(s)),
                             ));
                         }
                     },
-                    None => {
-                        return Err(fail(
-                            c,
-                            format!("no units inspected at {ptr} in {:?}", clip(text)),
-                        ));
-                    }
+                    None => None,
                     Some(other) => {
                         return Err(fail(
                             c,
@@ -517,12 +529,8 @@ fn message_event(
         SourceEvent::Unreadable {
             source: name.to_string(),
             characteristic,
-            raw: format!(
-                "{}: {}",
-                p.topic,
-                clip(&String::from_utf8_lossy(first_bytes(&p.payload)))
-            ),
-            reason,
+            raw: crate::format::raw_text(&p.payload),
+            reason: format!("on topic {}: {reason}", p.topic),
             source_key: key,
         }
     };
@@ -562,24 +570,13 @@ fn message_event(
                 arrival_ms: arrival,
                 part: r.part,
                 source_key: key,
-                sent: r.word.as_ref().map(|_| {
-                    format!(
-                        "{}: {}",
-                        p.topic,
-                        clip(&String::from_utf8_lossy(first_bytes(&p.payload)))
-                    )
-                }),
+                sent: Some(crate::format::raw_text(&p.payload)),
                 word: r.word,
                 inspected: r.inspected,
             })
         }
         Err(u) => rejected(u.characteristic, u.reason, key),
     }
-}
-
-/// The first bytes of a payload, for the record of a rejected message.
-fn first_bytes(payload: &[u8]) -> &[u8] {
-    &payload[..payload.len().min(120)]
 }
 
 /// Words for a source time that is too far from the arrival time.
@@ -796,10 +793,12 @@ mod tests {
         );
         let r = parse(&batch, "eol/leak", br#"{"bad": 3, "tested": "50"}"#).unwrap();
         assert_eq!((r.value, r.inspected), (3.0, Some(50.0)));
+        // Without units it is one unit's result, read as such (the engine judges it).
+        let r = parse(&batch, "eol/leak", br#"{"bad": 1}"#).unwrap();
+        assert_eq!((r.value, r.inspected), (1.0, None));
         for (payload, why) in [
-            (&br#"{"bad": 3}"#[..], "no units inspected at /tested"),
             (
-                br#"{"bad": 3, "tested": "many"}"#,
+                &br#"{"bad": 3, "tested": "many"}"#[..],
                 "is not a number of units inspected",
             ),
             (

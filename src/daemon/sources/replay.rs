@@ -110,6 +110,8 @@ pub async fn run(
                 source_key: Some(format!("{}:{line_no}", file.display())),
                 word: parsed.result.map(|r| r.trim().to_string()),
                 inspected: parsed.inspected,
+                // A line stands for what a device sent: its word or number, as written in
+                // the record of a rejection (a number JSON cannot hold fails the whole line).
                 sent: None,
             }),
             (_, raw) => SourceEvent::Unreadable {

@@ -254,7 +254,6 @@ async fn read_loop(
     }
 }
 
-/// The event for one frame (None for an empty frame).
 /// The event for one frame from a gauge: a reading, why it is not one, or nothing for an empty
 /// frame.
 pub fn frame_event(
@@ -267,21 +266,25 @@ pub fn frame_event(
     if text.is_empty() {
         return None;
     }
+    // The frame as it came, for the record should it be refused here or by the engine.
+    let raw = crate::format::raw_text(frame.trim_ascii());
     let bad = |reason: String| SourceEvent::Unreadable {
         source: name.to_string(),
         characteristic: g.characteristic.clone(),
-        raw: text.clone(),
+        raw: raw.clone(),
         reason,
         source_key: None,
     };
     let Some(caps) = re.captures(&text) else {
         return Some(bad("the frame does not match the gauge's pattern".into()));
     };
-    let Some(value) = caps
+    let value = match caps
         .name("value")
-        .and_then(|m| m.as_str().parse::<f64>().ok())
-    else {
-        return Some(bad("the value is not a number".into()));
+        .map(|m| crate::format::finite_number(m.as_str()))
+    {
+        Some(Ok(v)) => v,
+        Some(Err(why)) => return Some(bad(format!("the value {why}"))),
+        None => return Some(bad("the value is not a number".into())),
     };
     let characteristic = match caps.name("channel") {
         Some(ch) => match g.channels.iter().find(|(c, _)| c == ch.as_str()) {
@@ -324,6 +327,6 @@ pub fn frame_event(
         source_key: None,
         word: None,
         inspected: None,
-        sent: None,
+        sent: Some(raw),
     }))
 }
