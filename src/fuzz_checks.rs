@@ -229,6 +229,13 @@ pub fn archive_frames(data: &[u8]) {
         match segment::decode(data, offset) {
             Ok(f) => {
                 assert!(f.end > offset && f.end <= data.len());
+                // A record's payload parses, or is an unreadable record with its number, or
+                // is an error: never a panic.
+                if f.kind == segment::TYPE_RECORD
+                    && let Ok(segment::Parsed::Unreadable(u)) = segment::parse_record(f.payload)
+                {
+                    assert!(!u.error.is_empty());
+                }
                 offset = f.end;
             }
             Err(_) => {
@@ -282,15 +289,28 @@ pub fn archive_recovery(data: &[u8], dir: &Path) {
             }
             let next = w.next_seq();
             drop(w);
-            if let Ok(r) = crate::archive::reader::Reader::open(dir) {
-                let mut expected = 1;
-                for e in r.iter(&Default::default()).flatten() {
-                    assert_eq!(e.seq, expected);
+            // What the writer opened, verify and every reader read without a problem: they
+            // agree on the same archive.
+            let v = crate::archive::reader::verify(dir).expect("verify reads the directory");
+            assert!(
+                v.problems.is_empty(),
+                "the writer opened it, verify says {v:?}"
+            );
+            let r = crate::archive::reader::Reader::open(dir).expect("the reader opens it");
+            let mut expected = 1;
+            for e in r.iter(&Default::default()) {
+                let e = e.unwrap_or_else(|e| panic!("the writer opened it, a reader says {e}"));
+                while r.unreadable().contains(&expected) {
                     expected += 1;
                 }
-                if segment::seal_of(&bytes).is_none() {
-                    assert_eq!(expected, next);
-                }
+                assert_eq!(e.seq, expected);
+                expected += 1;
+            }
+            while r.unreadable().contains(&expected) {
+                expected += 1;
+            }
+            if segment::seal_of(&bytes).is_none() {
+                assert_eq!(expected, next);
             }
         }
         Err(e) => assert!(!e.to_string().is_empty()),
@@ -484,4 +504,57 @@ pub fn extreme_numbers(data: &[u8]) {
     }
     let snapshot = engine.snapshot().into_iter().map(Output::Record).collect();
     check(snapshot);
+}
+
+/// Entries of every kind dropped into a watched folder, one per input byte: a regular file, a
+/// symbolic link to a file outside the folder (to a directory, or to nowhere), a named pipe, a
+/// directory, a hard link to the outside file, each named `*.csv`. Whatever the mix, only
+/// regular files of their own are read, and nothing of the outside file (which holds a marker)
+/// is ever returned.
+pub fn folder_entries(data: &[u8], dir: &Path) {
+    use crate::daemon::sources::folder::{list_csv, read_report};
+    let _ = std::fs::remove_dir_all(dir);
+    let inbox = dir.join("inbox");
+    if std::fs::create_dir_all(&inbox).is_err() {
+        return;
+    }
+    let outside = dir.join("outside.txt");
+    let _ = std::fs::write(&outside, "MARKER-OUTSIDE\n");
+    for (i, b) in data.iter().take(24).enumerate() {
+        let p = inbox.join(format!("e{i}.csv"));
+        let _ = match b % 7 {
+            0 => std::fs::write(&p, format!("Serial,Bore\nVB{i},12.0\n")),
+            1 => std::os::unix::fs::symlink(&outside, &p),
+            2 => std::os::unix::fs::symlink(dir, &p),
+            3 => std::os::unix::fs::symlink(dir.join("nowhere"), &p),
+            4 => std::ffi::CString::new(p.to_string_lossy().into_owned())
+                .map_err(std::io::Error::other)
+                .and_then(|c| {
+                    // SAFETY: mkfifo with a valid NUL-terminated path.
+                    match unsafe { libc::mkfifo(c.as_ptr(), 0o600) } {
+                        0 => Ok(()),
+                        _ => Err(std::io::Error::last_os_error()),
+                    }
+                }),
+            5 => std::fs::create_dir(&p),
+            _ => std::fs::hard_link(&outside, &p),
+        };
+    }
+    for (path, kind) in list_csv(&inbox) {
+        let meta = std::fs::symlink_metadata(&path).expect("listed");
+        assert_eq!(
+            kind.is_none(),
+            meta.file_type().is_file(),
+            "{}",
+            path.display()
+        );
+        match read_report(&path) {
+            Ok(bytes) => {
+                assert!(meta.file_type().is_file());
+                assert!(!String::from_utf8_lossy(&bytes).contains("MARKER"));
+            }
+            Err(Ok(reason)) => assert!(!reason.contains("MARKER")),
+            Err(Err(e)) => panic!("{}: {e}", path.display()),
+        }
+    }
 }

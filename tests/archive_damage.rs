@@ -429,3 +429,98 @@ fn the_writer_refuses_to_start_on_an_archive_whose_sealed_segments_are_not_whole
     fs::write(&p, &b).unwrap();
     refused(&d, "bytes added after the seal");
 }
+
+/// What broke: with a zero-length newest segment (or an empty archive directory) `verify` said
+/// "no problems" while stats, export and the desk refused the archive. A newest segment with no
+/// intact header and nothing after it holds no record: every reader passes over it alike, and
+/// the writer sets it aside on its start. An empty directory is empty to all of them.
+#[test]
+fn an_empty_or_unborn_newest_segment_is_nothing_to_every_reader() {
+    let base = tempfile::tempdir().unwrap();
+    for (case, unborn) in [
+        ("empty", Vec::new()),
+        ("cut-header", vec![0x30, 0x00, 0x00]),
+        ("zeros", vec![0u8; 64]),
+    ] {
+        let d = base.path().join(case);
+        fill(&d, 40, 2048);
+        let segs = segment::list(&d).unwrap();
+        let (idx, _, _) = segs.last().unwrap();
+        let whole = reader::verify(&d).unwrap();
+        let path = d.join(segment::file_name(idx + 1, whole.last_seq + 1));
+        fs::write(&path, &unborn).unwrap();
+
+        let v = reader::verify(&d).unwrap();
+        assert!(v.problems.is_empty(), "{case}: {:?}", v.problems);
+        assert_eq!(v.records, whole.records, "{case}");
+        assert!(
+            v.notes.iter().any(|n| n.contains("holds no record")),
+            "{case}: {:?}",
+            v.notes
+        );
+        let r = Reader::open(&d).unwrap();
+        assert_eq!(
+            r.iter(&Filter::default())
+                .inspect(|e| assert!(e.is_ok(), "{case}: {e:?}"))
+                .count() as u64,
+            whole.records
+        );
+        r.tail(30).unwrap();
+        for args in [
+            vec!["archive", "verify"],
+            vec!["archive", "stats"],
+            vec!["archive", "export"],
+            vec!["limits", "--archive"],
+        ] {
+            let mut args = args;
+            args.push(d.to_str().unwrap());
+            if args[0] == "limits" {
+                args.extend(["--characteristic", "bore"]);
+            }
+            let (ok, out, err) = common::peers::cli(&args);
+            // `limits` of readings with no subgroups says so; it never calls the archive damaged.
+            if args[0] == "limits" {
+                assert!(
+                    ok || err.contains("holds no subgroups"),
+                    "{case} {args:?}: {err}"
+                );
+            } else {
+                assert!(ok, "{case} {args:?}: {out}{err}");
+            }
+            assert!(
+                !err.contains("damage") && !err.contains("segment header"),
+                "{err}"
+            );
+        }
+        // The writer sets it aside and goes on from the records before it.
+        let (mut w, _) = Writer::open(cfg(&d, 2048)).unwrap();
+        assert_eq!(w.next_seq(), whole.last_seq + 1, "{case}");
+        assert!(!path.exists(), "{case}: not set aside");
+        w.append(&reading(999), T0).unwrap();
+        w.flush().unwrap();
+        drop(w);
+        assert!(reader::verify(&d).unwrap().problems.is_empty());
+    }
+
+    // An empty directory: empty to everyone, damaged to no one.
+    let d = base.path().join("nothing");
+    fs::create_dir(&d).unwrap();
+    let v = reader::verify(&d).unwrap();
+    assert!(v.problems.is_empty());
+    assert!(
+        v.notes.iter().any(|n| n.contains("no records yet")),
+        "{v:?}"
+    );
+    let (ok, _, err) = common::peers::cli(&["archive", "stats", d.to_str().unwrap()]);
+    assert!(ok, "{err}");
+    let (_, _, err) = common::peers::cli(&["archive", "export", d.to_str().unwrap()]);
+    assert!(err.contains("no records"), "{err}");
+    let (ok, _, err) = common::peers::cli(&[
+        "limits",
+        "--archive",
+        d.to_str().unwrap(),
+        "--characteristic",
+        "bore",
+    ]);
+    assert!(!ok && err.contains("holds no subgroups"), "{err}");
+}

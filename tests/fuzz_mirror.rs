@@ -98,3 +98,13 @@ fn archive_recovery() {
         checks::archive_recovery(&data, &at);
     });
 }
+
+#[test]
+fn folder_entries() {
+    let dir = tempfile::tempdir().unwrap();
+    let at = dir.path().join("folder");
+    corpus("folder_entries", |d| checks::folder_entries(d, &at));
+    proptest!(ProptestConfig::with_cases(64), |(data in proptest::collection::vec(any::<u8>(), 0..24))| {
+        checks::folder_entries(&data, &at);
+    });
+}

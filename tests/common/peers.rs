@@ -200,6 +200,7 @@ pub fn start_mosquitto(dir: &Path, port: u16) -> Option<Broker> {
 pub struct Daemon {
     child: Child,
     log: PathBuf,
+    cfg: PathBuf,
 }
 
 impl Daemon {
@@ -244,6 +245,7 @@ impl Daemon {
         Daemon {
             child,
             log: log.to_path_buf(),
+            cfg: cfg.to_path_buf(),
         }
     }
 
@@ -296,6 +298,32 @@ impl Daemon {
         }
         let status = self.child.wait().unwrap();
         assert!(status.success(), "the daemon failed:\n{}", self.log_text());
+        // What broke: a delivery archived at shutdown came after `daemon-stopped`, whose
+        // reason said the sources had ended when a signal had stopped them. Every run a test
+        // stops ends with `daemon-stopped`, saying why, and the last log line's durable
+        // sequence is its number.
+        let archive = linewarden::config::load(&self.cfg).unwrap().archive_dir;
+        let r = linewarden::archive::reader::Reader::open(&archive).unwrap();
+        let last = r
+            .iter(&Default::default())
+            .last()
+            .expect("a record")
+            .unwrap();
+        match &last.record {
+            linewarden::archive::Record::DaemonStopped { reason } => assert!(
+                reason == "stopped by SIGTERM" || reason == "every source has ended",
+                "{reason}"
+            ),
+            other => panic!("the last record is {other:?}, not daemon-stopped"),
+        }
+        let log = self.log_text();
+        let said: u64 = log
+            .lines()
+            .rev()
+            .find_map(|l| l.split("archive durable to sequence ").nth(1))
+            .and_then(|t| t.split_whitespace().next()?.parse().ok())
+            .expect("the last log line says the durable sequence");
+        assert_eq!(said, last.seq, "{log}");
     }
 }
 

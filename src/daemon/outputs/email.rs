@@ -221,11 +221,21 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
             }
             continue;
         }
-        // Gather what else fires close by into one digest.
+        // Gather what else fires close by into one digest; a stop-level alert waits at most
+        // STOP_GATHER, even when it arrives while lower ones are being gathered.
         if attempt == 0 && e.digest_ms > 0 {
-            tokio::select! {
-                _ = tokio::time::sleep(Duration::from_millis(e.digest_ms)) => {}
-                _ = f.shutdown.changed() => break,
+            let mut until = tokio::time::Instant::now() + Duration::from_millis(e.digest_ms);
+            let mut seen_stop = false;
+            loop {
+                if !seen_stop && urgent(&f.alerts.borrow(), &ledger, &o) {
+                    seen_stop = true;
+                    until = until.min(tokio::time::Instant::now() + STOP_GATHER);
+                }
+                tokio::select! {
+                    _ = tokio::time::sleep_until(until) => break,
+                    r = f.alerts.changed() => if r.is_err() { break 'outer },
+                    _ = f.shutdown.changed() => break 'outer,
+                }
             }
         }
         // Rate limit: at most max_per_hour in any hour.
@@ -237,7 +247,8 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
                 break;
             }
         }
-        if sent.len() >= e.max_per_hour as usize {
+        // The hourly limit holds back lower severities and updates, never a stop.
+        if sent.len() >= e.max_per_hour as usize && !urgent(&f.alerts.borrow(), &ledger, &o) {
             let wait = hour - sent.front().map_or(Duration::ZERO, |t| t.elapsed());
             tracing::info!(
                 "{} emails in the last hour: the next one waits {:.0} s and will carry every alert since",
@@ -246,6 +257,7 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
             );
             tokio::select! {
                 _ = tokio::time::sleep(wait) => {}
+                r = f.alerts.changed() => if r.is_err() { break },
                 _ = f.shutdown.changed() => break,
             }
             continue;
@@ -304,5 +316,82 @@ pub async fn run(o: Output, e: EmailOutput, mut f: Feeds) {
                 attempt += 1;
             }
         }
+    }
+    flush(&o, &e, &mailer, &mut ledger, &f).await;
+}
+
+/// A stop-level alert waits this long at most for others raised with it to share its email.
+pub const STOP_GATHER: Duration = Duration::from_millis(500);
+
+/// At shutdown, the last email (everything held for a digest or by the hourly limit) gets this
+/// long to go out: the daemon waits for its outputs a little longer.
+pub const FLUSH_LIMIT: Duration = Duration::from_secs(4);
+
+/// Whether a stop-level alert waits for its first email.
+fn urgent(view: &AlertsView, ledger: &Ledger, o: &Output) -> bool {
+    view.for_output(o.min_severity, o.escalation).any(|a| {
+        a.severity == crate::rules::Severity::Stop
+            && a.status == Status::Open
+            && ledger.delivered(a) == 0
+    })
+}
+
+/// At shutdown: one email with everything still held, within [`FLUSH_LIMIT`]; what could not
+/// go is named in the log, alert by alert, and goes out at the next start (the archive knows it
+/// was never delivered).
+async fn flush(
+    o: &Output,
+    e: &EmailOutput,
+    mailer: &AsyncSmtpTransport<Tokio1Executor>,
+    ledger: &mut Ledger,
+    f: &Feeds,
+) {
+    let output = o.id.as_str();
+    let view = f.alerts.borrow().clone();
+    let waiting = |ledger: &Ledger| -> Vec<Alert> {
+        view.for_output(o.min_severity, o.escalation)
+            .filter(|a| ledger.delivered(a) == 0)
+            .cloned()
+            .collect()
+    };
+    let due = waiting(ledger);
+    if due.is_empty() {
+        return;
+    }
+    let refs: Vec<&Alert> = due.iter().collect();
+    let sent = match compose(e, output, &view, &refs, &f.timezone) {
+        Ok(msg) => match tokio::time::timeout(FLUSH_LIMIT, mailer.send(msg)).await {
+            Ok(Ok(_)) => Ok(()),
+            Ok(Err(err)) => Err(format!("cannot send mail: {err}")),
+            Err(_) => Err(format!(
+                "the mail server did not take the email within {} s",
+                FLUSH_LIMIT.as_secs()
+            )),
+        },
+        Err(err) => Err(format!("cannot write the email: {err}")),
+    };
+    match sent {
+        Ok(()) => {
+            let ids: Vec<&str> = due.iter().map(|a| a.id.as_str()).collect();
+            tracing::info!(
+                "at shutdown, emailed {} to {}",
+                ids.join(", "),
+                e.to.join(", ")
+            );
+            for a in &due {
+                ledger.mark(&a.id, a.version, &f.delivered).await;
+            }
+        }
+        Err(why) => {
+            f.failed();
+            tracing::warn!("at shutdown, {why}");
+        }
+    }
+    for a in waiting(ledger) {
+        tracing::warn!(
+            "at shutdown, alert {} ({}) is not yet emailed by output {output}: it is sent at the next start",
+            a.id,
+            a.severity.name()
+        );
     }
 }

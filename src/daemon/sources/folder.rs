@@ -119,7 +119,7 @@ pub async fn run(
 
 /// The `.csv` entries of `dir`, sorted, with what kind of entry each is. The kind comes from
 /// the directory entry itself: a symbolic link is never followed.
-fn list_csv(dir: &Path) -> Vec<(PathBuf, Option<&'static str>)> {
+pub fn list_csv(dir: &Path) -> Vec<(PathBuf, Option<&'static str>)> {
     let mut v: Vec<(PathBuf, Option<&'static str>)> = std::fs::read_dir(dir)
         .map(|rd| {
             rd.flatten()
@@ -166,7 +166,7 @@ fn refusal(kind: &str) -> String {
 /// following a symbolic link and without waiting on a pipe, then checked on the open file, so
 /// that swapping the file for a link after it was listed changes nothing. The error is the
 /// reason it is refused (for the `.error` file), or an I/O error.
-fn read_report(file: &Path) -> Result<Vec<u8>, Result<String, std::io::Error>> {
+pub fn read_report(file: &Path) -> Result<Vec<u8>, Result<String, std::io::Error>> {
     use std::io::Read;
     use std::os::unix::fs::{MetadataExt, OpenOptionsExt};
     let mut f = match std::fs::OpenOptions::new()
