@@ -10,8 +10,7 @@ use crate::archive::reader::{Filter, Reader};
 use crate::archive::record::Record;
 use crate::config::Config;
 use crate::engine::{Engine, Incoming, Output};
-use crate::rules::arl::{ArlOptions, arl};
-use crate::rules::config::RuleSet;
+use crate::rules::arl::ArlOptions;
 
 /// Where a rule looks: at each completed subgroup, or at each reading (outside the
 /// specification, a stuck gauge, a feed gone silent).
@@ -66,9 +65,12 @@ pub struct RuleResult {
     /// per day of the window.
     pub per_1000_subgroups: f64,
     pub per_day: Option<f64>,
-    /// 1,000 / the in-control ARL of this rule alone (the `arl` machinery), when it is a rule
-    /// on plotted subgroups.
+    /// The in-control rate of this rule alone on the chart it runs on, per 1,000 subgroups,
+    /// when it is a rule on plotted subgroups (the same as `theory.per_1000`).
     pub theoretical_per_1000: Option<f64>,
+    /// That rate with how it was obtained (exact, approximate, simulated with its interval)
+    /// and what it covers.
+    pub theory: Option<crate::rules::theory::Rate>,
     pub first_ms: Option<i64>,
     pub last_ms: Option<i64>,
 }
@@ -597,7 +599,7 @@ pub fn run(
     let end_ms = (now_ms > i64::MIN).then_some(now_ms);
     let (record_per, record_cell) = record_alerts.finish(first_ms, end_ms);
     let (candidate_per, candidate_cell) = candidate_alerts.finish(first_ms, end_ms);
-    let mut theoretical: HashMap<String, Option<f64>> = HashMap::new();
+    let mut theoretical: HashMap<String, Option<crate::rules::theory::Rate>> = HashMap::new();
     let mut out = Backtest {
         first_ms,
         last_ms: end_ms,
@@ -651,6 +653,7 @@ pub fn run(
                 per_1000_subgroups: 0.0,
                 per_day: None,
                 theoretical_per_1000: None,
+                theory: None,
                 first_ms: None,
                 last_ms: None,
             };
@@ -691,14 +694,19 @@ pub fn run(
             r.per_day = days.map(|d| r.candidate_signals as f64 / d);
             if level == SignalLevel::Subgroup
                 && let Some(one) = c.rules.rules.iter().find(|x| x.id == rule)
+                && let Some(basis) = theory_basis(c)
             {
-                let key = serde_json::to_string(one).unwrap_or_default();
-                r.theoretical_per_1000 = *theoretical.entry(key).or_insert_with(|| {
-                    let set = RuleSet::new(vec![one.clone()]);
-                    arl(&set, &[0.0], &ArlOptions::default())
-                        .ok()
-                        .and_then(|v| v.first().map(|a| 1000.0 / a.arl))
-                });
+                let key = format!(
+                    "{}/{basis:?}",
+                    serde_json::to_string(one).unwrap_or_default()
+                );
+                r.theory = theoretical
+                    .entry(key)
+                    .or_insert_with(|| {
+                        crate::rules::theory::in_control(one, &basis, &ArlOptions::default())
+                    })
+                    .clone();
+                r.theoretical_per_1000 = r.theory.as_ref().map(|t| t.per_1000);
             }
             results.push(r);
         }
@@ -720,4 +728,30 @@ pub fn run(
         (a.time_ms, &a.characteristic, &a.rule).cmp(&(b.time_ms, &b.characteristic, &b.rule))
     });
     Ok(out)
+}
+
+/// The chart a characteristic's rules run on, for their in-control rates: a measured chart
+/// and its subgroup size, or an attribute chart with its stored limits (learned attribute
+/// limits are not known before the candidate learns them).
+fn theory_basis(c: &crate::config::Characteristic) -> Option<crate::rules::theory::Basis> {
+    use crate::rules::theory::Basis;
+    if c.attribute.is_some() {
+        let l = c.limits.as_ref()?;
+        return Some(Basis::Attribute {
+            chart: l.chart.attribute()?,
+            parameter: l.attribute_parameter()?,
+            n: l.subgroup_size as f64,
+            limits: l.location,
+        });
+    }
+    let chart = c.limits.as_ref().map_or(c.chart, |l| l.chart).variables()?;
+    let n = match (&c.limits, &c.grouping) {
+        (Some(l), _) => l.subgroup_size,
+        (
+            None,
+            crate::config::Grouping::Count { size } | crate::config::Grouping::Part { size },
+        ) => *size,
+        (None, crate::config::Grouping::Window { .. }) => return None,
+    };
+    Some(Basis::Variables { chart, n })
 }

@@ -9,8 +9,10 @@ pub fn sig(v: f64, digits: usize) -> String {
     if v == 0.0 {
         return "0".to_string();
     }
-    if is_extreme(v) {
-        // 1e308 as 309 digits, or 5e-324 as "0", would read wrong: the power of ten instead.
+    let needs = digits as i64 - v.abs().log10().floor() as i64;
+    if is_extreme(v) || needs > 16 {
+        // 1e308 as 309 digits, or 5e-324 as "0", would read wrong, and fixed decimals stop at
+        // 15 (two values a hair apart would print alike): the power of ten instead.
         let s = format!("{:.*e}", digits.max(1) - 1, v);
         let (mantissa, exp) = s.split_once('e').unwrap_or((&s, "0"));
         let mantissa = if mantissa.contains('.') {

@@ -184,3 +184,157 @@ fn attribute_chart_arls_from_the_command_line_match_scipy() {
         assert!(!ok && err.contains(want), "{args:?}: {err}");
     }
 }
+
+/// What broke: `backtest`'s theory column gave the beyond-limits rule the location chart's
+/// 2.70 per 1,000, while the rule also watches the dispersion chart. With a known sigma and
+/// normal data the mean is independent of the range and of s, so the rates join exactly.
+/// Expected values: scipy 1.17.1, `n·quad(φ(x)(Φ(x+w)−Φ(x))^(n−1))` for the range's CDF at
+/// D1 and D2 (d2, d3 by the same quadrature), `chi2.sf((n−1)·B6², n−1)` for s, and
+/// `2·norm.sf(D2(2)/√2)` for a moving range of two.
+#[test]
+fn the_beyond_limits_rule_counts_the_dispersion_chart_too() {
+    use linewarden::rules::theory::{Basis, How, in_control};
+    use linewarden::stats::variables::VariablesChart;
+    let rule = |chart| Rule {
+        id: "beyond-limits".into(),
+        severity: Severity::Stop,
+        kind: RuleKind::BeyondLimits { chart },
+    };
+    let opts = ArlOptions::default();
+    let rate =
+        |chart, n, side| in_control(&rule(side), &Basis::Variables { chart, n }, &opts).unwrap();
+    for (chart, n, alone, both) in [
+        (VariablesChart::XbarR, 3, 5.842954, 8.526975),
+        (VariablesChart::XbarR, 5, 4.603048, 7.290417),
+        // n = 7: the range chart's lower limit D1 is above zero, a lower tail as well.
+        (VariablesChart::XbarR, 7, 4.376952, 7.064931),
+        (
+            VariablesChart::XbarS,
+            5,
+            3.899114,
+            1000.0 - (1000.0 - 2.699796) * (1.0 - 3.899114e-3),
+        ),
+        (
+            VariablesChart::XbarS,
+            10,
+            2.999357,
+            1000.0 - (1000.0 - 2.699796) * (1.0 - 2.999357e-3),
+        ),
+    ] {
+        let d = rate(chart, n, ChartSide::Dispersion);
+        within(
+            d.per_1000,
+            alone,
+            2e-4,
+            &format!("{chart:?} n={n} dispersion"),
+        );
+        assert_eq!(d.how, How::Exact);
+        let b = rate(chart, n, ChartSide::Both);
+        within(b.per_1000, both, 2e-4, &format!("{chart:?} n={n} both"));
+        assert_eq!(b.how, How::Exact);
+        let l = rate(chart, n, ChartSide::Location);
+        within(l.per_1000, 2.699796, 1e-4, "location alone: 2(1 − Φ(3))");
+    }
+    // Individuals: the moving ranges overlap, so the joined rate is approximate, and says so.
+    let i = rate(VariablesChart::Individuals, 1, ChartSide::Both);
+    within(i.per_1000, 11.827302, 2e-4, "individuals both");
+    assert_eq!(i.how, How::Approximate);
+}
+
+/// What broke: the theory column gave the demo's leak test (a p chart, p̄ 0.03, n 20) the
+/// normal chart's 2.7 per 1,000; its exact binomial rate is 21.0 (`arl --chart p` gives ARL
+/// 47.6). scipy 1.17.1: `1000·binom.sf(2, 20, 0.03)` = 21.0083563783 (the upper limit 0.1444
+/// is 2.89 parts: three or more are beyond; the lower limit is clamped at zero).
+#[test]
+fn an_attribute_charts_beyond_limits_rate_is_exact_binomial() {
+    use linewarden::rules::theory::{Basis, How, in_control};
+    use linewarden::stats::Limits;
+    use linewarden::stats::attributes::AttributeChart;
+    let basis = Basis::Attribute {
+        chart: AttributeChart::P,
+        parameter: 0.03,
+        n: 20.0,
+        limits: Limits {
+            center: 0.03,
+            ucl: 0.1444333867,
+            lcl: 0.0,
+        },
+    };
+    let r = in_control(
+        &Rule {
+            id: "beyond-limits".into(),
+            severity: Severity::Stop,
+            kind: RuleKind::BeyondLimits {
+                chart: ChartSide::Both,
+            },
+        },
+        &basis,
+        &ArlOptions::default(),
+    )
+    .unwrap();
+    within(r.per_1000, 21.0083563783, 1e-9, "p chart beyond limits");
+    assert_eq!(r.how, How::Exact);
+}
+
+/// A run rule on a discrete statistic: a point exactly on the centre line (2 of 20 parts at
+/// p̄ 0.1) breaks a run, which no normal chain knows. The simulated rate must agree with an
+/// exact chain written here over the three outcomes, with binomial probabilities from scipy
+/// 1.17.1 (`binom(20, 0.1)`: sf(2) = 0.32307319, cdf(1) = 0.39174700, pmf(2) = 0.28517981).
+#[test]
+fn a_run_rule_on_a_p_chart_is_simulated_and_agrees_with_an_exact_chain() {
+    use linewarden::rules::theory::{Basis, How, in_control};
+    use linewarden::stats::Limits;
+    use linewarden::stats::attributes::AttributeChart;
+    let sigma = (0.1f64 * 0.9 / 20.0).sqrt();
+    let basis = Basis::Attribute {
+        chart: AttributeChart::P,
+        parameter: 0.1,
+        n: 20.0,
+        limits: Limits {
+            center: 0.1,
+            ucl: 0.1 + 3.0 * sigma,
+            lcl: 0.0,
+        },
+    };
+    let length = 6;
+    let r = in_control(
+        &Rule {
+            id: "one-side-run".into(),
+            severity: Severity::Warn,
+            kind: RuleKind::OneSideRun { length },
+        },
+        &basis,
+        &ArlOptions::default(),
+    )
+    .unwrap();
+    assert_eq!(r.how, How::Simulated);
+    assert!(!r.at_most);
+    // The chain: no run (e), i points above in a row (a[i]) or below (b[i]), i = 1..length−1;
+    // a point on the centre line ends both. Expected steps to a run of `length`, by value
+    // iteration to convergence.
+    let (pa, pb, p0) = (0.32307319481053404, 0.3917469981251679, 0.28517980706429846);
+    let l = length as usize;
+    let (mut e, mut a, mut b) = (0.0f64, vec![0.0f64; l], vec![0.0f64; l]);
+    for _ in 0..100_000 {
+        let ne = 1.0 + pa * a[1] + pb * b[1] + p0 * e;
+        let mut na = vec![0.0; l];
+        let mut nb = vec![0.0; l];
+        for i in 1..l {
+            let up = if i + 1 < l { a[i + 1] } else { 0.0 };
+            let down = if i + 1 < l { b[i + 1] } else { 0.0 };
+            na[i] = 1.0 + pa * up + pb * b[1] + p0 * e;
+            nb[i] = 1.0 + pb * down + pa * a[1] + p0 * e;
+        }
+        e = ne;
+        a = na;
+        b = nb;
+    }
+    let arl0 = e;
+    let exact = 1000.0 / arl0;
+    let [lo, hi] = r.ci95_per_1000.unwrap();
+    assert!(
+        lo <= exact && exact <= hi,
+        "simulated {} ({lo} to {hi}) per 1,000, the chain gives {exact} (ARL {arl0})",
+        r.per_1000
+    );
+}

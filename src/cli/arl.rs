@@ -325,9 +325,9 @@ fn attribute_arl(a: &ArlArgs, kind: AttributeKind) -> Result<()> {
         let words = if !arl.is_finite() {
             "never signalled: no count can fall beyond the limits".to_string()
         } else if (x - p0).abs() <= 1e-12 * p0 {
-            format!("one false alarm every {} samples", sig(*arl, 4))
+            format!("one false alarm every {}", samples(*arl))
         } else {
-            format!("signalled after {} samples on average", sig(*arl, 4))
+            format!("signalled after {} on average", samples(*arl))
         };
         println!(
             "  {:<12} {:>12} {:>12} {:>10}  {words}",
@@ -342,4 +342,15 @@ fn attribute_arl(a: &ArlArgs, kind: AttributeKind) -> Result<()> {
         );
     }
     Ok(())
+}
+
+/// A run length in samples, the count and the noun agreeing as printed ("1 sample" for an ARL
+/// of 1.0001, which prints as 1).
+fn samples(arl: f64) -> String {
+    let n = linewarden::format::sig(arl, 4);
+    if n == "1" {
+        "1 sample".to_string()
+    } else {
+        format!("{n} samples")
+    }
 }

@@ -133,7 +133,7 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
                 r.new,
                 r.gone,
                 sig(r.per_1000_subgroups, 3),
-                rate(r.theoretical_per_1000),
+                theory_words(r.theory.as_ref()),
                 rate(r.per_day)
             );
         }
@@ -145,9 +145,24 @@ pub(crate) fn backtest_cmd(a: BacktestArgs) -> Result<()> {
     println!("  record:    {}", alert_words(&bt.alerts.record));
     println!("  candidate: {}", alert_words(&bt.alerts.candidate));
     println!(
-        "Per 1000: signals per 1,000 subgroups (per 1,000 readings for a reading rule); theory: the rule's in-control rate (1,000 / ARL0, as `arl` computes it). The record's acknowledgements are replayed at their times."
+        "Per 1000: signals per 1,000 subgroups (per 1,000 readings for a reading rule). Theory: the rule's in-control rate on the chart it runs on, per 1,000 subgroups: exact (the beyond-limits rule on a measured characteristic counts its location and spread charts together, on an attribute chart the exact binomial or Poisson chance at the nominal size); ~ approximate (an individuals chart's moving ranges overlap); sim, simulated with a fixed seed (a run rule on counts, where ties break runs; the 95% interval is in --json); < at most (no signal in the runs simulated). The record's acknowledgements are replayed at their times."
     );
     Ok(())
+}
+
+/// The theory column: the rate at three significant digits, marked by how it was obtained.
+fn theory_words(t: Option<&linewarden::rules::theory::Rate>) -> String {
+    use linewarden::rules::theory::How;
+    let Some(t) = t else {
+        return "—".to_string();
+    };
+    let v = sig(t.per_1000, 3);
+    match (t.how, t.at_most) {
+        (_, true) => format!("< {v}"),
+        (How::Exact, _) => v,
+        (How::Approximate, _) => format!("~{v}"),
+        (How::Simulated, _) => format!("{v} sim"),
+    }
 }
 
 /// `2 stops, 5 warnings, 0 notices; 1 escalated; red 3.33 h in 2 stretches (14.1% of the window)`

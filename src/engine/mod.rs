@@ -1072,7 +1072,11 @@ impl CharEngine {
         partial: bool,
         out: &mut Vec<Output>,
     ) {
-        if let Some(reason) = overflow_reason(&summary, readings) {
+        let reason = overflow_reason(&summary, readings).or_else(|| match &self.mode {
+            Mode::Monitoring { points, .. } => limits_overflow(points.basis(), &summary),
+            Mode::Learning { .. } => None,
+        });
+        if let Some(reason) = reason {
             out.push(Output::Log {
                 level: Level::Warn,
                 characteristic: self.cfg.id.clone(),
@@ -1102,6 +1106,22 @@ impl CharEngine {
                     let cap = self.cfg.provisional_severity;
                     v = v.into_iter().map(|v| v.provisional(cap)).collect();
                 }
+                // A signal whose figures overflow (an EWMA a billion sigmas out on limits
+                // near the largest double) cannot be stated in numbers: said, not recorded.
+                v.retain(|v| {
+                    let fine = v.statistic.is_finite() && v.limit.is_finite();
+                    if !fine {
+                        out.push(Output::Log {
+                            level: Level::Warn,
+                            characteristic: self.cfg.id.clone(),
+                            message: format!(
+                                "rule {} fired on subgroup {}, but its figures are not finite numbers; the signal is left out of the record",
+                                v.rule, summary.number
+                            ),
+                        });
+                    }
+                    fine
+                });
                 let b = points.basis();
                 let location = match (b.attribute(), summary.inspected) {
                     (Some(a), Some(size)) => b.attribute_at(a, size).1,
@@ -1636,6 +1656,28 @@ fn overflow_reason(s: &SubgroupSummary, readings: &[PendingReading]) -> Option<S
         "{what} is {value}, not a finite number: the readings ({}) are too large to compute with; they stay in the archive as received",
         shown.join(", ")
     ))
+}
+
+/// Why a subgroup cannot be judged when the limits in force at its size are not finite
+/// numbers (an attribute subgroup of 1e-155 units puts its upper limit beyond any double).
+fn limits_overflow(b: &ChartBasis, s: &SubgroupSummary) -> Option<String> {
+    let location = match (b.attribute(), s.inspected) {
+        (Some(a), Some(size)) => b.attribute_at(a, size).1,
+        _ => b.location_for(s.n),
+    };
+    let mut figures = vec![location.center, location.ucl, location.lcl];
+    if let Some(d) = b.dispersion_for(s.n) {
+        figures.extend([d.center, d.ucl, d.lcl]);
+    }
+    figures.iter().any(|v| !v.is_finite()).then(|| {
+        format!(
+            "the limits at its size ({}) are not finite numbers, so it cannot be judged; its readings stay in the archive as received",
+            match s.inspected {
+                Some(n) => format!("{} units inspected", num(n)),
+                None => format!("{} readings", s.n),
+            }
+        )
+    })
 }
 
 /// The largest count or number of units taken exactly (2^53): a double holds every whole

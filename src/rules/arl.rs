@@ -59,6 +59,14 @@ pub struct ArlResult {
     pub states: Option<usize>,
     /// Simulated runs (Monte Carlo only).
     pub runs: Option<u64>,
+    /// Simulated runs stopped at the maximum run length without a signal: when there are
+    /// any, `arl` is a lower bound.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub censored: u64,
+}
+
+fn is_zero(n: &u64) -> bool {
+    *n == 0
 }
 
 /// Knobs for the calculations.
@@ -148,6 +156,7 @@ fn integral(arl: f64, shift: f64, nodes: usize) -> ArlResult {
         ci95: None,
         states: Some(nodes),
         runs: None,
+        censored: 0,
     }
 }
 
@@ -257,25 +266,54 @@ impl Chain {
             ci95: None,
             states: Some(n),
             runs: None,
+            censored: 0,
         }
     }
 }
 
 fn monte_carlo(set: &RuleSet, shift: f64, opts: &ArlOptions) -> ArlResult {
+    // Each shift gets its own stream, so adding a shift does not change the others' results.
+    let rng = StdRng::seed_from_u64(opts.seed ^ shift.to_bits());
+    let mut r = simulate(
+        set,
+        |rng: &mut StdRng| rng.sample::<f64, _>(StandardNormal) + shift,
+        3.0,
+        -3.0,
+        opts,
+        rng,
+    );
+    r.shift = shift;
+    r
+}
+
+/// Simulated run lengths of `set`: each run steps the rules with standardized values from
+/// `draw` against limits at `zu` and `zl` sigmas until a rule fires; the mean with its 95%
+/// confidence interval. What the plotted points are (normal means, binomial or Poisson counts
+/// standardized) is `draw`'s.
+pub fn simulate(
+    set: &RuleSet,
+    mut draw: impl FnMut(&mut StdRng) -> f64,
+    zu: f64,
+    zl: f64,
+    opts: &ArlOptions,
+    mut rng: StdRng,
+) -> ArlResult {
     let mut e = PointEvaluator::new(set, ChartBasis::standard());
     let start = e.rule_states_mut().clone();
-    // Each shift gets its own stream, so adding a shift does not change the others' results.
-    let mut rng = StdRng::seed_from_u64(opts.seed ^ shift.to_bits());
     let (mut sum, mut sum_sq) = (0.0f64, 0.0f64);
     let runs = opts.runs.max(2);
+    let mut censored = 0;
     for _ in 0..runs {
         *e.rule_states_mut() = start.clone();
         e.clear_last();
         let mut t = 0u64;
         loop {
             t += 1;
-            let x: f64 = rng.sample(StandardNormal);
-            if e.step(x + shift, 3.0, -3.0) != 0 || t >= opts.max_run_length {
+            if e.step(draw(&mut rng), zu, zl) != 0 {
+                break;
+            }
+            if t >= opts.max_run_length {
+                censored += 1;
                 break;
             }
         }
@@ -288,12 +326,13 @@ fn monte_carlo(set: &RuleSet, shift: f64, opts: &ArlOptions) -> ArlResult {
     let sd = ((sum_sq - n * mean * mean) / (n - 1.0)).max(0.0).sqrt();
     let half = 1.96 * sd / n.sqrt();
     ArlResult {
-        shift,
+        shift: 0.0,
         arl: mean,
         method: Method::MonteCarlo,
         ci95: Some([mean - half, mean + half]),
         states: None,
         runs: Some(runs),
+        censored,
     }
 }
 

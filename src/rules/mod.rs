@@ -13,6 +13,7 @@ pub mod arl;
 pub mod config;
 pub mod point;
 pub mod reading;
+pub mod theory;
 
 use serde::{Deserialize, Serialize};
 

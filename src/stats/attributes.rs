@@ -10,7 +10,6 @@
 use serde::{Deserialize, Serialize};
 
 use super::{Limits, StatsError};
-use crate::format::num;
 
 /// Which attribute chart.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -190,24 +189,8 @@ pub fn study(
             .filter_map(|i| {
                 let lim = chart.limits(parameter, samples[i].size);
                 let v = chart.plotted(&samples[i]);
-                let side = if v > lim.ucl {
-                    Some(("above the upper", lim.ucl))
-                } else if v < lim.lcl {
-                    Some(("below the lower", lim.lcl))
-                } else {
-                    None
-                };
-                side.map(|(words, limit)| {
-                    (
-                        i,
-                        format!(
-                            "{} {} {words} control limit {} (trial limits of round {iteration})",
-                            chart.name(),
-                            num(v),
-                            num(limit)
-                        ),
-                    )
-                })
+                beyond_words(chart, v, &lim)
+                    .map(|w| (i, format!("{w} (trial limits of round {iteration})")))
             })
             .collect();
         if out.is_empty() {
@@ -252,6 +235,24 @@ pub fn study(
             .collect(),
         warnings,
     })
+}
+
+/// Why a plotted value is excluded, when it is beyond a limit: `p 0.1360291 above the upper
+/// control limit 0.1360289`, by the shared digits rule (a value beyond a limit never prints
+/// equal to it).
+pub fn beyond_words(chart: AttributeChart, v: f64, lim: &Limits) -> Option<String> {
+    let (words, limit) = if v > lim.ucl {
+        ("above the upper", lim.ucl)
+    } else if v < lim.lcl {
+        ("below the lower", lim.lcl)
+    } else {
+        return None;
+    };
+    let (v, limit) = crate::format::sig_pair(v, limit);
+    Some(format!(
+        "{} {v} {words} control limit {limit}",
+        chart.name()
+    ))
 }
 
 /// A sample's chance of falling beyond the limits of an attribute chart, exactly: the count of
@@ -603,5 +604,34 @@ mod tests {
             assert!(close(a, want, 1e-9), "u {k}: {a} vs {want}");
         }
         assert!(beyond_limits_probability(AttributeChart::C, &c, 1.0, 0.0).is_err());
+    }
+
+    /// What broke: "p 0.136029 above the upper control limit 0.136029" in an exclusion reason
+    /// (text and JSON). Swept just past each limit.
+    #[test]
+    fn an_exclusion_reason_never_prints_a_value_equal_to_its_limit() {
+        for limit in [0.1360289, 0.1360289123, 12.0, 1e-7, 0.5] {
+            let lim = Limits {
+                center: limit / 2.0,
+                ucl: limit,
+                lcl: limit / 4.0,
+            };
+            let figures = |w: &str| -> Vec<String> {
+                w.split(' ')
+                    .filter(|t| t.parse::<f64>().is_ok())
+                    .map(str::to_string)
+                    .collect()
+            };
+            for k in 1..2000 {
+                let v = limit * (1.0 + k as f64 * 1e-12);
+                let w = beyond_words(AttributeChart::P, v, &lim).unwrap();
+                let f = figures(&w);
+                assert_ne!(f[0], f[1], "{w}");
+                let below = lim.lcl * (1.0 - k as f64 * 1e-12);
+                let w = beyond_words(AttributeChart::P, below, &lim).unwrap();
+                let f = figures(&w);
+                assert_ne!(f[0], f[1], "{w}");
+            }
+        }
     }
 }

@@ -157,7 +157,7 @@ pub fn capability(
     c.normality = anderson_darling(readings);
     match &c.normality {
         Some(ad) if ad.doubtful() => {
-            let offer = match distributions::best(&distributions::fit_all(readings)) {
+            let offer = match distributions::best(&distributions::fit_all(readings), readings) {
                 Some((m, a2)) if m.family() != Family::Normal => format!(
                     "; of the models tried the {} fits best (Anderson–Darling A² {} against its fitted model): the percentile method with that model (`--distribution best`) gives Pp, Ppk and ppm without assuming normality",
                     m.family().words(),
@@ -399,7 +399,7 @@ pub fn percentile_method(
                 .clone()?;
             (m, a2, "named")
         }
-        DistributionChoice::Best => match distributions::best(&tried) {
+        DistributionChoice::Best => match distributions::best(&tried, readings) {
             Some((m, a2)) => (m, a2, "best-fit"),
             // No model fits: the normal's reason is the plainest.
             None => {

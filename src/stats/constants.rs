@@ -157,6 +157,26 @@ fn range_moments(n: usize) -> (f64, f64) {
     (d2, d3)
 }
 
+/// P(W < `lo`) and P(W > `hi`) for W the range of `n` independent standard normals:
+/// `P(W ≤ w) = n ∫ φ(x)[Φ(x + w) − Φ(x)]ⁿ⁻¹ dx`, by the same quadrature as the constants. The
+/// chance a range chart with a known sigma signals, for limits `lo`·σ and `hi`·σ.
+pub fn range_tails(n: usize, lo: f64, hi: f64) -> (f64, f64) {
+    let cells = (2.0 * HALF_WIDTH / STEP).round() as usize;
+    let x_at = |i: usize| -HALF_WIDTH + i as f64 * STEP;
+    let k = (n - 1) as i32;
+    let cdf_at = |w: f64| -> f64 {
+        if w <= 0.0 {
+            return 0.0;
+        }
+        let inside = simpson(cells, |i| {
+            let x = x_at(i);
+            normal_pdf(x) * (normal_cdf(x + w) - normal_cdf(x)).max(0.0).powi(k)
+        });
+        (n as f64 * inside).clamp(0.0, 1.0)
+    };
+    (cdf_at(lo), 1.0 - cdf_at(hi))
+}
+
 /// Composite Simpson's rule over `cells` (even) equal steps of `STEP`, with `f(i)` the value at
 /// grid point `i`.
 fn simpson(cells: usize, f: impl Fn(usize) -> f64) -> f64 {
