@@ -859,7 +859,8 @@ fn capability_json_carries_the_normality_warning_and_comparisons_read_true() {
 #[test]
 fn percentile_capability_from_a_fitted_model_and_its_bad_requests() {
     let dir = tempfile::tempdir().unwrap();
-    // Right-skewed readings (a lognormal shape), one per row; all above zero.
+    // Right-skewed readings (a lognormal shape), one per row; all above zero. Skewed enough
+    // that the normality test rejects the normal (p < 0.05): `best` keeps the normal otherwise.
     let mut text = String::from("value\n");
     for i in 1..=60 {
         let u = (i as f64 - 0.5) / 60.0;
@@ -867,7 +868,7 @@ fn percentile_capability_from_a_fitted_model_and_its_bad_requests() {
             &statrs::distribution::Normal::standard(),
             u,
         );
-        text.push_str(&format!("{:.4}\n", (0.3 * z).exp()));
+        text.push_str(&format!("{:.4}\n", (0.6 * z).exp()));
     }
     let good = write(dir.path(), "skewed.csv", &text);
     let base = |extra: &[&str]| {

@@ -710,12 +710,27 @@ fn percentile_capability_picks_the_best_fit_and_judges_its_ppk() {
         usl: Some(30.0),
         target: None,
     };
-    let mut c = capability::capability(&WEIBULL_LIKE, 4.9, &spec, 1.33).unwrap();
-    percentile_method(&mut c, &WEIBULL_LIKE, &spec, DistributionChoice::Best).unwrap();
-    let d = c.distribution.as_ref().unwrap();
-    // The Weibull fits best by A² (0.26655 against Box–Cox 0.26918 and normal 0.35592).
-    assert_eq!(d.name, "weibull");
+    // The Weibull fits best by A² (0.26655 against Box–Cox 0.26918 and normal 0.35592), but
+    // the normality test does not reject the normal here, so `best` keeps it (a penalty for
+    // parameters and the normal kept unless rejected: what broke was Box–Cox chosen for
+    // normal data by A² alone).
+    let mut kept = capability::capability(&WEIBULL_LIKE, 4.9, &spec, 1.33).unwrap();
+    percentile_method(&mut kept, &WEIBULL_LIKE, &spec, DistributionChoice::Best).unwrap();
+    let d = kept.distribution.as_ref().unwrap();
+    assert!(!kept.normality.as_ref().unwrap().doubtful());
+    assert_eq!(d.name, "normal");
     assert_eq!(d.chosen_by, "best-fit");
+    // Named, the Weibull gives the standard's Pp and Ppk from scipy's quantiles.
+    let mut c = capability::capability(&WEIBULL_LIKE, 4.9, &spec, 1.33).unwrap();
+    percentile_method(
+        &mut c,
+        &WEIBULL_LIKE,
+        &spec,
+        DistributionChoice::Named(Family::Weibull),
+    )
+    .unwrap();
+    let d = c.distribution.as_ref().unwrap();
+    assert_eq!(d.name, "weibull");
     assert_eq!(c.method, "percentile");
     assert_eq!(c.verdict_on, "ppk");
     // Pp and Ppk by the formulas of the standard from scipy's quantiles above.

@@ -294,7 +294,8 @@ fn verdict_of(index: f64, lower: f64, threshold: f64) -> Verdict {
 pub enum DistributionChoice {
     /// This family.
     Named(Family),
-    /// The fitted family with the smallest Anderson–Darling statistic.
+    /// The normal unless the normality test rejects it, then the fitted family with the
+    /// smallest AIC ([`distributions::best`]).
     Best,
 }
 
