@@ -466,6 +466,37 @@ pub struct VerifyReport {
     pub unreadable: Vec<String>,
 }
 
+/// The checks of a segment's header against its neighbours: its file name, the chain from the
+/// segment before, and where its sequence numbers start. Problems go to `problems`.
+fn header_links(
+    problems: &mut Vec<String>,
+    name: &str,
+    h: &Header,
+    (index, first_seq): (u64, u64),
+    expected_seq: u64,
+    prev_chain: Option<&String>,
+) {
+    if h.segment != index || h.first_seq != first_seq {
+        problems.push(format!(
+            "{name}: the header says segment {} from sequence {}, unlike its name",
+            h.segment, h.first_seq
+        ));
+    }
+    if let Some(pc) = prev_chain
+        && &h.prev_chain != pc
+    {
+        problems.push(format!(
+            "{name}: its header does not chain to the segment before it: a segment was altered, replaced or deleted"
+        ));
+    }
+    if first_seq != expected_seq {
+        problems.push(format!(
+            "{name}: starts at sequence {first_seq} where {expected_seq} was expected ({} records missing or duplicated)",
+            (first_seq as i64 - expected_seq as i64).abs()
+        ));
+    }
+}
+
 /// Checks every frame's CRC, the sequence numbers, every seal's hash and the chain between
 /// segments.
 pub fn verify(dir: &Path) -> Result<VerifyReport, ArchiveError> {
@@ -590,25 +621,14 @@ pub fn verify_with(
                 (segment::read_header(path), segment::read_seal(path))
         {
             // Verified whole before and unchanged: the links only.
-            if h.segment != *index || h.first_seq != *first_seq {
-                r.problems.push(format!(
-                    "{name}: the header says segment {} from sequence {}, unlike its name",
-                    h.segment, h.first_seq
-                ));
-            }
-            if let Some(pc) = &prev_chain
-                && &h.prev_chain != pc
-            {
-                r.problems.push(format!(
-                    "{name}: its header does not chain to the segment before it: a segment was altered, replaced or deleted"
-                ));
-            }
-            if *first_seq != expected_seq {
-                r.problems.push(format!(
-                    "{name}: starts at sequence {first_seq} where {expected_seq} was expected ({} records missing or duplicated)",
-                    (*first_seq as i64 - expected_seq as i64).abs()
-                ));
-            }
+            header_links(
+                &mut r.problems,
+                &name,
+                &h,
+                (*index, *first_seq),
+                expected_seq,
+                prev_chain.as_ref(),
+            );
             if seal.sha256 != sha
                 || seal.prev_chain != h.prev_chain
                 || segment::chain(&seal.prev_chain, &seal.sha256) != seal.chain
@@ -629,19 +649,14 @@ pub fn verify_with(
         {
             // At a start, the open segment was just read back by the writer's recovery: only
             // its links to the sealed ones are checked here.
-            if let Some(pc) = &prev_chain
-                && &h.prev_chain != pc
-            {
-                r.problems.push(format!(
-                    "{name}: its header does not chain to the segment before it: a segment was altered, replaced or deleted"
-                ));
-            }
-            if h.segment != *index || h.first_seq != *first_seq || *first_seq != expected_seq {
-                r.problems.push(format!(
-                    "{name}: starts at sequence {first_seq} (header: segment {}, sequence {}) where segment {index} from sequence {expected_seq} was expected",
-                    h.segment, h.first_seq
-                ));
-            }
+            header_links(
+                &mut r.problems,
+                &name,
+                &h,
+                (*index, *first_seq),
+                expected_seq,
+                prev_chain.as_ref(),
+            );
             continue;
         }
         let buf = std::fs::read(path).map_err(|e| ArchiveError::io(path, e))?;
@@ -679,25 +694,14 @@ pub fn verify_with(
             prev_chain = None;
             continue;
         };
-        if header.segment != *index || header.first_seq != *first_seq {
-            r.problems.push(format!(
-                "{name}: the header says segment {} from sequence {}, unlike its name",
-                header.segment, header.first_seq
-            ));
-        }
-        if let Some(pc) = &prev_chain
-            && &header.prev_chain != pc
-        {
-            r.problems.push(format!(
-                "{name}: its header does not chain to the segment before it: a segment was altered, replaced or deleted"
-            ));
-        }
-        if *first_seq != expected_seq {
-            r.problems.push(format!(
-                "{name}: starts at sequence {first_seq} where {expected_seq} was expected ({} records missing or duplicated)",
-                (*first_seq as i64 - expected_seq as i64).abs()
-            ));
-        }
+        header_links(
+            &mut r.problems,
+            &name,
+            &header,
+            (*index, *first_seq),
+            expected_seq,
+            prev_chain.as_ref(),
+        );
         let mut seq = first_seq - 1;
         let mut seal: Option<(Seal, usize)> = None;
         let mut ok = true;
