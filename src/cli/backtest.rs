@@ -156,7 +156,9 @@ fn theory_words(t: Option<&linewarden::rules::theory::Rate>) -> String {
     let Some(t) = t else {
         return "—".to_string();
     };
-    let v = sig(t.per_1000, 3);
+    // Three significant digits with their trailing zeros (21.0, 2.00): the figure's precision.
+    let decimals = (2 - t.per_1000.abs().log10().floor() as i64).clamp(0, 9) as usize;
+    let v = format!("{:.decimals$}", t.per_1000);
     match (t.how, t.at_most) {
         (_, true) => format!("< {v}"),
         (How::Exact, _) => v,
