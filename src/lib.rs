@@ -10,7 +10,8 @@
 //!   ([`stats::distributions`]) and normality ([`stats::normality`]). No I/O, no clock, no
 //!   tokio.
 //! * [`rules`] — run rules evaluated incrementally per subgroup and per reading, their TOML
-//!   config and presets, and average run lengths ([`rules::arl`]). Pure, like [`stats`].
+//!   config and presets, average run lengths ([`rules::arl`]), and each rule's in-control rate
+//!   on the chart it runs on ([`rules::theory`]). Pure, like [`stats`].
 //! * [`engine`] — the pure engine of a cell: reading checks (and a pass/fail station's words
 //!   mapped to counts), subgroup assembly, learning, rules and the outputs they call for, for
 //!   measured and attribute (p, np, c, u) characteristics; its state rebuilt from the
