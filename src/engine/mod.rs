@@ -1122,12 +1122,8 @@ impl CharEngine {
                     }
                     fine
                 });
-                let b = points.basis();
-                let location = match (b.attribute(), summary.inspected) {
-                    (Some(a), Some(size)) => b.attribute_at(a, size).1,
-                    _ => b.location_for(summary.n),
-                };
-                (Some(location), b.dispersion_for(summary.n), v)
+                let (location, dispersion) = limits_at(points.basis(), &summary);
+                (Some(location), dispersion, v)
             }
             Mode::Learning { baseline } => {
                 baseline.push(baseline_entry);
@@ -1661,12 +1657,9 @@ fn overflow_reason(s: &SubgroupSummary, readings: &[PendingReading]) -> Option<S
 /// Why a subgroup cannot be judged when the limits in force at its size are not finite
 /// numbers (an attribute subgroup of 1e-155 units puts its upper limit beyond any double).
 fn limits_overflow(b: &ChartBasis, s: &SubgroupSummary) -> Option<String> {
-    let location = match (b.attribute(), s.inspected) {
-        (Some(a), Some(size)) => b.attribute_at(a, size).1,
-        _ => b.location_for(s.n),
-    };
+    let (location, dispersion) = limits_at(b, s);
     let mut figures = vec![location.center, location.ucl, location.lcl];
-    if let Some(d) = b.dispersion_for(s.n) {
+    if let Some(d) = dispersion {
         figures.extend([d.center, d.ucl, d.lcl]);
     }
     figures.iter().any(|v| !v.is_finite()).then(|| {
@@ -1678,6 +1671,19 @@ fn limits_overflow(b: &ChartBasis, s: &SubgroupSummary) -> Option<String> {
             }
         )
     })
+}
+
+/// The limits in force for subgroup `s`: an attribute chart's at its own number of units, a
+/// measured chart's at its size; and the dispersion chart's.
+fn limits_at(
+    b: &ChartBasis,
+    s: &SubgroupSummary,
+) -> (crate::stats::Limits, Option<crate::stats::Limits>) {
+    let location = match (b.attribute(), s.inspected) {
+        (Some(a), Some(size)) => b.attribute_at(a, size).1,
+        _ => b.location_for(s.n),
+    };
+    (location, b.dispersion_for(s.n))
 }
 
 /// The largest count or number of units taken exactly (2^53): a double holds every whole
